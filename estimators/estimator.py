@@ -1,0 +1,221 @@
+"""One asset's live ARX model: regressor history plus the RLS state.
+
+References
+----------
+R. D. Martin, "Robust methods for time series", in *Applied Time Series
+Analysis II*, D. F. Findley (ed.), Academic Press, 1981 (the filter-cleaner:
+outliers are replaced by their cleaned values before they enter the
+regressor).
+
+:class:`ArxEstimator` is the thin per-asset object the service holds: its
+frozen structure and settings are kept apart from its learned state, which
+round-trips through plain data (:meth:`ArxEstimator.to_state`) for checkpoints.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from typing import Any, NamedTuple
+
+import numpy as np
+from numpy.typing import NDArray
+
+from arxwatch.estimators.arx import ArxOrder, RegressorHistory
+from arxwatch.estimators.errors import DimensionError
+from arxwatch.estimators.rls import RlsConfig, StateLayout, build_kernel
+
+
+class StepResult(NamedTuple):
+    """What one update reports (all floats).
+
+    Attributes
+    ----------
+    prediction : float
+        One-step prediction of y(k) made before seeing it.
+    innovation : float
+        ``y(k) - prediction``.
+    normalised : float
+        Innovation divided by its predicted standard deviation: ~N(0, 1) and
+        white while the model holds.
+    weight : float
+        Huber weight: 1 for a plain sample, below 1 for a down-weighted outlier.
+    updated : bool
+        False when the excitation gate froze the estimate.
+    excitation : float
+        Smallest input standard deviation over the estimator memory (signal
+        units; inf for a model without inputs).
+    """
+
+    prediction: float
+    innovation: float
+    normalised: float
+    weight: float
+    updated: bool
+    excitation: float
+
+
+class ArxEstimator:
+    """Recursive ARX estimator for one asset.
+
+    Parameters
+    ----------
+    order : ArxOrder
+        Model structure.
+    config : RlsConfig, optional
+        Estimator settings; defaults are :class:`RlsConfig` defaults.
+
+    Examples
+    --------
+    >>> est = ArxEstimator(ArxOrder(na=1, nb=(1,), nk=(1,), constant=False))
+    >>> u = [1.0, 0.0, 1.0, 1.0, 0.0] * 40
+    >>> y = 0.0
+    >>> for k in range(1, len(u)):
+    ...     y = 0.8 * y + 0.5 * u[k - 1]
+    ...     _ = est.update(y, [u[k]])
+    >>> [round(float(v), 6) for v in est.theta]
+    [-0.8, 0.5]
+    """
+
+    __slots__ = ("order", "config", "layout", "_kernel", "_state", "_history", "_sizes")
+
+    def __init__(self, order: ArxOrder, config: RlsConfig | None = None) -> None:
+        self.order = order
+        self.config = config if config is not None else RlsConfig()
+        self.layout = StateLayout(order.n_params, order.n_inputs)
+        self._kernel = build_kernel(self.layout, self.config)
+        self._state: list[float] = self.layout.initial(self.config.p0)
+        self._history = RegressorHistory(order)
+        self._sizes = (self.layout.n_params, self.layout.n_inputs)
+
+    # -- learning -----------------------------------------------------------
+    def step(self, phi: Sequence[float], y: float, inputs: Sequence[float]) -> StepResult:
+        """Update with a ready-made regressor (no history bookkeeping).
+
+        Raises
+        ------
+        DimensionError
+            If ``phi`` or ``inputs`` has the wrong length.
+        ValueError
+            If a value is not finite; the state is left untouched.
+        """
+        if (len(phi), len(inputs)) != self._sizes:
+            raise DimensionError(
+                f"phi needs {self.layout.n_params} and inputs {self.layout.n_inputs} "
+                f"values, got {len(phi)} and {len(inputs)}"
+            )
+        e, nrm, w, ex, gate = self._kernel(self._state, phi, y, inputs)
+        return StepResult(y - e, e, nrm, w, gate > 0.0, ex)
+
+    def update(self, y: float, u: Sequence[float]) -> StepResult | None:
+        """Take the sample y(k), u(k); None while the history is still filling.
+
+        Raises
+        ------
+        DimensionError
+            If ``u`` has the wrong length.
+        ValueError
+            If ``y`` or ``u`` is not finite; nothing is changed.
+        """
+        if not math.isfinite(y) or not all(math.isfinite(v) for v in u):
+            raise ValueError(f"non-finite sample: y={y!r}, u={list(u)!r}")
+        history = self._history
+        result = None
+        if history.ready:
+            result = self.step(history.regressor(u), y, u)
+            # Filter-cleaner: a down-weighted output enters later regressors
+            # as prediction + w * innovation, so one spike is not re-used as a
+            # large regressor entry for the next na samples (Martin 1981).
+            y = result.prediction + result.weight * result.innovation
+        history.push(y, u)
+        return result
+
+    def predict(self, u: Sequence[float]) -> float:
+        """One-step prediction of y(k) from the history and the inputs u(k).
+
+        Raises
+        ------
+        ValueError
+            If the history does not yet reach back far enough.
+        """
+        if not self._history.ready:
+            raise ValueError(f"history not ready: need {self.order.depth} samples first")
+        phi = self._history.regressor(u)
+        return math.fsum(p * t for p, t in zip(phi, self._state[self.layout.theta], strict=True))
+
+    def restart_history(self) -> None:
+        """Forget past samples (after a data gap) but keep the learned model."""
+        self._history.clear()
+
+    def reset(self) -> None:
+        """Forget everything learned: back to the initial state."""
+        self._state = self.layout.initial(self.config.p0)
+        self._history.clear()
+
+    def clone(self) -> ArxEstimator:
+        """An untrained estimator with the same structure and settings."""
+        return ArxEstimator(self.order, self.config)
+
+    # -- read-out -----------------------------------------------------------
+    @property
+    def theta(self) -> NDArray[np.float64]:
+        """Current parameter estimate, shape (n_params,) (a copy)."""
+        return np.array(self._state[self.layout.theta], dtype=np.float64)
+
+    @property
+    def covariance(self) -> NDArray[np.float64]:
+        """Current ``P = U D U'``, shape (n_params, n_params)."""
+        return self.layout.covariance(self._state)
+
+    @property
+    def parameter_covariance(self) -> NDArray[np.float64]:
+        """Estimated ``Cov(theta) ~ sigma2 * P`` (exact for lambda = 1)."""
+        return self.sigma2 * self.covariance
+
+    @property
+    def sigma2(self) -> float:
+        """Innovation variance estimate."""
+        return self.layout.sigma2(self._state)
+
+    @property
+    def n_updates(self) -> int:
+        """Samples that changed the estimate."""
+        return int(self._state[self.layout.n_updates])
+
+    @property
+    def n_seen(self) -> int:
+        """Samples offered to the estimator (regressor ready)."""
+        return int(self._state[self.layout.n_seen])
+
+    @property
+    def trace(self) -> float:
+        """Current ``trace(P)``."""
+        return self.layout.trace(self._state)
+
+    # -- checkpoints --------------------------------------------------------
+    def to_state(self) -> dict[str, Any]:
+        """Learned state as plain data (lists of floats), without settings."""
+        return {"rls": list(self._state), "history": self._history.to_state()}
+
+    def load_state(self, state: dict[str, Any]) -> None:
+        """Restore learned state saved by :meth:`to_state`.
+
+        Raises
+        ------
+        DimensionError
+            If the saved state does not fit this estimator's order.
+        ValueError
+            If it holds non-numbers or non-finite values.
+        """
+        rls = state["rls"]
+        if len(rls) != self.layout.size:
+            raise DimensionError(
+                f"saved RLS state has {len(rls)} entries, this model needs {self.layout.size}"
+            )
+        values = [float(v) for v in rls]
+        if not all(math.isfinite(v) for v in values):
+            raise ValueError("saved RLS state holds non-finite values")
+        if min(values[self.layout.diag]) <= 0.0:
+            raise ValueError("saved RLS state has a non-positive D entry: P not positive definite")
+        history = RegressorHistory.from_state(self.order, state["history"])
+        self._state, self._history = values, history

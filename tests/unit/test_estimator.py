@@ -1,0 +1,84 @@
+"""Per-asset estimator object: lifecycle, clone, checkpoints."""
+
+import json
+
+import numpy as np
+import pytest
+
+from arxwatch.estimators.arx import ArxOrder
+from arxwatch.estimators.codec import CodecError, decode_estimator, encode_estimator
+from arxwatch.estimators.errors import DimensionError
+from arxwatch.estimators.estimator import ArxEstimator
+from arxwatch.estimators.rls import RlsConfig
+
+
+def _feed(est: ArxEstimator, n: int, seed: int) -> list:
+    rng = np.random.default_rng(seed)
+    y, out = 0.0, []
+    for _ in range(n):
+        u = [float(rng.random() > 0.5), float(rng.normal())]
+        y = 0.7 * y + 0.3 * u[0] - 0.1 * u[1] + 0.05 * float(rng.normal())
+        out.append(est.update(y, u))
+    return out
+
+
+ORDER = ArxOrder(na=1, nb=(1, 2), nk=(1, 0))
+
+
+def test_none_until_history_is_ready_then_results() -> None:
+    est = ArxEstimator(ORDER)
+    results = _feed(est, 5, 0)
+    assert results[: ORDER.depth] == [None] * ORDER.depth
+    assert all(r is not None for r in results[ORDER.depth :])
+
+
+def test_json_checkpoint_continues_bit_for_bit() -> None:
+    est = ArxEstimator(ORDER, RlsConfig(forgetting=0.99))
+    _feed(est, 300, 1)
+    restored = decode_estimator(json.loads(json.dumps(encode_estimator(est))))
+    assert restored.to_state() == est.to_state()
+    a, b = _feed(est, 50, 2), _feed(restored, 50, 2)
+    assert a == b
+
+
+def test_clone_is_untrained_twin_and_reset_forgets() -> None:
+    est = ArxEstimator(ORDER, RlsConfig(forgetting=0.97))
+    _feed(est, 100, 3)
+    twin = est.clone()
+    assert twin.config == est.config and twin.order == est.order
+    assert twin.n_updates == 0 and est.n_updates > 0
+    est.reset()
+    assert est.to_state() == twin.to_state()
+
+
+def test_restart_history_keeps_the_model() -> None:
+    est = ArxEstimator(ORDER)
+    _feed(est, 100, 4)
+    theta = est.theta
+    est.restart_history()
+    assert est.update(1.0, [1.0, 0.0]) is None
+    np.testing.assert_array_equal(est.theta, theta)
+
+
+def test_predict_matches_the_next_step_prediction() -> None:
+    est = ArxEstimator(ORDER)
+    _feed(est, 100, 5)
+    u = [1.0, 0.5]
+    predicted = est.predict(u)
+    result = est.update(2.0, u)
+    assert result is not None and result.prediction == pytest.approx(predicted, rel=1e-12)
+
+
+def test_bad_checkpoints_are_refused_with_the_place() -> None:
+    est = ArxEstimator(ORDER)
+    data = encode_estimator(est)
+    with pytest.raises(CodecError, match="estimator.version"):
+        decode_estimator({**data, "version": 99})
+    with pytest.raises(CodecError, match=r"estimator.config: unknown key\(s\) \['bogus'\]"):
+        decode_estimator({**data, "config": {**data["config"], "bogus": 1}})
+    with pytest.raises(DimensionError, match="saved RLS state has 3 entries"):
+        decode_estimator({**data, "state": {**data["state"], "rls": [0.0, 1.0, 2.0]}})
+    bad = list(data["state"]["rls"])
+    bad[est.layout.diag.start] = -1.0
+    with pytest.raises(ValueError, match="not positive definite"):
+        decode_estimator({**data, "state": {**data["state"], "rls": bad}})
