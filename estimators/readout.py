@@ -1,0 +1,559 @@
+r"""Physical read-out of an ARX parameter vector.
+
+Technicians act on static gains, time constants, dead times and offsets, not
+on raw ARX coefficients. For the model of :mod:`arxwatch.estimators.arx`,
+
+.. math::
+
+    A(q) y(k) = \sum_i B_i(q) u_i(k - nk_i) + c + e(k),
+
+with :math:`\theta = [a_1, ..., a_{na}, b_{1,1}, ..., b_{1,nb_1}, ..., c]`,
+this module computes
+
+* the static gain of input i, :math:`K_i = B_i(1) / A(1)`, with
+  :math:`A(1) = 1 + \sum_j a_j` and :math:`B_i(1) = \sum_j b_{i,j}`;
+* the offset :math:`c / A(1)`, the steady-state output with all inputs zero;
+* the poles of A, roots of :math:`z^{na} + a_1 z^{na-1} + ... + a_{na}`, and
+  whether all lie strictly inside the unit circle;
+* the dominant time constant :math:`\tau = -T_s / \ln|p|` of the pole of
+  largest modulus, and its natural frequency and damping ratio when that
+  pole is complex;
+* the dead time of input i, :math:`nk_i T_s`.
+
+Values that do not exist for the given theta (the gain of an integrating
+process, the time constant of an unstable or sign-alternating mode) are
+``nan`` and a sentence in :attr:`PhysicalReadout.notes` says why.
+
+:func:`readout_jacobian` differentiates the feature vector
+``[K_1, ..., K_m, tau, offset]`` with respect to theta so that a detector can
+carry ``Cov(theta)`` over to the physical features by the delta method.
+
+References
+----------
+L. Ljung, *System Identification: Theory for the User*, 2nd ed., Prentice
+Hall, 1999, section 4.2 (ARX model structure).
+
+K. J. Åström and B. Wittenmark, *Computer-Controlled Systems: Theory and
+Design*, 3rd ed., Prentice Hall, 1997, chapter 2 (zero-order-hold sampling,
+the pole map z = exp(s Ts), poles and zeros of sampled systems).
+"""
+
+from __future__ import annotations
+
+import cmath
+import math
+from dataclasses import dataclass
+from numbers import Real
+
+import numpy as np
+from numpy.typing import ArrayLike, NDArray
+
+from arxwatch.estimators.arx import ArxOrder
+from arxwatch.estimators.errors import DimensionError
+
+__all__ = [
+    "PhysicalReadout",
+    "feature_names",
+    "feature_vector",
+    "read_out",
+    "readout_jacobian",
+]
+
+#: A(1) counts as zero (a pole at z = 1) when |A(1)| <= this times
+#: 1 + sum|a_j|. That is some 1e6 rounding errors of the sum, and still far
+#: below any self-regulating process: |A(1)| = 1e-9 would mean a time constant
+#: of about 1e9 samples. Common practice, no source.
+_A1_RTOL = 1e-9
+
+#: A pole with |Im z| <= this times max(1, |z|) is treated as real. numpy.roots
+#: resolves a double pole only to about sqrt(eps) ~ 1.5e-8 (a triple one to
+#: eps**(1/3) ~ 6e-6), so a merged real pair can come back with a spurious
+#: imaginary part; 1e-5 rad per sample is an oscillation period of 6e5
+#: samples, nothing a technician could see. Common practice, no source.
+_IMAG_RTOL = 1e-5
+
+#: Poles whose moduli agree to this relative tolerance tie for "dominant".
+_TIE_RTOL = 1e-9
+
+#: Default relative step of the central differences: eps**(1/3) balances
+#: truncation error O(h^2) against rounding error O(eps/h)
+#: (Nocedal and Wright, Numerical Optimization, 2nd ed., 2006, section 8.1).
+_DEFAULT_STEP = float(np.finfo(np.float64).eps) ** (1.0 / 3.0)
+
+
+@dataclass(frozen=True)
+class PhysicalReadout:
+    """Physical reading of one ARX parameter vector.
+
+    Undefined values are ``nan``; :attr:`notes` explains each of them.
+
+    Attributes
+    ----------
+    gains : tuple of float, length n_inputs
+        Static gain K_i = B_i(1) / A(1) of each input, in output units per
+        input unit; ``nan`` for an integrating process (A(1) = 0). For an
+        unstable model the value is still the transfer function at z = 1,
+        but no steady state is ever reached (see :attr:`notes`).
+    offset : float or None
+        Steady-state output with all inputs at zero, c / A(1), in output
+        units; ``nan`` for an integrating process; ``None`` when the model
+        has no constant term.
+    poles : tuple of complex, length na
+        Roots of z**na + a_1 z**(na-1) + ... + a_na, sorted by decreasing
+        modulus; poles judged real carry an imaginary part of exactly 0.
+    dominant_pole : complex or None
+        The pole of largest modulus (of a complex pair, the one with
+        positive imaginary part); ``None`` when na = 0.
+    stable : bool
+        True when every pole lies strictly inside the unit circle and A(1)
+        is not zero; vacuously True for na = 0.
+    integrating : bool
+        True when A(1) is zero to rounding, i.e. a pole sits at z = 1.
+    time_constant_s : float
+        Dominant time constant in seconds: -Ts / ln|p| for the dominant pole
+        p when 0 < |p| < 1 and p is not negative real; 0.0 when every pole
+        is at z = 0 or na = 0; ``nan`` otherwise.
+    natural_frequency_rad_s : float
+        omega_n = |s| of the continuous pole s = ln(p) / Ts of a complex
+        dominant pole, in rad/s; ``nan`` when the dominant pole is real.
+    damped_frequency_rad_s : float
+        omega_d = |Im s|, the frequency of the oscillation in rad/s;
+        ``nan`` when the dominant pole is real.
+    damping_ratio : float
+        zeta = -Re(s) / |s| of a complex dominant pole (negative when
+        unstable); ``nan`` when the dominant pole is real.
+    dead_times_s : tuple of float, length n_inputs
+        nk_i * Ts: seconds from a step in u_i to the first output sample that
+        responds. A zero-order-hold sampled process with pure delay d * Ts
+        has nk = d + 1, so this includes one sample for the sampling itself.
+    sample_period_s : float
+        The sample period Ts the reading was made with.
+    notes : tuple of str
+        One plain sentence for every undefined or qualified value.
+    """
+
+    gains: tuple[float, ...]
+    offset: float | None
+    poles: tuple[complex, ...]
+    dominant_pole: complex | None
+    stable: bool
+    integrating: bool
+    time_constant_s: float
+    natural_frequency_rad_s: float
+    damped_frequency_rad_s: float
+    damping_ratio: float
+    dead_times_s: tuple[float, ...]
+    sample_period_s: float
+    notes: tuple[str, ...]
+
+
+def read_out(order: ArxOrder, theta: ArrayLike, sample_period_s: float) -> PhysicalReadout:
+    """Turn an ARX parameter vector into gains, poles, time constant and dead times.
+
+    Poles come from :func:`numpy.roots`, which forms the companion matrix of
+    the monic polynomial z**na + a_1 z**(na-1) + ... + a_na and returns its
+    eigenvalues. That is backward stable (the poles found are the exact poles
+    of coefficients perturbed by a few units of rounding, Edelman and
+    Murakami 1995), it is what an explicit companion-matrix eigenvalue call
+    would do, and it returns exact zeros for trailing zero coefficients.
+    Repeated poles are ill-conditioned and may come back as a pair with a
+    tiny imaginary part; imaginary parts below 1e-5 of the modulus are
+    therefore set to zero.
+
+    The dominant pole p is the one of largest modulus; it governs the
+    slowest mode of the response.
+
+    * Real, 0 < p < 1: zero-order-hold sampling maps a continuous pole
+      s = -1/tau to p = exp(-Ts/tau) (Åström and Wittenmark 1997), so
+      tau = -Ts / ln p.
+    * Complex pair: tau = -Ts / ln|p| is the time constant of the decay
+      envelope |p|**k = exp(-t/tau), and the continuous pole s = ln(p)/Ts
+      gives omega_n = |s|, omega_d = |Im s| and zeta = -Re(s)/|s|. The
+      envelope is chosen over "undefined" because it is the same formula as
+      for a real pole: when two real poles merge into a double pole and
+      split into a complex pair, tau stays continuous, so a drift detector
+      tracking tau does not lose the feature exactly when a loop starts to
+      ring. A note says the response oscillates.
+    * Real and negative: ln p = ln|p| + i*pi, a mode that flips sign every
+      sample (the Nyquist frequency). Zero-order-hold sampling of a real
+      continuous pole never gives it, so it has no time constant; ``nan``
+      and a note. It usually means an over-fitted or aliased model.
+    * |p| >= 1 (unstable or integrating): ``nan`` and a note.
+    * p = 0 (or na = 0): the response settles in finitely many samples;
+      tau = 0.0, the limit of -Ts/ln p as p -> 0+.
+
+    Parameters
+    ----------
+    order : ArxOrder
+        Model structure; fixes the layout of theta.
+    theta : array_like, shape (n_params,)
+        ``[a_1..a_na, b_1_1..b_1_nb1, ..., c]`` as in
+        :attr:`ArxOrder.param_names`; all entries finite.
+    sample_period_s : float
+        Sample period Ts of the model in seconds, finite and > 0.
+
+    Returns
+    -------
+    PhysicalReadout
+        The reading; undefined values are ``nan`` and explained in
+        ``notes``.
+
+    Raises
+    ------
+    TypeError
+        If ``order`` is not an :class:`ArxOrder` or ``sample_period_s`` is
+        not a real number.
+    DimensionError
+        If theta is not 1-D or its length differs from ``order.n_params``.
+    ValueError
+        If theta holds a non-finite value, or ``sample_period_s`` is not
+        finite and positive.
+
+    References
+    ----------
+    K. J. Åström and B. Wittenmark, *Computer-Controlled Systems*, 3rd ed.,
+    Prentice Hall, 1997, chapter 2 (zero-order-hold sampling of a first-order
+    system, pole map z = exp(s Ts)).
+
+    L. Ljung, *System Identification: Theory for the User*, 2nd ed.,
+    Prentice Hall, 1999, section 4.2.
+
+    A. Edelman and H. Murakami, "Polynomial roots from companion matrix
+    eigenvalues", *Mathematics of Computation* 64 (1995), 763-776.
+
+    Examples
+    --------
+    A first-order lag with gain 2 and time constant 300 s sampled every 30 s:
+
+    >>> import math
+    >>> order = ArxOrder(na=1, nb=(1,), nk=(1,), constant=False)
+    >>> a = math.exp(-30.0 / 300.0)
+    >>> r = read_out(order, [-a, 2.0 * (1.0 - a)], sample_period_s=30.0)
+    >>> round(r.gains[0], 9), round(r.time_constant_s, 6), r.dead_times_s, r.stable
+    (2.0, 300.0, (30.0,), True)
+
+    An integrator has no static gain:
+
+    >>> r = read_out(ArxOrder(na=1, nb=(1,), nk=(1,)), [-1.0, 0.5, 0.0], 60.0)
+    >>> r.gains, r.offset, r.integrating
+    ((nan,), nan, True)
+    >>> r.notes[0]
+    'pole at z=1.000: integrating process, static gain and offset undefined'
+    """
+    if not isinstance(order, ArxOrder):
+        raise TypeError(f"order must be an ArxOrder, got {type(order).__name__}")
+    theta_arr = _check_theta(order, theta)
+    ts = _check_sample_period(sample_period_s)
+    return _read_out_unchecked(order, theta_arr, ts)
+
+
+def feature_names(order: ArxOrder) -> tuple[str, ...]:
+    """Names of the entries of :func:`feature_vector`, in order.
+
+    Parameters
+    ----------
+    order : ArxOrder
+        Model structure.
+
+    Returns
+    -------
+    tuple of str, length n_inputs + 1 + int(order.constant)
+        ``gain_1 .. gain_m``, ``time_constant_s`` and, when the model has a
+        constant term, ``offset``. Dead times are not features: they are
+        fixed by ``order.nk`` and do not depend on theta.
+
+    Examples
+    --------
+    >>> feature_names(ArxOrder(na=2, nb=(1, 2), nk=(1, 3)))
+    ('gain_1', 'gain_2', 'time_constant_s', 'offset')
+    """
+    names = [f"gain_{i + 1}" for i in range(order.n_inputs)]
+    names.append("time_constant_s")
+    if order.constant:
+        names.append("offset")
+    return tuple(names)
+
+
+def feature_vector(readout: PhysicalReadout) -> NDArray[np.float64]:
+    """Stack the theta-dependent physical features of a reading.
+
+    Parameters
+    ----------
+    readout : PhysicalReadout
+        A reading from :func:`read_out`.
+
+    Returns
+    -------
+    ndarray, shape (n_inputs + 1 + int(has offset),)
+        ``[K_1, ..., K_m, tau_s, offset]`` (offset only when the model has a
+        constant term), named by :func:`feature_names`; undefined entries
+        are ``nan``.
+
+    Examples
+    --------
+    >>> r = read_out(ArxOrder(na=1, nb=(1,), nk=(1,)), [-0.5, 1.0, 0.25], 10.0)
+    >>> feature_vector(r).round(6).tolist()
+    [2.0, 14.42695, 0.5]
+    """
+    values = list(readout.gains)
+    values.append(readout.time_constant_s)
+    if readout.offset is not None:
+        values.append(readout.offset)
+    return np.asarray(values, dtype=np.float64)
+
+
+def readout_jacobian(
+    order: ArxOrder,
+    theta: ArrayLike,
+    sample_period_s: float,
+    *,
+    relative_step: float = _DEFAULT_STEP,
+) -> NDArray[np.float64]:
+    """Numerical Jacobian of the physical features with respect to theta.
+
+    Column j is the central difference
+    ``(f(theta + h_j e_j) - f(theta - h_j e_j)) / (2 h_j)`` with
+    ``h_j = relative_step * max(|theta_j|, 1)``, where f is
+    :func:`feature_vector` of :func:`read_out`. The gains and the offset
+    are rational in theta, tau depends on it through a polynomial root, so
+    one scheme serves all features. The delta method then gives
+    ``Cov(f) ~= J @ Cov(theta) @ J.T``.
+
+    Entries are ``nan`` where a feature is undefined at theta or within one
+    step of it (for example a pole within h of the unit circle). Where the
+    dominant pole changes identity (two poles of equal modulus) tau is not
+    differentiable and the difference quotient is only a one-sided mixture.
+
+    Parameters
+    ----------
+    order : ArxOrder
+        Model structure.
+    theta : array_like, shape (n_params,)
+        Parameter vector, laid out as :attr:`ArxOrder.param_names`.
+    sample_period_s : float
+        Sample period Ts in seconds, finite and > 0.
+    relative_step : float, optional
+        Relative finite-difference step, finite and > 0; default
+        eps**(1/3) ~ 6.1e-6.
+
+    Returns
+    -------
+    J : ndarray, shape (n_features, n_params)
+        ``J[r, j] = d feature_r / d theta_j`` with rows named by
+        :func:`feature_names` and columns by :attr:`ArxOrder.param_names`;
+        n_features = n_inputs + 1 + int(order.constant).
+
+    Raises
+    ------
+    TypeError
+        If ``order`` is not an :class:`ArxOrder` or ``sample_period_s`` is
+        not a real number.
+    DimensionError
+        If theta is not 1-D or its length differs from ``order.n_params``.
+    ValueError
+        If theta holds a non-finite value, or ``sample_period_s`` or
+        ``relative_step`` is not finite and positive.
+
+    References
+    ----------
+    J. Nocedal and S. J. Wright, *Numerical Optimization*, 2nd ed.,
+    Springer, 2006, section 8.1 (central differences and step choice).
+
+    G. Casella and R. L. Berger, *Statistical Inference*, 2nd ed., Duxbury,
+    2002, section 5.5.4 (the delta method).
+
+    Examples
+    --------
+    For y(k) = 0.5 y(k-1) + u(k-1), K = b / (1 + a_1) so dK/da_1 = -4 and
+    dK/db = 2:
+
+    >>> order = ArxOrder(na=1, nb=(1,), nk=(1,), constant=False)
+    >>> J = readout_jacobian(order, [-0.5, 1.0], 10.0)
+    >>> J.shape
+    (2, 2)
+    >>> J[0].round(6).tolist()
+    [-4.0, 2.0]
+    """
+    if not isinstance(order, ArxOrder):
+        raise TypeError(f"order must be an ArxOrder, got {type(order).__name__}")
+    theta_arr = _check_theta(order, theta)
+    ts = _check_sample_period(sample_period_s)
+    if (
+        isinstance(relative_step, bool)
+        or not isinstance(relative_step, Real)
+        or not math.isfinite(float(relative_step))
+        or float(relative_step) <= 0.0
+    ):
+        raise ValueError(f"relative_step must be a finite number > 0, got {relative_step!r}")
+    rel = float(relative_step)
+    n_features = order.n_inputs + 1 + int(order.constant)
+    jac = np.empty((n_features, order.n_params), dtype=np.float64)
+    at_theta = feature_vector(_read_out_unchecked(order, theta_arr, ts))
+    for j in range(order.n_params):
+        h = rel * max(abs(float(theta_arr[j])), 1.0)
+        plus = theta_arr.copy()
+        minus = theta_arr.copy()
+        plus[j] += h
+        minus[j] -= h
+        # Divide by the step actually taken after rounding theta_j +- h.
+        width = float(plus[j] - minus[j])
+        f_plus = feature_vector(_read_out_unchecked(order, plus, ts))
+        f_minus = feature_vector(_read_out_unchecked(order, minus, ts))
+        jac[:, j] = (f_plus - f_minus) / width
+    # A feature undefined at theta has no derivative there, even when both
+    # neighbours are finite (the gain of an integrator jumps from -inf to +inf).
+    jac[np.isnan(at_theta), :] = np.nan
+    return jac
+
+
+def _check_theta(order: ArxOrder, theta: ArrayLike) -> NDArray[np.float64]:
+    arr = np.array(theta, dtype=np.float64)  # a copy: the caller's array is left alone
+    if arr.ndim != 1:
+        raise DimensionError(
+            f"theta must be 1-D with shape (n_params={order.n_params},), got shape {arr.shape}"
+        )
+    if arr.shape[0] != order.n_params:
+        raise DimensionError(
+            f"theta has {arr.shape[0]} entries but order.n_params is {order.n_params} "
+            f"({', '.join(order.param_names)})"
+        )
+    bad = ~np.isfinite(arr)
+    if bad.any():
+        names = order.param_names
+        found = ", ".join(f"{names[j]}={arr[j]!r}" for j in np.flatnonzero(bad))
+        raise ValueError(f"theta must be finite, got {found}")
+    return arr
+
+
+def _check_sample_period(sample_period_s: float) -> float:
+    if isinstance(sample_period_s, bool) or not isinstance(sample_period_s, Real):
+        raise TypeError(
+            f"sample_period_s must be a real number of seconds, got {sample_period_s!r}"
+        )
+    ts = float(sample_period_s)
+    if not math.isfinite(ts) or ts <= 0.0:
+        raise ValueError(f"sample_period_s must be finite and > 0 seconds, got {sample_period_s!r}")
+    return ts
+
+
+def _format_pole(p: complex) -> str:
+    if p.imag == 0.0:
+        return f"{p.real:.3f}"
+    return f"{p.real:.3f}{p.imag:+.3f}j"
+
+
+def _sorted_poles(a: NDArray[np.float64]) -> list[complex]:
+    if a.shape[0] == 0:
+        return []
+    raw = np.roots(np.concatenate(([1.0], a)))
+    poles: list[complex] = []
+    for z in raw:
+        p = complex(z)
+        if abs(p.imag) <= _IMAG_RTOL * max(1.0, abs(p)):
+            p = complex(p.real, 0.0)
+        poles.append(p)
+    poles.sort(key=lambda p: (-abs(p), -p.real, -p.imag))
+    return poles
+
+
+def _dominant(poles: list[complex]) -> complex:
+    largest = abs(poles[0])
+    ties = [p for p in poles if abs(p) >= largest * (1.0 - _TIE_RTOL)]
+    # Prefer the slowest-looking mode among equal moduli: the largest real
+    # part, then the member of a conjugate pair with positive imaginary part.
+    return max(ties, key=lambda p: (p.real, p.imag))
+
+
+def _read_out_unchecked(order: ArxOrder, theta: NDArray[np.float64], ts: float) -> PhysicalReadout:
+    notes: list[str] = []
+    a = theta[: order.na]
+    a_at_one = 1.0 + float(np.sum(a))
+    scale = 1.0 + float(np.sum(np.abs(a)))
+    integrating = abs(a_at_one) <= _A1_RTOL * scale
+
+    poles = _sorted_poles(a)
+    if integrating:
+        near_one = min(poles, key=lambda p: abs(p - 1.0))
+        undefined = "static gain and offset" if order.constant else "static gain"
+        notes.append(
+            f"pole at z={_format_pole(near_one)}: integrating process, {undefined} undefined"
+        )
+        outside = [p for p in poles if abs(p) >= 1.0]
+        if outside:
+            outside.remove(min(outside, key=lambda p: abs(p - 1.0)))
+    else:
+        outside = [p for p in poles if abs(p) >= 1.0]
+    if outside:
+        listed = ", ".join(f"z={_format_pole(p)} (|z|={abs(p):.3f})" for p in outside)
+        qualifier = (
+            ""
+            if integrating
+            else "; static gains are the transfer function at z=1, not a reachable steady state"
+        )
+        notes.append(f"unstable: pole(s) {listed} on or outside the unit circle{qualifier}")
+    stable = not integrating and all(abs(p) < 1.0 for p in poles)
+
+    nan = float("nan")
+    if integrating:
+        gains = tuple(nan for _ in range(order.n_inputs))
+    else:
+        gains = tuple(
+            float(np.sum(theta[order.input_slice(i)])) / a_at_one for i in range(order.n_inputs)
+        )
+    offset: float | None = None
+    if order.constant:
+        offset = nan if integrating else float(theta[-1]) / a_at_one
+
+    dominant: complex | None = None
+    tau = nan
+    omega_n = nan
+    omega_d = nan
+    zeta = nan
+    if not poles:
+        tau = 0.0
+        notes.append("no poles (na=0): the response settles in finitely many samples, tau 0 s")
+    else:
+        dominant = _dominant(poles)
+        modulus = abs(dominant)
+        label = _format_pole(dominant)
+        if modulus == 0.0:
+            tau = 0.0
+            notes.append("all poles at z=0: the response settles in finitely many samples, tau 0 s")
+        elif modulus >= 1.0 or integrating:
+            notes.append(
+                f"dominant pole z={label} is not inside the unit circle: time constant undefined"
+            )
+        elif dominant.imag == 0.0 and dominant.real < 0.0:
+            notes.append(
+                f"dominant pole z={label} is real and negative: the output alternates sign "
+                "every sample, which no sampled continuous-time lag does; time constant undefined"
+            )
+        else:
+            tau = -ts / math.log(modulus)
+        if dominant.imag != 0.0 and modulus > 0.0:
+            s = cmath.log(dominant) / ts
+            omega_n = abs(s)
+            omega_d = abs(s.imag)
+            zeta = -s.real / omega_n
+            if modulus < 1.0:
+                notes.append(
+                    f"dominant poles z={dominant.real:.3f}±{abs(dominant.imag):.3f}j are complex: "
+                    f"the response oscillates (period {2.0 * math.pi / omega_d:.4g} s, damping "
+                    f"ratio {zeta:.3f}); time constant is that of the decay envelope, -Ts/ln|z|"
+                )
+
+    return PhysicalReadout(
+        gains=gains,
+        offset=offset,
+        poles=tuple(poles),
+        dominant_pole=dominant,
+        stable=stable,
+        integrating=integrating,
+        time_constant_s=tau,
+        natural_frequency_rad_s=omega_n,
+        damped_frequency_rad_s=omega_d,
+        damping_ratio=zeta,
+        dead_times_s=tuple(float(nk) * ts for nk in order.nk),
+        sample_period_s=ts,
+        notes=tuple(notes),
+    )
