@@ -1,21 +1,21 @@
-"""ARX model structure and regressor construction.
+r"""ARX model structure and regressor construction.
 
 The multi-input ARX model is
 
 .. math::
 
-    A(q) y(k) = \\sum_i B_i(q) u_i(k - nk_i) + c + e(k)
+    A(q) y(k) = \sum_i B_i(q) u_i(k - nk_i) + c + e(k)
 
 with :math:`A(q) = 1 + a_1 q^{-1} + ... + a_{na} q^{-na}` and
 :math:`B_i(q) = b_{i,1} + b_{i,2} q^{-1} + ... + b_{i,nb_i} q^{-nb_i+1}`.
-Written as a linear regression :math:`y(k) = \\varphi(k)^T \\theta + e(k)`,
+Written as a linear regression :math:`y(k) = \varphi(k)^T \theta + e(k)`,
 
 .. math::
 
-    \\varphi(k) = [-y(k-1), ..., -y(k-na),
+    \varphi(k) = [-y(k-1), ..., -y(k-na),
                    u_1(k-nk_1), ..., u_1(k-nk_1-nb_1+1), ..., 1]
 
-    \\theta = [a_1, ..., a_{na}, b_{1,1}, ..., b_{1,nb_1}, ..., c]
+    \theta = [a_1, ..., a_{na}, b_{1,1}, ..., b_{1,nb_1}, ..., c]
 
 References
 ----------
@@ -25,7 +25,7 @@ Hall, 1999, section 4.2 (equation error model structure).
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -137,13 +137,12 @@ class ArxOrder:
         return slice(start, start + self.nb[i])
 
 
-def _as_int_tuple(values: Sequence[int] | int, name: str) -> tuple[int, ...]:
+def _as_int_tuple(values: object, name: str) -> tuple[int, ...]:
     if isinstance(values, (int, np.integer)) and not isinstance(values, bool):
-        values = (int(values),)
-    try:
-        items = tuple(values)
-    except TypeError:
-        raise OrderError(f"{name} must be a sequence of integers, got {values!r}") from None
+        return (int(values),)
+    if not isinstance(values, Iterable) or isinstance(values, (str, bytes)):
+        raise OrderError(f"{name} must be a sequence of integers, got {values!r}")
+    items = tuple(values)
     out = []
     for v in items:
         if isinstance(v, bool) or not isinstance(v, (int, np.integer)):

@@ -5,7 +5,6 @@ noise levels, record lengths) are illustrative: common practice, no source.
 """
 
 # Test names say what each check is; docstrings would only repeat them.
-# ruff: noqa: D103
 
 from __future__ import annotations
 

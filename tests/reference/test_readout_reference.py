@@ -6,7 +6,6 @@ source.
 """
 
 # Test names say what each check is; docstrings would only repeat them.
-# ruff: noqa: D103
 
 from __future__ import annotations
 

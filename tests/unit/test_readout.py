@@ -5,7 +5,6 @@ comment names one.
 """
 
 # Test names say what each check is; docstrings would only repeat them.
-# ruff: noqa: D103
 
 from __future__ import annotations
 

@@ -1,0 +1,147 @@
+"""Benchmark of the numerical core: per-sample RLS cost against references.
+
+Prints figures; asserts nothing. Run from the repository root:
+
+    python tests/benchmarks/bench_core.py [--samples N] [--repeat R]
+
+The per-asset path (``ArxEstimator.step``), the batched engine at 1,000 and
+10,000 assets, and, in the same run as references, padasip's ``FilterRLS``
+and statsmodels' ``RecursiveLS.fit`` (install them with ``pip install
+'.[bench]'``). Each figure is the best of ``--repeat`` runs, so background
+load inflates it less; ratios compare figures from this one run.
+"""
+
+from __future__ import annotations
+
+import argparse
+import time
+import warnings
+from collections.abc import Callable
+
+import numpy as np
+
+from arxwatch.estimators.arx import ArxOrder
+from arxwatch.estimators.batch import BatchRls
+from arxwatch.estimators.estimator import ArxEstimator
+from arxwatch.estimators.rls import RlsConfig
+
+N_PARAMS = 6
+LAMBDA = 0.995
+ORDER = ArxOrder(na=2, nb=(2, 1), nk=(1, 0))  # 6 parameters, 2 inputs
+
+
+def best_of(repeat: int, run: Callable[[], float]) -> float:
+    """Smallest of ``repeat`` timings (seconds)."""
+    return min(run() for _ in range(repeat))
+
+
+def data(samples: int, seed: int = 0) -> tuple[np.ndarray, np.ndarray]:
+    """Random regressors and outputs of a known linear model."""
+    rng = np.random.default_rng(seed)
+    phi = rng.normal(size=(samples, N_PARAMS))
+    phi[:, -1] = 1.0
+    y = phi @ np.linspace(-0.5, 0.5, N_PARAMS) + 0.1 * rng.normal(size=samples)
+    return phi, y
+
+
+def per_asset(samples: int, repeat: int) -> float:
+    """Seconds per sample of ArxEstimator.step."""
+    phi, y = data(samples)
+    rows, ys, ins = phi.tolist(), y.tolist(), phi[:, [2, 4]].tolist()
+
+    def run() -> float:
+        est = ArxEstimator(ORDER, RlsConfig(forgetting=LAMBDA))
+        step = est.step
+        start = time.perf_counter()
+        for r, v, i in zip(rows, ys, ins, strict=True):
+            step(r, v, i)
+        return (time.perf_counter() - start) / samples
+
+    return best_of(repeat, run)
+
+
+def batched(n_assets: int, steps: int, repeat: int) -> float:
+    """Seconds per asset-update of BatchRls.update at ``n_assets``."""
+    rng = np.random.default_rng(1)
+    phis = rng.normal(size=(steps, n_assets, N_PARAMS))
+    phis[:, :, -1] = 1.0
+    ys = phis @ np.linspace(-0.5, 0.5, N_PARAMS) + 0.1 * rng.normal(size=(steps, n_assets))
+    ins = np.ascontiguousarray(phis[:, :, [2, 4]])
+
+    def run() -> float:
+        batch = BatchRls(N_PARAMS, 2, n_assets, RlsConfig(forgetting=LAMBDA))
+        start = time.perf_counter()
+        for t in range(steps):
+            batch.update(phis[t], ys[t], ins[t])
+        return (time.perf_counter() - start) / (steps * n_assets)
+
+    return best_of(repeat, run)
+
+
+def padasip_rls(samples: int, repeat: int) -> float | None:
+    """Seconds per sample of padasip FilterRLS.adapt, or None if absent."""
+    try:
+        import padasip
+    except ImportError:
+        return None
+    phi, y = data(samples)
+
+    def run() -> float:
+        f = padasip.filters.FilterRLS(N_PARAMS, mu=LAMBDA, w="zeros")
+        start = time.perf_counter()
+        for k in range(samples):
+            f.adapt(y[k], phi[k])
+        return (time.perf_counter() - start) / samples
+
+    return best_of(repeat, run)
+
+
+def statsmodels_rls(samples: int, repeat: int) -> float | None:
+    """Seconds per sample of statsmodels RecursiveLS(...).fit(), or None."""
+    try:
+        import statsmodels.api as sm
+    except ImportError:
+        return None
+    phi, y = data(samples)
+
+    def run() -> float:
+        start = time.perf_counter()
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            sm.RecursiveLS(y, phi).fit()
+        return (time.perf_counter() - start) / samples
+
+    return best_of(repeat, run)
+
+
+def main() -> None:
+    """Run every benchmark and print a table with ratios and targets."""
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--samples", type=int, default=20_000, help="samples per scalar run")
+    parser.add_argument("--repeat", type=int, default=5, help="runs per figure (best kept)")
+    args = parser.parse_args()
+
+    ours = per_asset(args.samples, args.repeat)
+    pad = padasip_rls(args.samples, args.repeat)
+    smd = statsmodels_rls(args.samples, args.repeat)
+    b1k = batched(1_000, 200, args.repeat)
+    b10k = batched(10_000, 60, args.repeat)
+    state = BatchRls(N_PARAMS, 2, 1).state_bytes_per_asset
+
+    print(f"RLS update, n = {N_PARAMS} parameters, lambda = {LAMBDA}")
+    print(f"  per-asset path (ArxEstimator.step)      {ours * 1e6:8.2f} us/sample")
+    if pad is not None:
+        print(f"  padasip FilterRLS.adapt (reference)     {pad * 1e6:8.2f} us/sample"
+              f"   ratio {pad / ours:5.2f}x  (target >= 4x)")
+    if smd is not None:
+        print(f"  statsmodels RecursiveLS.fit (reference) {smd * 1e6:8.2f} us/sample"
+              f"   ratio {smd / ours:5.2f}x  (target >= 4x)")
+    print(f"  batched, 1,000 assets                   {b1k * 1e9:8.1f} ns/asset-update"
+          f"   {ours / b1k:6.1f}x the per-asset path")
+    print(f"  batched, 10,000 assets                  {b10k * 1e9:8.1f} ns/asset-update"
+          f"   {ours / b10k:6.1f}x the per-asset path  (target <= 150 ns)")
+    print(f"  batched state                           {state:8d} bytes/asset (target <= 512)")
+
+
+if __name__ == "__main__":
+    main()

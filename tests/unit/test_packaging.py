@@ -1,0 +1,33 @@
+"""Packaging: one namespace, every sub-package listed, core free of the shell."""
+
+import subprocess
+import sys
+import tomllib
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[2]
+
+
+def test_every_source_folder_is_a_listed_package() -> None:
+    config = tomllib.loads((ROOT / "pyproject.toml").read_text())["tool"]["setuptools"]
+    listed = set(config["packages"])
+    found = set()
+    for top, name in (("daemon", "arxwatch.daemon"), ("estimators", "arxwatch.estimators")):
+        for folder in [ROOT / top, *(p for p in (ROOT / top).rglob("*") if p.is_dir())]:
+            if folder.name != "__pycache__" and any(folder.glob("*.py")):
+                rel = folder.relative_to(ROOT / top).parts
+                found.add(".".join((name, *rel)))
+    assert found == listed
+
+
+def test_importing_the_core_loads_no_service_module() -> None:
+    # numpy and scipy load logging and threading themselves, so only the
+    # service-side libraries are checked.
+    code = (
+        "import sys, arxwatch.estimators\n"
+        "bad = [m for m in sys.modules if m.startswith(('arxwatch.daemon', 'paho', "
+        "'prometheus_client', 'sqlite3', 'yaml'))]\n"
+        "print(','.join(bad))\n"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == ""
