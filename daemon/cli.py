@@ -41,8 +41,9 @@ def build_parser() -> argparse.ArgumentParser:
         description="Fit a baseline on a simulated commissioning window, then track a "
         "simulated fouling coil with the live estimator. Needs no set-up.",
     )
-    demo.add_argument("--days", type=_positive_float, default=4.0,
-                      help="simulated days of operation (default: 4)")
+    demo.add_argument(
+        "--days", type=_positive_float, default=4.0, help="simulated days of operation (default: 4)"
+    )
     demo.add_argument("--seed", type=int, default=7, help="random seed (default: 7)")
     return parser
 

@@ -19,11 +19,10 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable
-from dataclasses import dataclass
 
 import numpy as np
-from numpy.typing import NDArray
 
+from arxwatch.daemon.simulate import Fault, Loop, bump_tests, daily_operation
 from arxwatch.estimators.estimator import ArxEstimator
 from arxwatch.estimators.identify import fit_arx
 from arxwatch.estimators.order import select_order
@@ -38,73 +37,36 @@ CAUTION = (
 )
 
 
-@dataclass(frozen=True)
-class CoilLoop:
-    """Valve-to-supply-air-temperature loop of the fictional AHU-C2."""
-
-    gain_c_per_pct: float = -0.11  # 100 % valve cools 24 degC air by 11 K
-    time_constant_s: float = 300.0
-    delay_samples: int = 2  # transport plus hold: 60 s at 30 s sampling
-    mixed_air_c: float = 24.0
-    noise_c: float = 0.03
-
-    def simulate(
-        self, valve_pct: NDArray[np.float64], gain_scale: NDArray[np.float64], seed: int
-    ) -> NDArray[np.float64]:
-        """Supply-air temperature for a valve trajectory (ZOH-sampled lag)."""
-        rng = np.random.default_rng(seed)
-        a = math.exp(-SAMPLE_PERIOD_S / self.time_constant_s)
-        y = np.empty_like(valve_pct)
-        y[: self.delay_samples] = self.mixed_air_c
-        for k in range(self.delay_samples, len(valve_pct)):
-            u = valve_pct[k - self.delay_samples]
-            steady = self.mixed_air_c + self.gain_c_per_pct * gain_scale[k] * u
-            y[k] = a * y[k - 1] + (1.0 - a) * steady
-        return y + self.noise_c * rng.normal(size=len(y))
-
-
-def bump_tests(hours: float, seed: int) -> NDArray[np.float64]:
-    """Valve held at random positions for 10 to 20 minutes each."""
-    rng = np.random.default_rng(seed)
-    n = int(hours * 3600 / SAMPLE_PERIOD_S)
-    valve = np.empty(n)
-    k = 0
-    while k < n:
-        hold = int(rng.integers(20, 41))
-        valve[k : k + hold] = rng.uniform(10.0, 90.0)
-        k += hold
-    return valve
-
-
-def daily_operation(days: float, seed: int) -> NDArray[np.float64]:
-    """Valve following a daily cooling load with controller activity."""
-    rng = np.random.default_rng(seed)
-    n = int(days * 86400 / SAMPLE_PERIOD_S)
-    t_h = np.arange(n) * SAMPLE_PERIOD_S / 3600.0
-    load = 45.0 + 25.0 * np.sin(2 * np.pi * (t_h - 9.0) / 24.0)
-    moves = np.cumsum(rng.normal(scale=1.5, size=n))
-    moves -= np.convolve(moves, np.ones(61) / 61, mode="same")  # keep it near the load
-    valve: NDArray[np.float64] = np.clip(load + moves, 0.0, 100.0)
-    return valve
+#: AHU-C2's cooling loop: 100 % valve cools 24 degC mixed air by 11 K.
+COIL_LOOP = Loop(
+    gain=-0.11,
+    time_constant_s=300.0,
+    dead_time_s=60.0,
+    sample_period_s=SAMPLE_PERIOD_S,
+    offset=24.0,
+    noise_std=0.03,
+)
 
 
 def run_demo(write: Callable[[str], None], days: float = 4.0, seed: int = 7) -> int:
     """Run the demonstration, writing lines through ``write``; returns 0."""
-    loop = CoilLoop()
     write("arxwatch demo - Larkspur Yard, Block C, AHU-C2 (fictional site, simulated data)")
     write("loop: chilled-water valve [%] -> supply-air temperature [degC], sampled every 30 s")
     write("")
 
     # 1-2. Commissioning window and baseline.
-    valve0 = bump_tests(8.0, seed)
-    temp0 = loop.simulate(valve0, np.ones_like(valve0), seed + 1)
+    per_hour = int(3600 / SAMPLE_PERIOD_S)
+    valve0 = bump_tests(8 * per_hour, seed)
+    temp0 = COIL_LOOP.simulate(valve0, seed=seed + 1)
     search = select_order(temp0, valve0[:, None], range(1, 3), range(1, 3), range(1, 5))
     order = search.best.order
     baseline = fit_arx(order, temp0, valve0[:, None])
     base = read_out(order, baseline.fit.theta, SAMPLE_PERIOD_S)
     write("baseline from an 8 h commissioning window of valve bump tests")
-    write(f"  order chosen by BIC : na={order.na} nb={order.nb[0]} nk={order.nk[0]}"
-          f" ({len(search.candidates)} candidates)")
+    write(
+        f"  order chosen by BIC : na={order.na} nb={order.nb[0]} nk={order.nk[0]}"
+        f" ({len(search.candidates)} candidates)"
+    )
     write(f"  fit on held-back data: {baseline.fit_percent_validation:.1f} %")
     write(f"  static gain          : {base.gains[0]:+.4f} degC per % valve")
     write(f"  time constant        : {base.time_constant_s:.0f} s")
@@ -113,14 +75,12 @@ def run_demo(write: Callable[[str], None], days: float = 4.0, seed: int = 7) -> 
     write("")
 
     # 3. Live operation with a sensor glitch and a fouling coil.
-    valve = daily_operation(days, seed + 2)
-    n = len(valve)
-    per_hour = int(3600 / SAMPLE_PERIOD_S)
-    scale = np.ones(n)
-    start, ramp = 2 * 24 * per_hour, 12 * per_hour
-    scale[start : start + ramp] = np.linspace(1.0, 0.6, ramp)
-    scale[start + ramp :] = 0.6
-    temp = loop.simulate(valve, scale, seed + 3)
+    n = int(days * 24 * per_hour)
+    valve = daily_operation(n, SAMPLE_PERIOD_S, seed + 2)
+    fouling = Fault("gain_loss", start_s=2 * 86400.0, magnitude=0.4, ramp_s=12 * 3600.0)
+    temp = COIL_LOOP.simulate(valve, (fouling,), seed=seed + 3)
+    t_s = np.arange(n, dtype=np.float64) * SAMPLE_PERIOD_S
+    coil = 1.0 - fouling.magnitude * fouling.profile(t_s)
     temp[30 * per_hour] += 8.0  # one glitching sample from the sensor
 
     estimator = ArxEstimator(order, RlsConfig(forgetting=0.998))
@@ -134,9 +94,11 @@ def run_demo(write: Callable[[str], None], days: float = 4.0, seed: int = 7) -> 
             dg = 100.0 * (abs(live.gains[0]) - abs(base.gains[0])) / abs(base.gains[0])
             dt = 100.0 * (live.time_constant_s - base.time_constant_s) / base.time_constant_s
             day, hour = divmod(k // per_hour, 24)
-            write(f"  day {day + 1} {hour:02d}:00   {live.gains[0]:+.4f}        {dg:+6.1f} %"
-                  f"   {live.time_constant_s:7.0f}  {dt:+6.1f} %"
-                  f"   {100 * scale[k]:.0f} % of commissioned")
+            write(
+                f"  day {day + 1} {hour:02d}:00   {live.gains[0]:+.4f}        {dg:+6.1f} %"
+                f"   {live.time_constant_s:7.0f}  {dt:+6.1f} %"
+                f"   {100 * coil[k]:.0f} % of commissioned"
+            )
     write("")
     write("The fouling coil shows as a falling static gain while the time constant holds.")
     write("Change detectors and alerts come with the drift monitor.")

@@ -1,0 +1,211 @@
+"""Simulated HVAC loops with scheduled faults, for the demo and the tests.
+
+A loop is a first- or second-order lag with dead time from one actuator
+signal (valve or damper %, fan speed %) to one measured output, sampled with
+a zero-order hold:
+
+    x1(k) = a1 x1(k-1) + (1 - a1) (offset + K * u_eff(k - d))
+    x2(k) = a2 x2(k-1) + (1 - a2) x1(k)        (second order only)
+    y(k)  = x_last(k) + bias(k) + noise(k)
+
+with ``a = exp(-Ts / tau)``. Faults act on the physics (gain, time
+constant, actuator, offset) or on the sensor (bias, noise), each from its
+own start time, abruptly or over a ramp. Everything here is invented test
+and demo data, not a model of any real plant.
+
+References
+----------
+K. J. Åström and B. Wittenmark, *Computer-Controlled Systems*, 3rd ed.,
+Prentice Hall, 1997, section 2.3 (zero-order-hold sampling of a first-order
+system: a = exp(-h / T)).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import Literal
+
+import numpy as np
+from numpy.typing import NDArray
+
+FaultKind = Literal[
+    "gain_loss",  # actuator delivers less effect (fouled coil, weak pump), fraction lost
+    "stuck_actuator",  # actuator stays where it was at the start, whatever the command
+    "offset",  # steady extra load or leak, in output units
+    "sensor_bias",  # measured value drifts from the true one, in output units
+    "noise_increase",  # sensor noise multiplied by (1 + magnitude)
+    "slow_response",  # time constant multiplied by (1 + magnitude)
+]
+FAULT_KINDS: tuple[FaultKind, ...] = (
+    "gain_loss",
+    "stuck_actuator",
+    "offset",
+    "sensor_bias",
+    "noise_increase",
+    "slow_response",
+)
+
+
+@dataclass(frozen=True)
+class Fault:
+    """A fault from ``start_s``, reaching ``magnitude`` after ``ramp_s``.
+
+    Parameters
+    ----------
+    kind : str
+        One of :data:`FAULT_KINDS`.
+    start_s : float
+        Seconds from the start of the simulation.
+    magnitude : float
+        Size at full development; its unit depends on the kind (see
+        :data:`FaultKind`). Ignored for ``stuck_actuator``.
+    ramp_s : float
+        0 for an abrupt fault; otherwise the time to full size.
+
+    Raises
+    ------
+    ValueError
+        If the kind is unknown or a number is out of range.
+    """
+
+    kind: FaultKind
+    start_s: float
+    magnitude: float = 0.0
+    ramp_s: float = 0.0
+
+    def __post_init__(self) -> None:
+        if self.kind not in FAULT_KINDS:
+            raise ValueError(f"fault kind must be one of {FAULT_KINDS}, got {self.kind!r}")
+        for name in ("start_s", "magnitude", "ramp_s"):
+            value = getattr(self, name)
+            if not isinstance(value, (int, float)) or not math.isfinite(value):
+                raise ValueError(f"fault {name} must be a finite number, got {value!r}")
+        if self.start_s < 0 or self.ramp_s < 0:
+            raise ValueError("fault start_s and ramp_s must be >= 0")
+        if self.kind == "gain_loss" and not 0.0 <= self.magnitude <= 1.0:
+            raise ValueError(f"gain_loss magnitude is a fraction in [0, 1], got {self.magnitude}")
+
+    def profile(self, t_s: NDArray[np.float64]) -> NDArray[np.float64]:
+        """Development of the fault over time: 0 before, 1 when fully developed."""
+        if self.ramp_s == 0.0:
+            return (t_s >= self.start_s).astype(np.float64)
+        return np.clip((t_s - self.start_s) / self.ramp_s, 0.0, 1.0)
+
+
+@dataclass(frozen=True)
+class Loop:
+    """One simulated control loop (actuator -> measured output).
+
+    Parameters
+    ----------
+    gain : float
+        Static gain, output units per actuator unit.
+    time_constant_s : float
+        Dominant time constant.
+    dead_time_s : float
+        Transport delay, a whole number of sample periods.
+    sample_period_s : float
+        Sampling period Ts.
+    offset : float
+        Output at zero actuator signal (e.g. mixed-air temperature).
+    noise_std : float
+        Standard deviation of the white sensor noise.
+    second_time_constant_s : float
+        Second lag in series for a second-order loop; 0 for first order.
+    """
+
+    gain: float
+    time_constant_s: float
+    dead_time_s: float
+    sample_period_s: float
+    offset: float = 0.0
+    noise_std: float = 0.02
+    second_time_constant_s: float = 0.0
+
+    def __post_init__(self) -> None:
+        if self.sample_period_s <= 0 or self.time_constant_s <= 0:
+            raise ValueError("sample_period_s and time_constant_s must be > 0")
+        delay = self.dead_time_s / self.sample_period_s
+        if self.dead_time_s < 0 or abs(delay - round(delay)) > 1e-9:
+            raise ValueError(
+                f"dead_time_s must be a non-negative multiple of sample_period_s, "
+                f"got {self.dead_time_s} at Ts = {self.sample_period_s}"
+            )
+
+    @property
+    def delay_samples(self) -> int:
+        """Dead time in samples."""
+        return round(self.dead_time_s / self.sample_period_s)
+
+    def simulate(
+        self, u: NDArray[np.float64], faults: tuple[Fault, ...] = (), seed: int = 0
+    ) -> NDArray[np.float64]:
+        """Measured output for the actuator command ``u``, shape (N,).
+
+        The commanded ``u`` is what a controller publishes; a stuck
+        actuator makes the plant see its frozen position instead.
+        """
+        u = np.asarray(u, dtype=np.float64)
+        n = u.shape[0]
+        ts = self.sample_period_s
+        t = np.arange(n, dtype=np.float64) * ts
+        gain = np.full(n, self.gain)
+        tau = np.full(n, self.time_constant_s)
+        load = np.full(n, self.offset)
+        bias = np.zeros(n)
+        noise = np.full(n, self.noise_std)
+        u_eff = u.copy()
+        for fault in faults:
+            p = fault.profile(t)
+            if fault.kind == "gain_loss":
+                gain = gain * (1.0 - fault.magnitude * p)
+            elif fault.kind == "slow_response":
+                tau = tau * (1.0 + fault.magnitude * p)
+            elif fault.kind == "offset":
+                load = load + fault.magnitude * p
+            elif fault.kind == "sensor_bias":
+                bias = bias + fault.magnitude * p
+            elif fault.kind == "noise_increase":
+                noise = noise * (1.0 + fault.magnitude * p)
+            else:  # stuck_actuator
+                start = min(int(math.ceil(fault.start_s / ts)), n - 1)
+                u_eff[start:] = u[start]
+        a1 = np.exp(-ts / tau)
+        a2 = math.exp(-ts / self.second_time_constant_s) if self.second_time_constant_s else 0.0
+        d = self.delay_samples
+        x1 = x2 = load[0] + gain[0] * u_eff[0]
+        y = np.empty(n)
+        for k in range(n):
+            drive = load[k] + gain[k] * u_eff[max(k - d, 0)]
+            x1 = a1[k] * x1 + (1.0 - a1[k]) * drive
+            x2 = a2 * x2 + (1.0 - a2) * x1 if self.second_time_constant_s else x1
+            y[k] = x2
+        rng = np.random.default_rng(seed)
+        out: NDArray[np.float64] = y + bias + noise * rng.normal(size=n)
+        return out
+
+
+def bump_tests(
+    n: int, seed: int, low: float = 10.0, high: float = 90.0, hold: tuple[int, int] = (20, 41)
+) -> NDArray[np.float64]:
+    """Actuator held at random positions for a random number of samples each."""
+    rng = np.random.default_rng(seed)
+    u = np.empty(n)
+    k = 0
+    while k < n:
+        span = int(rng.integers(*hold))
+        u[k : k + span] = rng.uniform(low, high)
+        k += span
+    return u
+
+
+def daily_operation(n: int, sample_period_s: float, seed: int) -> NDArray[np.float64]:
+    """Actuator following a daily load (peak mid-afternoon) with controller moves."""
+    rng = np.random.default_rng(seed)
+    t_h = np.arange(n) * sample_period_s / 3600.0
+    load = 45.0 + 25.0 * np.sin(2 * np.pi * (t_h - 9.0) / 24.0)
+    moves = np.cumsum(rng.normal(scale=1.5, size=n))
+    moves -= np.convolve(moves, np.ones(61) / 61, mode="same")  # stay near the load
+    u: NDArray[np.float64] = np.clip(load + moves, 0.0, 100.0)
+    return u

@@ -1,0 +1,93 @@
+"""Alert lifecycle: persistence, hysteresis, severities, no flapping, state."""
+
+import json
+
+import numpy as np
+import pytest
+
+from arxwatch.daemon.decide import AlertPolicy, AlertTracker
+from arxwatch.estimators.detect.evidence import Evidence
+
+
+def ev(stat: float, threshold: float = 5.0, signal: str = "innovation") -> Evidence:
+    return Evidence("innovation_mean", "behaviour", stat, threshold, stat >= threshold, signal)
+
+
+def run(tracker: AlertTracker, stats: list[float]) -> list[tuple[int, str, str]]:
+    out = []
+    for k, s in enumerate(stats):
+        t = tracker.observe(ev(s), float(k))
+        if t is not None:
+            out.append((k, t.state, t.severity))
+    return out
+
+
+def test_single_excursion_does_not_raise() -> None:
+    assert run(AlertTracker(AlertPolicy()), [1, 9, 1, 1, 9, 1, 1, 1, 1]) == []
+
+
+def test_raise_after_m_of_n_and_clear_after_quiet_run() -> None:
+    policy = AlertPolicy(raise_m=3, raise_n=5, clear_n=4)
+    events = run(AlertTracker(policy), [6, 1, 6, 6, 6, 1, 1, 1, 1, 1])
+    assert events == [(3, "raised", "warning"), (8, "cleared", "warning")]
+
+
+def test_escalates_to_critical_once() -> None:
+    policy = AlertPolicy(raise_m=2, raise_n=3, critical_ratio=2.0, critical_m=2)
+    events = run(AlertTracker(policy), [6, 6, 11, 12, 13, 12])
+    assert events == [(1, "raised", "warning"), (3, "raised", "critical")]
+
+
+def test_first_seen_is_the_first_alarm_of_the_episode() -> None:
+    tracker = AlertTracker(AlertPolicy(raise_m=3, raise_n=5))
+    transitions = [tracker.observe(ev(s), 100.0 + k) for k, s in enumerate([1, 6, 1, 6, 6])]
+    raised = [t for t in transitions if t is not None]
+    assert raised[0].first_seen_s == 101.0 and raised[0].sample_time_s == 104.0
+
+
+def test_noise_at_the_threshold_does_not_flap() -> None:
+    # A statistic hovering around its threshold (N(threshold, 10 %)) for a
+    # long time: persistence plus hysteresis give one raise and no clears.
+    rng = np.random.default_rng(0)
+    stats = (5.0 * (1 + 0.1 * rng.normal(size=20_000))).tolist()
+    events = run(AlertTracker(AlertPolicy()), stats)
+    assert [e[1] for e in events].count("raised") <= 2
+    assert [e[1] for e in events].count("cleared") == 0
+
+
+def test_pairs_are_independent() -> None:
+    tracker = AlertTracker(AlertPolicy(raise_m=1, raise_n=1, critical_m=1))
+    assert tracker.observe(ev(9, signal="gain_1"), 0.0) is not None
+    assert tracker.observe(ev(1, signal="time_constant_s"), 0.0) is None
+    assert tracker.active() == {"innovation_mean/gain_1": "warning"}
+
+
+def test_state_round_trip_continues_identically() -> None:
+    policy = AlertPolicy(raise_m=2, raise_n=4, clear_n=3)
+    a = AlertTracker(policy)
+    run(a, [6, 1, 6, 7])
+    b = AlertTracker(policy)
+    b.load_state(json.loads(json.dumps(a.to_state())))
+    tail = [1, 1, 1, 1, 6, 6]
+    assert run(a, tail) == run(b, tail)
+
+
+@pytest.mark.parametrize(
+    ("kwargs", "match"),
+    [
+        ({"raise_m": 6, "raise_n": 5}, r"raise_m \(6\) cannot exceed raise_n \(5\)"),
+        ({"clear_ratio": 1.5}, "clear_ratio must be in"),
+        ({"critical_ratio": 0.5}, "critical_ratio must be > 1"),
+        ({"clear_n": 0}, "clear_n must be an integer >= 1"),
+        ({"raise_n": 100, "raise_m": 3}, "raise_n must be <= 64"),
+    ],
+)
+def test_policy_errors_name_the_setting(kwargs: dict, match: str) -> None:
+    with pytest.raises(ValueError, match=match):
+        AlertPolicy(**kwargs)
+
+
+def test_malformed_state_is_refused_with_the_key() -> None:
+    tracker = AlertTracker()
+    with pytest.raises(ValueError, match="'innovation_mean/x': malformed"):
+        tracker.load_state({"innovation_mean/x": {"alarms": 1}})
