@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import argparse
 import logging
+import os
 import sys
 from importlib.metadata import PackageNotFoundError, version
 
@@ -66,8 +67,14 @@ def main(argv: list[str] | None = None) -> int:
         format="%(asctime)s %(levelname)s %(name)s: %(message)s",
         stream=sys.stderr,
     )
-    if args.command == "demo":
-        return run_demo(print, days=args.days, seed=args.seed)
+    try:
+        if args.command == "demo":
+            return run_demo(print, days=args.days, seed=args.seed)
+    except BrokenPipeError:
+        # The reader went away (e.g. piped into head): not an error of ours.
+        # Point stdout at devnull so the interpreter's final flush is quiet.
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 0
     raise AssertionError(f"unhandled command {args.command!r}")  # argparse enforces choices
 
 
