@@ -5,6 +5,16 @@ Pure numpy/scipy: no I/O, clocks, threads or logging. The service shell in
 """
 
 from arxwatch.estimators.arx import ArxOrder, RegressorHistory, regression_matrix
+from arxwatch.estimators.baseline import (
+    AcceptanceRule,
+    Baseline,
+    BaselineResult,
+    BaselineSet,
+    LearnerConfig,
+    LiveBaselineLearner,
+    SearchRanges,
+    fit_baseline,
+)
 from arxwatch.estimators.batch import BatchRls, BatchStep
 from arxwatch.estimators.codec import CodecError, decode_estimator, encode_estimator
 from arxwatch.estimators.errors import DimensionError, OrderError
@@ -25,6 +35,14 @@ from arxwatch.estimators.readout import PhysicalReadout, read_out, readout_jacob
 from arxwatch.estimators.rls import RlsConfig
 
 __all__ = [
+    "AcceptanceRule",
+    "Baseline",
+    "BaselineResult",
+    "BaselineSet",
+    "LearnerConfig",
+    "LiveBaselineLearner",
+    "SearchRanges",
+    "fit_baseline",
     "ArxEstimator",
     "ArxFit",
     "ArxOrder",
