@@ -15,7 +15,7 @@ Guards around the update
 ------------------------
 * **Wind-up bound.** With forgetting, directions of parameter space that the
   inputs do not excite grow as ``lambda**-k``. Every ``TRACE_CHECK_EVERY``
-  samples ``trace(P)`` is computed and, if above ``trace_max *
+  updates (from the first) ``trace(P)`` is computed and, if above ``trace_max *
   lambda**TRACE_CHECK_EVERY``, ``D`` is scaled down to that level (the
   constant-trace idea; scaling keeps ``P`` positive definite). One update
   grows ``P`` by at most ``1 / lambda`` (it subtracts a positive
@@ -35,11 +35,13 @@ At n = 6 parameters numpy's per-call overhead costs more than the arithmetic,
 so the per-asset kernel is straight-line Python on floats, unrolled for the
 model size. The unrolled source is generated once per (size, settings) by
 :func:`kernel_source`; the batched engine runs the *same* generated source
-with each state entry a numpy array over assets (struct-of-arrays) and
-``np.where``/``np.minimum`` in place of the scalar conditionals. Both back
-ends therefore perform the same IEEE operations in the same order and agree
-to the last bit. The state of one asset is a flat list of floats (layout in
-:class:`StateLayout`), of a batch a list of 1-D arrays, one per entry.
+with each state entry a numpy array over assets (struct-of-arrays),
+``np.where``/``np.minimum`` in place of the scalar conditionals, and state
+updates as in-place statements (``d *= a``) that write into the state arrays
+instead of allocating new ones. Both back ends therefore perform the same
+IEEE operations in the same order and agree to the last bit. The state of
+one asset is a flat list of floats (layout in :class:`StateLayout`), of a
+batch a list of 1-D arrays, one per entry.
 
 References
 ----------
@@ -58,7 +60,7 @@ of Cambridge Computing Service, 2009 (the exponentially weighted moments).
 from __future__ import annotations
 
 import math
-from collections.abc import Callable, MutableSequence, Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from functools import lru_cache
 from typing import Any
@@ -71,9 +73,9 @@ from arxwatch.estimators.errors import DimensionError
 #: Samples between two checks of trace(P) against its cap.
 TRACE_CHECK_EVERY = 16
 
-#: What one step returns: (innovation, normalised innovation, Huber weight,
-#: excitation, 1.0 if the estimate was updated else 0.0).
-StepResult = tuple[Any, Any, Any, Any]
+#: What one step returns: (prediction, innovation, normalised innovation,
+#: Huber weight, whether the estimate was updated, excitation).
+StepResult = tuple[Any, Any, Any, Any, Any, Any]
 Kernel = Callable[..., StepResult]
 
 
@@ -128,7 +130,7 @@ class RlsConfig:
             _check_number("min_input_std", self.min_input_std, low=0.0)
 
     def trace_bound(self, n_params: int) -> float:
-        """The effective ``trace(P)`` cap for a model of ``n_params``."""
+        """Return the effective ``trace(P)`` cap for a model of ``n_params``."""
         return self.trace_max if self.trace_max is not None else n_params * self.p0
 
 
@@ -263,9 +265,9 @@ class StateLayout:
         return total
 
     def sigma2(self, state: Sequence[float]) -> float:
-        """Innovation variance estimate (1.0 before the first update)."""
-        weight = state[self.weight]
-        return state[self.rss] / weight if weight > 0.0 else 1.0
+        """Innovation variance estimate (1.0 while no error has been seen)."""
+        rss = state[self.rss]
+        return rss / state[self.weight] if rss > 0.0 else 1.0
 
 
 class _Source:
@@ -283,11 +285,16 @@ def kernel_source(layout: StateLayout, config: RlsConfig, vectorised: bool) -> s
     """Python source of the unrolled UD-RLS step for ``layout`` and ``config``.
 
     The function it defines, ``step(s, phi, y, u)``, updates the state ``s``
-    **in place** (a list of floats) and returns (innovation, normalised
-    innovation, Huber weight, excitation, 1.0 if updated else 0.0). When
-    ``vectorised`` it is ``step(s, phi, y, u, check)`` over a list of 1-D
+    (a list of floats) and returns (prediction, innovation, normalised
+    innovation, Huber weight, updated, excitation), the fields of
+    :class:`arxwatch.estimators.estimator.StepResult` in their order. When
+    ``vectorised`` it is ``step(s, phi, y, u, check)`` over lists of 1-D
     arrays, ``check`` a bool array marking the assets due for the trace
-    check. See the module docstring for the algorithm and sources.
+    check; it updates the arrays of ``s`` in place and returns arrays (the
+    weight, ``updated`` and the excitation may be scalars shared by all
+    assets). A ``phi`` or ``u`` of the wrong length raises
+    :class:`~arxwatch.estimators.errors.DimensionError` before anything
+    changes. See the module docstring for the algorithm and sources.
 
     A sample of weight ``w`` is a measurement of variance ``1 / w``: in
     Bierman's recursion it starts ``alpha_0 = lambda / w`` instead of
@@ -306,33 +313,46 @@ def kernel_source(layout: StateLayout, config: RlsConfig, vectorised: bool) -> s
         raise AssertionError("kernel variables disagree with StateLayout")
     lam = repr(float(config.forgetting))
     cap = repr(float(config.trace_bound(n) * config.forgetting**TRACE_CHECK_EVERY))
-    gated = config.min_input_std is not None and m > 0
-
-    def sel(cond: str, a: str, b: str) -> str:
-        return f"_where({cond}, {a}, {b})" if vectorised else f"({a} if {cond} else {b})"
+    floor = config.min_input_std
+    gated = floor is not None and m > 0
 
     # Inline comparisons beat builtin calls on floats; same values for non-NaN.
     def lesser(a: str, b: str) -> str:
         return f"_minimum({a}, {b})" if vectorised else f"({a} if {a} < {b} else {b})"
 
-    def greater(a: str, b: str) -> str:
-        return f"_maximum({a}, {b})" if vectorised else f"({a} if {a} > {b} else {b})"
+    def chain(name: str, *steps: tuple[str, str]) -> None:
+        # `name = ((name op1 x1) op2 x2) ...`: one expression on floats; on
+        # arrays one in-place statement per operation, which writes into the
+        # state array instead of allocating a new one. Same operations, same
+        # order (each x is evaluated whole), so the same bits either way.
+        if vectorised:
+            for op, operand in steps:
+                src.add(f"{name} {op}= {operand}")
+        else:
+            expr = name
+            for op, operand in steps:
+                expr = f"({expr} {op} {f'({operand})' if ' ' in operand else operand})"
+            src.add(f"{name} = {expr}")
 
     src = _Source()
     src.add(f"{', '.join(names)}, = s")
-    src.add(f"{', '.join(f'p{j}' for j in range(n))}, = phi")
-    if m:
-        src.add(f"{', '.join(f'x{i}' for i in range(m))}, = u")
+    # Unpacking checks the lengths; a try block costs nothing when it passes.
+    src.add("try:")
+    src.add(f"    {', '.join(f'p{j}' for j in range(n))}, = phi")
+    src.add(f"    {', '.join(f'x{i}' for i in range(m))}, = u" if m else "    () = u")
+    src.add("except ValueError:")
+    src.add(f"    raise _DimensionError(f'phi needs {n} and inputs {m} values, '")
+    src.add("                          f'got {len(phi)} and {len(u)}') from None")
     src.add(f"warm = nupd >= {float(config.warmup_updates)!r}")
-    src.add("nseen = nseen + 1.0")
+    chain("nseen", ("+", "1.0"))
     # Excitation: weighted input moments over the memory (Finch 2009).
-    src.add(f"exw = {lam} * exw + 1.0")
+    chain("exw", ("*", lam), ("+", "1.0"))
     src.add("rate = 1.0 / exw")
     for i in range(m):
         src.add(f"diff = x{i} - m{i}")
         src.add("incr = rate * diff")
-        src.add(f"m{i} = m{i} + incr")
-        src.add(f"v{i} = (1.0 - rate) * (v{i} + diff * incr)")
+        chain(f"m{i}", ("+", "incr"))
+        chain(f"v{i}", ("+", "diff * incr"), ("*", "1.0 - rate"))
     if m:
         src.add(f"lowest = {vars_[0]}")
         for v in vars_[1:]:
@@ -340,14 +360,16 @@ def kernel_source(layout: StateLayout, config: RlsConfig, vectorised: bool) -> s
         src.add("excitation = _sqrt(lowest)")
     else:
         src.add("excitation = _inf")
-    # Innovation with the prior estimate; f = U' phi, g = D f, info = phi' P phi.
+    # Innovation with the prior estimate; f = U' phi (f_0 = phi_0), g = D f,
+    # info = phi' P phi. g is kept as k, the start of the gain recursion.
+    f = ["p0", *(f"f{j}" for j in range(1, n))]
     src.add("e = y" + "".join(f" - p{j} * t{j}" for j in range(n)))
-    for j in range(n):
+    for j in range(1, n):
         src.add(f"f{j} = p{j}" + "".join(f" + u{i}_{j} * p{i}" for i in range(j)))
     for j in range(n):
-        src.add(f"g{j} = d{j} * f{j}")
+        src.add(f"k{j} = d{j} * {f[j]}")
     for j in range(n):
-        src.add(f"h{j} = f{j} * g{j}")
+        src.add(f"h{j} = {f[j]} * k{j}")
     src.add("info = " + " + ".join(f"h{j}" for j in range(n)))
     if not vectorised:
         # A non-finite phi, y or input makes e, info or the variance non-finite.
@@ -356,50 +378,77 @@ def kernel_source(layout: StateLayout, config: RlsConfig, vectorised: bool) -> s
         src.add(f"if not _isfinite({probe}):")
         src.add("    raise ValueError(f'non-finite sample: y={y!r}, phi={phi!r}, inputs={u!r}')")
     if vectorised:
-        src.add("sigma2 = _where(wsum > 0.0, rss / _maximum(wsum, 1e-300), 1.0)")
+        src.add("sigma2 = _where(rss > 0.0, rss / _maximum(wsum, 1e-300), 1.0)")
     else:
-        src.add("sigma2 = rss / wsum if wsum > 0.0 else 1.0")
+        # No error seen yet (or only exact fits): the noise level is unknown,
+        # so innovations are scaled by 1 rather than divided by zero.
+        src.add("sigma2 = rss / wsum if rss > 0.0 else 1.0")
     src.add(f"nrm = e / _sqrt(sigma2 * ({lam} + info) / {lam})")
     # Huber weight w: the sample counts as a measurement of variance 1 / w.
-    if config.huber_k is not None:
-        k = repr(float(config.huber_k))
-        src.add("big = " + greater("abs(nrm)", k))
-        src.add("w = " + sel("warm", f"{k} / big", "1.0"))
-        src.add("alpha = " + sel("warm", f"big * {float(config.forgetting / config.huber_k)!r}", lam))
-    else:
+    if config.huber_k is None:
         src.add("w = 1.0")
-        src.add(f"alpha = {lam}")
+        src.add(f"a0 = {lam}")
+    elif vectorised:
+        k = repr(float(config.huber_k))
+        src.add(f"big = _maximum(abs(nrm), {k})")
+        src.add(f"w = _where(warm, {k} / big, 1.0)")
+        src.add(f"a0 = _where(warm, big * {float(config.forgetting / config.huber_k)!r}, {lam})")
+    else:
+        # One branch for w and alpha_0, and max(|nrm|, k) without a call to
+        # abs() (nrm is finite here).
+        k = repr(float(config.huber_k))
+        src.add("if warm:")
+        src.add(f"    big = nrm if nrm > {k} else -nrm if nrm < -{k} else {k}")
+        src.add(f"    w = {k} / big")
+        src.add(f"    a0 = big * {float(config.forgetting / config.huber_k)!r}")
+        src.add("else:")
+        src.add("    w = 1.0")
+        src.add(f"    a0 = {lam}")
     # Freeze while the inputs do not excite the model.
-    if gated:
+    if floor is not None and gated:
         both = "&" if vectorised else "and"
-        src.add(f"frozen = warm {both} (excitation < {float(config.min_input_std)!r})")
-        if not vectorised:
+        src.add(f"frozen = warm {both} (excitation < {float(floor)!r})")
+        if vectorised:
+            # The update below writes into the state arrays: keep what the
+            # frozen assets must get back.
+            src.add("held = frozen.any()")
+            src.add("if held:")
+            for name in [*learned, "nupd"]:
+                src.add(f"    o_{name} = {name}.copy()")
+        else:
             src.add("if frozen:")
             src.indent += 1
             for idx, name in enumerate(names):
                 if name not in learned:
                     src.add(f"s[{idx}] = {name}")
-            src.add("return e, nrm, w, excitation, 0.0")
+            src.add("return y - e, e, nrm, w, False, excitation")
             src.indent -= 1
-    src.add("gate = " + sel("frozen", "0.0", "1.0") if gated and vectorised else "gate = 1.0")
-    # Bierman's UD update; k ends as the unnormalised gain P phi.
+    # Bierman's UD update with alpha_j = a_j; k ends as the unnormalised gain
+    # P phi. The text's mu = -f_j / alpha_{j-1} enters as u - k * r with
+    # r = -mu: negation is exact, so this is the same number with one
+    # operation less. k_j = g_j is first changed in column j + 1.
     for j in range(n):
-        src.add("ap = alpha")
-        src.add(f"alpha = ap + h{j}")
-        src.add(f"d{j} = d{j} * ap / (alpha * {lam})")
+        src.add(f"a{j + 1} = a{j} + h{j}")
+        chain(f"d{j}", ("*", f"a{j}"), ("/", f"a{j + 1} * {lam}"))
         if j:
-            src.add(f"mu = -f{j} / ap")
+            src.add(f"r = f{j} / a{j}")
         for i in range(j):
-            # Both right-hand sides use the old U[i, j].
-            src.add(f"u{i}_{j}, k{i} = u{i}_{j} + k{i} * mu, k{i} + u{i}_{j} * g{j}")
-        src.add(f"k{j} = g{j}")
-    src.add("stp = e / alpha")
+            # Both updates use the old U[i, j] and the old k_i.
+            if vectorised:
+                src.add(f"uk = u{i}_{j} * k{j}")
+                chain(f"u{i}_{j}", ("-", f"k{i} * r"))
+                chain(f"k{i}", ("+", "uk"))
+            else:
+                src.add(f"u{i}_{j}, k{i} = u{i}_{j} - k{i} * r, k{i} + u{i}_{j} * k{j}")
+    src.add(f"stp = e / a{n}")
     for j in range(n):
-        src.add(f"t{j} = t{j} + k{j} * stp")
-    src.add(f"rss = {lam} * (rss + w * e * stp)")
-    src.add(f"wsum = {lam} * wsum + 1.0")
-    src.add("nupd = nupd + 1.0")
-    # Wind-up guard: every TRACE_CHECK_EVERY samples cap trace(P) at `cap`.
+        chain(f"t{j}", ("+", f"k{j} * stp"))
+    chain("rss", ("+", "w * e * stp"), ("*", lam))
+    chain("wsum", ("*", lam), ("+", "1.0"))
+    chain("nupd", ("+", "1.0"))
+    # Wind-up guard: on updates 1, 1 + K, 1 + 2K, ... (K = TRACE_CHECK_EVERY)
+    # cap trace(P) at `cap`; the first check also brings the initial P = p0 I,
+    # whose trace is the bound itself, under the cap.
     exact = " + ".join(
         f"d{j} * (1.0" + "".join(f" + u{i}_{j} * u{i}_{j}" for i in range(j)) + ")"
         for j in range(n)
@@ -410,19 +459,24 @@ def kernel_source(layout: StateLayout, config: RlsConfig, vectorised: bool) -> s
         src.add(f"trace = {exact}")
         src.add(f"scale = _where(check & (trace > {cap}), {cap} / trace, 1.0)")
     else:
-        src.add(f"if nseen % {float(TRACE_CHECK_EVERY)!r} == 0.0:")
+        # Below the cap the scale would be 1.0, and d * 1.0 == d: skip it.
+        src.add(f"if nupd % {float(TRACE_CHECK_EVERY)!r} == 1.0:")
         src.indent += 1
         src.add(f"trace = {exact}")
-        src.add(f"scale = {cap} / trace if trace > {cap} else 1.0")
+        src.add(f"if trace > {cap}:")
+        src.indent += 1
+        src.add(f"scale = {cap} / trace")
     for j in range(n):
-        src.add(f"d{j} = d{j} * scale")
-    src.indent -= 1
+        chain(f"d{j}", ("*", "scale"))
+    src.indent = 1
     if vectorised and gated:
-        for idx, name in enumerate(names):
-            if name in [*learned, "nupd"]:
-                src.add(f"{name} = _where(frozen, s[{idx}], {name})")
+        src.add("if held:")
+        for name in [*learned, "nupd"]:
+            src.add(f"    _copyto({name}, o_{name}, where=frozen)")
+    # Stores the new floats; on arrays the entries are already the same objects.
     src.add(f"s[:] = ({', '.join(names)},)")
-    src.add("return e, nrm, w, excitation, gate")
+    updated = "~frozen" if vectorised and gated else "True"
+    src.add(f"return y - e, e, nrm, w, {updated}, excitation")
     args = "s, phi, y, u, check" if vectorised else "s, phi, y, u"
     return f"def step({args}):\n" + "\n".join(src.lines) + "\n"
 
@@ -443,8 +497,8 @@ def build_kernel(layout: StateLayout, config: RlsConfig, vectorised: bool = Fals
     Returns
     -------
     callable
-        ``step(s, phi, y, u[, check]) -> (e, eps, w, excitation, updated)``,
-        mutating ``s``.
+        ``step(s, phi, y, u[, check]) -> (prediction, e, eps, w, updated,
+        excitation)``, mutating ``s``.
     """
     if vectorised:
         namespace: dict[str, Any] = {
@@ -452,15 +506,17 @@ def build_kernel(layout: StateLayout, config: RlsConfig, vectorised: bool = Fals
             "_minimum": np.minimum,
             "_maximum": np.maximum,
             "_sqrt": np.sqrt,
+            "_copyto": np.copyto,
             "_inf": math.inf,
+            "_DimensionError": DimensionError,
         }
     else:
         namespace = {
             "_minimum": min,
-            "_maximum": max,
             "_sqrt": math.sqrt,
             "_inf": math.inf,
             "_isfinite": math.isfinite,
+            "_DimensionError": DimensionError,
         }
     source = kernel_source(layout, config, vectorised)
     exec(compile(source, f"<arxwatch rls kernel n={layout.n_params}>", "exec"), namespace)

@@ -8,7 +8,9 @@ The per-asset path (``ArxEstimator.step``), the batched engine at 1,000 and
 10,000 assets, and, in the same run as references, padasip's ``FilterRLS``
 and statsmodels' ``RecursiveLS.fit`` (install them with ``pip install
 '.[bench]'``). Each figure is the best of ``--repeat`` runs, so background
-load inflates it less; ratios compare figures from this one run.
+load inflates it less; the repeats of all contenders are interleaved, so
+each figure samples the same spells of background load and the ratios
+compare like with like.
 """
 
 from __future__ import annotations
@@ -30,9 +32,17 @@ LAMBDA = 0.995
 ORDER = ArxOrder(na=2, nb=(2, 1), nk=(1, 0))  # 6 parameters, 2 inputs
 
 
-def best_of(repeat: int, run: Callable[[], float]) -> float:
-    """Smallest of ``repeat`` timings (seconds)."""
-    return min(run() for _ in range(repeat))
+Timer = Callable[[], float]
+
+
+def best_of(repeat: int, runs: dict[str, Timer | None]) -> dict[str, float]:
+    """Smallest of ``repeat`` timings (seconds) of each run, taken in turns."""
+    timers = {name: run for name, run in runs.items() if run is not None}
+    best = dict.fromkeys(timers, float("inf"))
+    for _ in range(repeat):
+        for name, run in timers.items():
+            best[name] = min(best[name], run())
+    return best
 
 
 def data(samples: int, seed: int = 0) -> tuple[np.ndarray, np.ndarray]:
@@ -44,8 +54,8 @@ def data(samples: int, seed: int = 0) -> tuple[np.ndarray, np.ndarray]:
     return phi, y
 
 
-def per_asset(samples: int, repeat: int) -> float:
-    """Seconds per sample of ArxEstimator.step."""
+def per_asset(samples: int) -> Timer:
+    """Timer: seconds per sample of ArxEstimator.step."""
     phi, y = data(samples)
     rows, ys, ins = phi.tolist(), y.tolist(), phi[:, [2, 4]].tolist()
 
@@ -57,11 +67,11 @@ def per_asset(samples: int, repeat: int) -> float:
             step(r, v, i)
         return (time.perf_counter() - start) / samples
 
-    return best_of(repeat, run)
+    return run
 
 
-def batched(n_assets: int, steps: int, repeat: int) -> float:
-    """Seconds per asset-update of BatchRls.update at ``n_assets``."""
+def batched(n_assets: int, steps: int) -> Timer:
+    """Timer: seconds per asset-update of BatchRls.update at ``n_assets``."""
     rng = np.random.default_rng(1)
     phis = rng.normal(size=(steps, n_assets, N_PARAMS))
     phis[:, :, -1] = 1.0
@@ -75,11 +85,11 @@ def batched(n_assets: int, steps: int, repeat: int) -> float:
             batch.update(phis[t], ys[t], ins[t])
         return (time.perf_counter() - start) / (steps * n_assets)
 
-    return best_of(repeat, run)
+    return run
 
 
-def padasip_rls(samples: int, repeat: int) -> float | None:
-    """Seconds per sample of padasip FilterRLS.adapt, or None if absent."""
+def padasip_rls(samples: int) -> Timer | None:
+    """Timer: seconds per sample of padasip FilterRLS.adapt, or None if absent."""
     try:
         import padasip
     except ImportError:
@@ -93,11 +103,11 @@ def padasip_rls(samples: int, repeat: int) -> float | None:
             f.adapt(y[k], phi[k])
         return (time.perf_counter() - start) / samples
 
-    return best_of(repeat, run)
+    return run
 
 
-def statsmodels_rls(samples: int, repeat: int) -> float | None:
-    """Seconds per sample of statsmodels RecursiveLS(...).fit(), or None."""
+def statsmodels_rls(samples: int) -> Timer | None:
+    """Timer: seconds per sample of statsmodels RecursiveLS(...).fit(), or None."""
     try:
         import statsmodels.api as sm
     except ImportError:
@@ -111,7 +121,7 @@ def statsmodels_rls(samples: int, repeat: int) -> float | None:
             sm.RecursiveLS(y, phi).fit()
         return (time.perf_counter() - start) / samples
 
-    return best_of(repeat, run)
+    return run
 
 
 def main() -> None:
@@ -121,11 +131,15 @@ def main() -> None:
     parser.add_argument("--repeat", type=int, default=5, help="runs per figure (best kept)")
     args = parser.parse_args()
 
-    ours = per_asset(args.samples, args.repeat)
-    pad = padasip_rls(args.samples, args.repeat)
-    smd = statsmodels_rls(args.samples, args.repeat)
-    b1k = batched(1_000, 200, args.repeat)
-    b10k = batched(10_000, 60, args.repeat)
+    best = best_of(args.repeat, {
+        "ours": per_asset(args.samples),
+        "pad": padasip_rls(args.samples),
+        "smd": statsmodels_rls(args.samples),
+        "b1k": batched(1_000, 200),
+        "b10k": batched(10_000, 60),
+    })
+    ours, b1k, b10k = best["ours"], best["b1k"], best["b10k"]
+    pad, smd = best.get("pad"), best.get("smd")
     state = BatchRls(N_PARAMS, 2, 1).state_bytes_per_asset
 
     print(f"RLS update, n = {N_PARAMS} parameters, lambda = {LAMBDA}")

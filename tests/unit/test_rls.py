@@ -18,7 +18,7 @@ def textbook_rls(phis, ys, lam, p0):
     """
     n = phis.shape[1]
     theta, p = np.zeros(n), np.eye(n) * p0
-    for phi, y in zip(phis, ys):
+    for phi, y in zip(phis, ys, strict=True):
         gain = p @ phi / (lam + phi @ p @ phi)
         theta = theta + gain * (y - phi @ theta)
         p = (p - np.outer(gain, phi @ p)) / lam
@@ -32,7 +32,7 @@ def test_ud_form_equals_covariance_form() -> None:
     ys = phis @ np.array([0.5, -1.0, 2.0, 0.1]) + 0.05 * rng.normal(size=400)
     cfg = RlsConfig(forgetting=0.99, p0=100.0, huber_k=None)
     est = ArxEstimator(ArxOrder(na=2, nb=(1,), nk=(1,)), cfg)
-    for phi, y in zip(phis, ys):
+    for phi, y in zip(phis, ys, strict=True):
         est.step(phi.tolist(), float(y), [float(phi[2])])
     theta, p = textbook_rls(phis, ys, 0.99, 100.0)
     np.testing.assert_allclose(est.theta, theta, rtol=1e-9, atol=1e-12)
@@ -47,8 +47,9 @@ def test_sigma2_is_the_residual_mean_square_without_forgetting() -> None:
     rng = np.random.default_rng(1)
     phis = rng.normal(size=(500, 3))
     ys = phis @ np.array([1.0, 2.0, 3.0]) + 0.3 * rng.normal(size=500)
-    est = ArxEstimator(ArxOrder(na=0, nb=(2,), nk=(0,)), RlsConfig(forgetting=1.0, p0=1e8, huber_k=None))
-    for phi, y in zip(phis, ys):
+    exact = RlsConfig(forgetting=1.0, p0=1e8, huber_k=None)
+    est = ArxEstimator(ArxOrder(na=0, nb=(2,), nk=(0,)), exact)
+    for phi, y in zip(phis, ys, strict=True):
         est.step(phi.tolist(), float(y), [float(phi[0])])
     theta, rss, *_ = np.linalg.lstsq(phis, ys, rcond=None)
     assert est.sigma2 == pytest.approx(rss[0] / 500, rel=1e-6)
@@ -181,3 +182,22 @@ def test_generated_source_is_plain_python() -> None:
     assert src.startswith("def step(s, phi, y, u):")
     vec = kernel_source(StateLayout(3, 1), RlsConfig(), vectorised=True)
     assert vec.startswith("def step(s, phi, y, u, check):")
+
+
+def test_wrong_input_count_is_refused_before_any_change() -> None:
+    est = ArxEstimator(ArxOrder(na=1, nb=(1,), nk=(1,)))
+    before = est.to_state()
+    with pytest.raises(DimensionError, match="phi needs 3 and inputs 1 values, got 3 and 2"):
+        est.step([1.0, 2.0, 3.0], 1.0, [1.0, 2.0])
+    no_inputs = ArxEstimator(ArxOrder(na=2, nb=(), nk=(), constant=True))
+    with pytest.raises(DimensionError, match="inputs 0 values, got 3 and 1"):
+        no_inputs.step([1.0, 2.0, 3.0], 1.0, [1.0])
+    assert est.to_state() == before
+
+
+def test_step_result_fields() -> None:
+    est = ArxEstimator(ArxOrder(na=1, nb=(1,), nk=(1,)))
+    res = est.step([0.5, 1.0, 1.0], 2.0, [1.0])
+    assert type(res).__name__ == "StepResult"
+    assert res.prediction + res.innovation == 2.0
+    assert res.updated is True and res.weight == 1.0
