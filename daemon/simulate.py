@@ -28,6 +28,7 @@ from typing import Literal
 
 import numpy as np
 from numpy.typing import NDArray
+from scipy.signal import lfilter
 
 FaultKind = Literal[
     "gain_loss",  # actuator delivers less effect (fouled coil, weak pump), fraction lost
@@ -205,7 +206,7 @@ def daily_operation(n: int, sample_period_s: float, seed: int) -> NDArray[np.flo
     rng = np.random.default_rng(seed)
     t_h = np.arange(n) * sample_period_s / 3600.0
     load = 45.0 + 25.0 * np.sin(2 * np.pi * (t_h - 9.0) / 24.0)
-    moves = np.cumsum(rng.normal(scale=1.5, size=n))
-    moves -= np.convolve(moves, np.ones(61) / 61, mode="same")  # stay near the load
+    # Controller moves: a stationary AR(1) wander around the load (std ~6 %).
+    moves = lfilter([1.0], [1.0, -0.97], rng.normal(scale=1.5, size=n))
     u: NDArray[np.float64] = np.clip(load + moves, 0.0, 100.0)
     return u

@@ -249,10 +249,11 @@ class RegressorHistory:
     [-1.0, 1.0, 1.0]
     """
 
-    __slots__ = ("order", "_y", "_u", "_count")
+    __slots__ = ("order", "_depth", "_y", "_u", "_count")
 
     def __init__(self, order: ArxOrder) -> None:
         self.order = order
+        self._depth = order.depth  # cached: this runs per sample
         self._y: list[float] = [0.0] * order.na  # _y[0] = y(k-1)
         # _u[i][0] = u_i(k-1), _u[i][1] = u_i(k-2), ...
         self._u: list[list[float]] = [[0.0] * max(order.input_depth - 1, 0) for _ in order.nb]
@@ -261,7 +262,7 @@ class RegressorHistory:
     @property
     def ready(self) -> bool:
         """Whether enough samples have been pushed for a full regressor."""
-        return self._count >= self.order.depth
+        return self._count >= self._depth
 
     def clear(self) -> None:
         """Forget the history (after a gap the old samples are not the past)."""
@@ -305,7 +306,7 @@ class RegressorHistory:
             if past:
                 past.insert(0, float(u_now[i]))
                 past.pop()
-        if self._count < self.order.depth:
+        if self._count < self._depth:
             self._count += 1
 
     def to_state(self) -> dict[str, object]:

@@ -143,6 +143,67 @@ class ArxEstimator:
         phi = self._history.regressor(u)
         return math.fsum(p * t for p, t in zip(phi, self._state[self.layout.theta], strict=True))
 
+    def warm_start(
+        self, theta: Sequence[float], covariance: NDArray[np.float64], sigma2: float | None = None
+    ) -> None:
+        """Start from a known model (e.g. a baseline) instead of from zero.
+
+        Parameters
+        ----------
+        theta : sequence of float, length n_params
+            Starting estimate.
+        covariance : ndarray, shape (n_params, n_params)
+            Starting ``P`` (unscaled: ``Cov(theta) / sigma2``), symmetric
+            positive definite. Factorised as ``U D U'`` by a Cholesky
+            factorisation of the index-reversed matrix.
+        sigma2 : float, optional
+            Known innovation variance: counted as one memory's worth of
+            samples, and robust weighting engages at once. Without it the
+            noise level is learned from scratch.
+
+        Raises
+        ------
+        DimensionError
+            If a shape disagrees with the model.
+        ValueError
+            If ``covariance`` is not symmetric positive definite or a value
+            is not finite.
+        """
+        n = self.layout.n_params
+        t = np.asarray(theta, dtype=np.float64)
+        p = np.asarray(covariance, dtype=np.float64)
+        if t.shape != (n,) or p.shape != (n, n):
+            raise DimensionError(
+                f"warm start needs theta ({n},) and covariance ({n}, {n}), "
+                f"got {t.shape} and {p.shape}"
+            )
+        if not (np.all(np.isfinite(t)) and np.all(np.isfinite(p))):
+            raise ValueError("warm start values must be finite")
+        if not np.allclose(p, p.T, rtol=1e-10, atol=0.0):
+            raise ValueError("warm start covariance must be symmetric")
+        try:
+            # J P J = L L' with J the exchange matrix gives P = R R', R = J L J
+            # upper triangular; then U = R diag(R)^-1 and D = diag(R)^2.
+            low = np.linalg.cholesky(p[::-1, ::-1])
+        except np.linalg.LinAlgError:
+            raise ValueError("warm start covariance must be positive definite") from None
+        r = low[::-1, ::-1]
+        diag = np.diag(r)
+        u = r / diag
+        state = self.layout.initial(self.config.p0)
+        state[self.layout.theta] = t.tolist()
+        state[self.layout.upper] = [float(u[i, j]) for j in range(n) for i in range(j)]
+        state[self.layout.diag] = (diag * diag).tolist()
+        if sigma2 is not None:
+            if not (math.isfinite(sigma2) and sigma2 > 0.0):
+                raise ValueError(f"warm start sigma2 must be positive and finite, got {sigma2!r}")
+            lam = self.config.forgetting
+            memory = 1.0 / (1.0 - lam) if lam < 1.0 else float(self.config.warmup_updates + 1)
+            state[self.layout.rss] = sigma2 * memory
+            state[self.layout.weight] = memory
+            state[self.layout.n_updates] = float(self.config.warmup_updates)
+        self._state = state
+
     def restart_history(self) -> None:
         """Forget past samples (after a data gap) but keep the learned model."""
         self._history.clear()

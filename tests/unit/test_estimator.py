@@ -82,3 +82,18 @@ def test_bad_checkpoints_are_refused_with_the_place() -> None:
     bad[est.layout.diag.start] = -1.0
     with pytest.raises(ValueError, match="not positive definite"):
         decode_estimator({**data, "state": {**data["state"], "rls": bad}})
+
+
+def test_warm_start_sets_theta_and_p_exactly() -> None:
+    rng = np.random.default_rng(8)
+    a = rng.normal(size=(5, 5))
+    p = a @ a.T + 0.1 * np.eye(5)
+    theta = rng.normal(size=5)
+    est = ArxEstimator(ORDER)
+    est.warm_start(theta, p)
+    np.testing.assert_allclose(est.covariance, p, rtol=1e-12)
+    np.testing.assert_array_equal(est.theta, theta)
+    with pytest.raises(ValueError, match="positive definite"):
+        est.warm_start(theta, -p)
+    with pytest.raises(DimensionError, match="warm start needs theta"):
+        est.warm_start(theta[:2], p)

@@ -1,0 +1,60 @@
+"""Asset monitor: modes, checkpoints, records."""
+
+import json
+
+import jsonschema
+import numpy as np
+import pytest
+
+from arxwatch.daemon.alert import SignalNames, load_schema
+from arxwatch.daemon.monitor import AssetMonitor, MonitorConfig
+from arxwatch.daemon.simulate import Fault, daily_operation
+from arxwatch.estimators.baseline import Baseline, BaselineSet
+
+
+def test_fault_raises_records_that_follow_the_schema(run_asset) -> None:
+    records, monitor = run_asset(3.0, (Fault("offset", start_s=1.5 * 86400, magnitude=0.3),))
+    assert records and monitor.active()
+    schema = load_schema()
+    for record in records:
+        jsonschema.validate(record, schema)
+    first = records[0]
+    assert first["state"] == "raised" and first["sample_time"] >= "2026-01-02T12:00"
+
+
+def test_checkpoint_mid_run_continues_identically(plant, baseline: Baseline) -> None:
+    n = plant.per_day
+    u = daily_operation(n, plant.sample_period_s, 9)
+    y = plant.loop.simulate(u, (Fault("gain_loss", start_s=0.5 * 86400, magnitude=0.5),), seed=10)
+    a = AssetMonitor("a", BaselineSet((baseline,)), plant.names)
+    half = n // 2
+    for k in range(half):
+        a.step(plant.start_s + k * 60.0, float(y[k]), [float(u[k])])
+    b = AssetMonitor("a", BaselineSet((baseline,)), plant.names)
+    b.load_state(json.loads(json.dumps(a.to_state())))
+    tail_a, tail_b = [], []
+    for k in range(half, n):
+        tail_a += a.step(plant.start_s + k * 60.0, float(y[k]), [float(u[k])])
+        tail_b += b.step(plant.start_s + k * 60.0, float(y[k]), [float(u[k])])
+    assert tail_a == tail_b and tail_a
+
+
+def test_samples_of_a_mode_without_baseline_are_skipped(plant, baseline: Baseline) -> None:
+    data = baseline.to_dict()
+    data["mode"] = "occupied"
+    occupied = Baseline.from_dict(data)
+    monitor = AssetMonitor("a", BaselineSet((occupied,)), plant.names)
+    rng = np.random.default_rng(0)
+    before = json.dumps(monitor.to_state()["modes"])
+    for k in range(100):
+        assert monitor.step(float(k), float(rng.normal()), [50.0], mode="unoccupied") == []
+    assert monitor.skipped == 100
+    assert json.dumps(monitor.to_state()["modes"]) == before  # nothing learned or judged
+
+
+def test_bad_construction_is_refused(baseline: Baseline) -> None:
+    two = SignalNames("t", "degC", ("valve", "damper"), ("%", "%"))
+    with pytest.raises(ValueError, match="names give 2 input"):
+        AssetMonitor("a", BaselineSet((baseline,)), two)
+    with pytest.raises(ValueError, match="evaluate_every must be >= 1"):
+        MonitorConfig(evaluate_every=0)
