@@ -44,6 +44,7 @@ import cmath
 import math
 from dataclasses import dataclass
 from numbers import Real
+from typing import Any
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
@@ -445,7 +446,24 @@ def _format_pole(p: complex) -> str:
 def _sorted_poles(a: NDArray[np.float64]) -> list[complex]:
     if a.shape[0] == 0:
         return []
-    raw = np.roots(np.concatenate(([1.0], a)))
+    raw: list[complex] | NDArray[Any]
+    if a.shape[0] == 1:
+        raw = [complex(-a[0])]
+    elif a.shape[0] == 2:
+        # Closed form for the common second-order case: it runs every time
+        # the monitor reads the live model, and np.roots costs ~100 us.
+        # Stable form of the quadratic formula (Press et al., Numerical
+        # Recipes, 3rd ed., 2007, section 5.6).
+        b, c = float(a[0]), float(a[1])
+        disc = b * b - 4.0 * c
+        if disc < 0.0:  # an exact conjugate pair
+            im = 0.5 * math.sqrt(-disc)
+            raw = [complex(-0.5 * b, im), complex(-0.5 * b, -im)]
+        else:
+            q = -0.5 * (b + math.copysign(math.sqrt(disc), b))
+            raw = [complex(q), complex(c / q)] if q != 0.0 else [0j, 0j]
+    else:
+        raw = np.roots(np.concatenate(([1.0], a)))
     poles: list[complex] = []
     for z in raw:
         p = complex(z)
