@@ -31,7 +31,7 @@ Methods* 11(23), 1982 (winsorising observations before a CUSUM).
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -46,6 +46,7 @@ from arxwatch.estimators.detect.cusum import Cusum, CusumConfig
 from arxwatch.estimators.detect.evidence import Evidence
 from arxwatch.estimators.detect.parameter import FeatureDrift, FeatureDriftConfig
 from arxwatch.estimators.detect.prewhiten import PrewhitenConfig, Prewhitener
+from arxwatch.estimators.detect.quality import QualityConfig, SignalQuality
 from arxwatch.estimators.detect.variance import VarianceChange, VarianceConfig
 from arxwatch.estimators.detect.whiteness import Whiteness, WhitenessConfig
 from arxwatch.estimators.estimator import ArxEstimator
@@ -253,6 +254,10 @@ class AssetMonitor:
         Site names and units of the signals, for the alert readings.
     config : MonitorConfig, optional
         Detector and lifecycle settings.
+    quality : mapping of str to QualityConfig, optional
+        Data-quality checks (stale, stuck, out of range, gaps) per raw
+        signal name, fed by :meth:`signal_sample` and :meth:`check_stale`;
+        their alerts form the data_quality family.
     """
 
     def __init__(
@@ -261,6 +266,7 @@ class AssetMonitor:
         baselines: BaselineSet,
         names: SignalNames,
         config: MonitorConfig | None = None,
+        quality: Mapping[str, QualityConfig] | None = None,
     ) -> None:
         if not asset:
             raise ValueError("asset id must be a non-empty string")
@@ -279,6 +285,8 @@ class AssetMonitor:
                 )
         self._last_mode: str | None | object = _NO_MODE
         self.skipped = 0
+        self._quality = {name: SignalQuality(name, cfg) for name, cfg in (quality or {}).items()}
+        self._quality_tracker = AlertTracker(self.config.policy)
 
     def step(
         self, time_s: float, y: float, u: Sequence[float], mode: str | None = None
@@ -325,6 +333,43 @@ class AssetMonitor:
                 )
         return records
 
+    def signal_sample(self, signal: str, time_s: float, value: float) -> list[dict[str, Any]]:
+        """Check one raw sample of a signal for data quality; return alert records.
+
+        Raises
+        ------
+        KeyError
+            If no quality check is configured for ``signal``.
+        """
+        return self._quality_records(self._quality[signal].update(time_s, value), time_s)
+
+    def check_stale(self, now_s: float) -> list[dict[str, Any]]:
+        """Check every signal for staleness at ``now_s``; return alert records."""
+        evidence = [check.check(now_s) for check in self._quality.values()]
+        return self._quality_records(evidence, now_s)
+
+    def _quality_records(self, evidence: list[Evidence], time_s: float) -> list[dict[str, Any]]:
+        last = self._last_mode
+        monitor = self._modes.get(last) if isinstance(last, str) or last is None else None
+        if monitor is None:
+            monitor = next(iter(self._modes.values()))
+        records = []
+        for item in evidence:
+            transition = self._quality_tracker.observe(item, time_s)
+            if transition is not None:
+                records.append(
+                    build_record(
+                        self.asset,
+                        transition,
+                        self.names,
+                        math.sqrt(monitor.baseline.sigma2),
+                        monitor.baseline_values,
+                        monitor.current_values,
+                        monitor.baseline.mode,
+                    )
+                )
+        return records
+
     def restart(self) -> None:
         """Forget past samples of every mode (call after a data gap)."""
         for monitor in self._modes.values():
@@ -332,11 +377,15 @@ class AssetMonitor:
 
     def active(self) -> dict[str, str]:
         """Return the raised alerts (``mode:detector/signal`` -> severity)."""
-        return {
+        active: dict[str, str] = {
             f"{mode}:{key}": severity
             for mode, m in self._modes.items()
             for key, severity in m.tracker.active().items()
         }
+        active.update(
+            {f"quality:{key}": sev for key, sev in self._quality_tracker.active().items()}
+        )
+        return active
 
     def to_state(self) -> dict[str, Any]:
         """Learned and detector state of every mode, as plain data."""
@@ -345,6 +394,8 @@ class AssetMonitor:
             "modes": [[mode, m.to_state()] for mode, m in self._modes.items()],
             "skipped": self.skipped,
             "last_mode": [self._last_mode] if seen else [],
+            "quality": {name: check.to_state() for name, check in self._quality.items()},
+            "quality_tracker": self._quality_tracker.to_state(),
         }
 
     def load_state(self, state: dict[str, Any]) -> None:
@@ -361,8 +412,16 @@ class AssetMonitor:
                 f"asset {self.asset!r}: saved modes {sorted(map(str, saved))} differ from "
                 f"the baselines' {sorted(map(str, self._modes))}"
             )
+        if set(state["quality"]) != set(self._quality):
+            raise ValueError(
+                f"asset {self.asset!r}: saved quality checks {sorted(state['quality'])} differ "
+                f"from the configured {sorted(self._quality)}"
+            )
         for mode, part in saved.items():
             self._modes[mode].load_state(part)
+        for name, part in state["quality"].items():
+            self._quality[name].load_state(part)
+        self._quality_tracker.load_state(state["quality_tracker"])
         self.skipped = int(state["skipped"])
         last = state["last_mode"]
         self._last_mode = last[0] if last else _NO_MODE

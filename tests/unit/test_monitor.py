@@ -58,3 +58,35 @@ def test_bad_construction_is_refused(baseline: Baseline) -> None:
         AssetMonitor("a", BaselineSet((baseline,)), two)
     with pytest.raises(ValueError, match="evaluate_every must be >= 1"):
         MonitorConfig(evaluate_every=0)
+
+
+def test_data_quality_alerts_form_their_own_family(baseline: Baseline, plant) -> None:
+    from arxwatch.estimators.detect.quality import QualityConfig
+
+    quality = {
+        "block-c/ahu-c2/sat": QualityConfig(
+            expected_period_s=60.0, stale_after_s=300.0, minimum=-10.0, maximum=60.0
+        )
+    }
+    monitor = AssetMonitor("a", BaselineSet((baseline,)), plant.names, quality=quality)
+    records = []
+    for k in range(10):
+        records += monitor.signal_sample("block-c/ahu-c2/sat", 60.0 * k, 85.0)  # sensor fault
+    assert [r["detector"] for r in records] == ["out_of_range"]
+    assert (
+        records[0]["family"] == "data_quality"
+        and "outside its valid range" in records[0]["reading"]
+    )
+    stale = []
+    for k in range(10):
+        stale += monitor.check_stale(600.0 + 60.0 * k)
+    assert [r["detector"] for r in stale] == ["stale"]
+    assert set(monitor.active()) == {
+        "quality:out_of_range/block-c/ahu-c2/sat",
+        "quality:stale/block-c/ahu-c2/sat",
+    }
+    again = AssetMonitor("a", BaselineSet((baseline,)), plant.names, quality=quality)
+    again.load_state(json.loads(json.dumps(monitor.to_state())))
+    assert again.active() == monitor.active()
+    with pytest.raises(KeyError):
+        monitor.signal_sample("unknown", 0.0, 1.0)
