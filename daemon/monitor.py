@@ -316,22 +316,7 @@ class AssetMonitor:
         if monitor is None:
             self.skipped += 1
             return []
-        records = []
-        for evidence in monitor.step(y, u):
-            transition = monitor.tracker.observe(evidence, time_s)
-            if transition is not None:
-                records.append(
-                    build_record(
-                        self.asset,
-                        transition,
-                        self.names,
-                        math.sqrt(monitor.baseline.sigma2),
-                        monitor.baseline_values,
-                        monitor.current_values,
-                        mode,
-                    )
-                )
-        return records
+        return self._records(monitor, monitor.tracker, monitor.step(y, u), time_s)
 
     def signal_sample(self, signal: str, time_s: float, value: float) -> list[dict[str, Any]]:
         """Check one raw sample of a signal for data quality; return alert records.
@@ -353,9 +338,15 @@ class AssetMonitor:
         monitor = self._modes.get(last) if isinstance(last, str) or last is None else None
         if monitor is None:
             monitor = next(iter(self._modes.values()))
+        return self._records(monitor, self._quality_tracker, evidence, time_s)
+
+    def _records(
+        self, monitor: _ModeMonitor, tracker: AlertTracker, evidence: list[Evidence], time_s: float
+    ) -> list[dict[str, Any]]:
+        """Pass evidence through ``tracker``; build a record per transition."""
         records = []
         for item in evidence:
-            transition = self._quality_tracker.observe(item, time_s)
+            transition = tracker.observe(item, time_s)
             if transition is not None:
                 records.append(
                     build_record(

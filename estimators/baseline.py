@@ -111,7 +111,7 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
 from arxwatch.estimators.arx import MAX_LAG, ArxOrder, regression_matrix
-from arxwatch.estimators.codec import CodecError, encode_order
+from arxwatch.estimators.codec import CodecError, encode_order, expect_keys, kind_of
 from arxwatch.estimators.errors import DimensionError, OrderError
 from arxwatch.estimators.identify import (
     MAX_VALIDATION_FRACTION,
@@ -669,7 +669,7 @@ class Baseline:
             unknown, or a value has the wrong type, length or range; the
             message names the key path.
         """
-        _expect_keys(data, _BASELINE_KEYS, where)
+        expect_keys(data, _BASELINE_KEYS, where)
         _expect_header(data, cls.FORMAT, cls.VERSION, where)
         order = _decode_order(data["order"], f"{where}.order")
         n = order.n_params
@@ -681,7 +681,7 @@ class Baseline:
             )
         candidates = data["candidates"]
         if not isinstance(candidates, list):
-            raise CodecError(f"{where}.candidates: expected a list, got {_kind(candidates)}")
+            raise CodecError(f"{where}.candidates: expected a list, got {kind_of(candidates)}")
         try:
             return cls(
                 mode=_optional_string(data["mode"], f"{where}.mode"),
@@ -1256,11 +1256,11 @@ class BaselineSet:
         CodecError
             If anything is malformed; the message names the key path.
         """
-        _expect_keys(data, {"format", "version", "baselines"}, where)
+        expect_keys(data, {"format", "version", "baselines"}, where)
         _expect_header(data, cls.FORMAT, cls.VERSION, where)
         items = data["baselines"]
         if not isinstance(items, list):
-            raise CodecError(f"{where}.baselines: expected a list, got {_kind(items)}")
+            raise CodecError(f"{where}.baselines: expected a list, got {kind_of(items)}")
         decoded = tuple(
             Baseline.from_dict(b, where=f"{where}.baselines[{j}]") for j, b in enumerate(items)
         )
@@ -1611,7 +1611,7 @@ class LiveBaselineLearner:
             ``config.modes``; the message names the key path.
         """
         where = "learner"
-        _expect_keys(state, {"format", "version", "modes"}, where)
+        expect_keys(state, {"format", "version", "modes"}, where)
         _expect_header(state, self.FORMAT, self.VERSION, where)
         entries = state["modes"]
         modes = self.config.modes
@@ -1622,7 +1622,7 @@ class LiveBaselineLearner:
         n_inputs = self.config.n_inputs
         for j, entry in enumerate(entries):
             path = f"{where}.modes[{j}]"
-            _expect_keys(entry, {"mode", "t", "y", "u", "baseline"}, path)
+            expect_keys(entry, {"mode", "t", "y", "u", "baseline"}, path)
             mode = entry["mode"]
             if mode not in modes or mode in runs:
                 raise CodecError(f"{path}.mode: expected one of {list(modes)} once, got {mode!r}")
@@ -1726,21 +1726,6 @@ def _check_readout(readout: object, order: ArxOrder, sample_period_s: float) -> 
         raise ValueError("readout: values must be finite numbers or nan, found an infinity")
 
 
-def _kind(value: object) -> str:
-    return "null" if value is None else type(value).__name__
-
-
-def _expect_keys(data: Any, keys: set[str], where: str) -> None:
-    if not isinstance(data, dict):
-        raise CodecError(f"{where}: expected a mapping, got {_kind(data)}")
-    missing = keys - data.keys()
-    unknown = data.keys() - keys
-    if missing:
-        raise CodecError(f"{where}: missing key(s) {sorted(missing)}")
-    if unknown:
-        raise CodecError(f"{where}: unknown key(s) {sorted(map(str, unknown))}")
-
-
 def _expect_header(data: dict[str, Any], fmt: str, version: int, where: str) -> None:
     if data["format"] != fmt:
         raise CodecError(f"{where}.format: expected {fmt!r}, got {data['format']!r}")
@@ -1768,7 +1753,7 @@ def _number(value: Any, where: str, *, nullable: bool = False) -> float:
 
 def _list(value: Any, length: int | None, where: str) -> list[Any]:
     if not isinstance(value, list):
-        raise CodecError(f"{where}: expected a list, got {_kind(value)}")
+        raise CodecError(f"{where}: expected a list, got {kind_of(value)}")
     if length is not None and len(value) != length:
         raise CodecError(f"{where}: expected {length} entries, got {len(value)}")
     return value
@@ -1776,7 +1761,7 @@ def _list(value: Any, length: int | None, where: str) -> list[Any]:
 
 def _numbers(value: Any, length: int, where: str, *, nullable: bool = False) -> list[float]:
     if not isinstance(value, list):
-        raise CodecError(f"{where}: expected a list of {length} numbers, got {_kind(value)}")
+        raise CodecError(f"{where}: expected a list of {length} numbers, got {kind_of(value)}")
     if len(value) != length:
         raise CodecError(f"{where}: expected {length} numbers, got {len(value)}")
     return [_number(v, f"{where}[{k}]", nullable=nullable) for k, v in enumerate(value)]
@@ -1805,7 +1790,7 @@ def _boolean(value: Any, where: str) -> bool:
 
 
 def _decode_order(data: Any, where: str) -> ArxOrder:
-    _expect_keys(data, {"na", "nb", "nk", "constant"}, where)
+    expect_keys(data, {"na", "nb", "nk", "constant"}, where)
     na = _integer(data["na"], f"{where}.na")
     nb = [
         _integer(v, f"{where}.nb[{k}]")
@@ -1835,7 +1820,7 @@ def _encode_candidate(c: OrderCandidate) -> dict[str, Any]:
 
 
 def _decode_candidate(data: Any, where: str) -> OrderCandidate:
-    _expect_keys(data, _CANDIDATE_KEYS, where)
+    expect_keys(data, _CANDIDATE_KEYS, where)
     fit = data["fit_percent_validation"]
     return OrderCandidate(
         order=_decode_order(data["order"], f"{where}.order"),
@@ -1879,7 +1864,7 @@ def _encode_readout(r: PhysicalReadout) -> dict[str, Any]:
 def _decode_readout(
     data: Any, order: ArxOrder, sample_period_s: float, where: str
 ) -> PhysicalReadout:
-    _expect_keys(data, _READOUT_KEYS, where)
+    expect_keys(data, _READOUT_KEYS, where)
     m = order.n_inputs
     if order.constant:
         offset: float | None = _number(data["offset"], f"{where}.offset", nullable=True)

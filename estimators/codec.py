@@ -35,7 +35,7 @@ def decode_order(data: Any, where: str = "order") -> ArxOrder:
     CodecError
         If keys are missing or unknown; OrderError if the orders are impossible.
     """
-    _expect_keys(data, {"na", "nb", "nk", "constant"}, where)
+    expect_keys(data, {"na", "nb", "nk", "constant"}, where)
     return ArxOrder(na=data["na"], nb=tuple(data["nb"]), nk=tuple(data["nk"]),
                     constant=bool(data["constant"]))
 
@@ -53,7 +53,7 @@ def decode_config(data: Any, where: str = "config") -> RlsConfig:
     CodecError
         If keys are missing or unknown; ValueError if a value is out of range.
     """
-    _expect_keys(data, {f.name for f in fields(RlsConfig)}, where)
+    expect_keys(data, {f.name for f in fields(RlsConfig)}, where)
     return RlsConfig(**data)
 
 
@@ -83,7 +83,7 @@ def decode_estimator(data: Any) -> ArxEstimator:
     CodecError
         If the format or version is not this one, or a key is missing.
     """
-    _expect_keys(data, {"format", "version", "order", "config", "state"}, "estimator")
+    expect_keys(data, {"format", "version", "order", "config", "state"}, "estimator")
     if data["format"] != FORMAT:
         raise CodecError(f"estimator.format: expected {FORMAT!r}, got {data['format']!r}")
     if data["version"] != VERSION:
@@ -92,17 +92,29 @@ def decode_estimator(data: Any) -> ArxEstimator:
         )
     estimator = ArxEstimator(decode_order(data["order"], "estimator.order"),
                              decode_config(data["config"], "estimator.config"))
-    _expect_keys(data["state"], {"rls", "history"}, "estimator.state")
+    expect_keys(data["state"], {"rls", "history"}, "estimator.state")
     estimator.load_state(data["state"])
     return estimator
 
 
-def _expect_keys(data: Any, keys: set[str], where: str) -> None:
+def kind_of(value: object) -> str:
+    """Name a value's JSON-ish type for an error message ("null" for None)."""
+    return "null" if value is None else type(value).__name__
+
+
+def expect_keys(data: Any, keys: set[str], where: str) -> None:
+    """Check that ``data`` is a mapping with exactly ``keys``.
+
+    Raises
+    ------
+    CodecError
+        Naming ``where`` and the missing or unknown keys.
+    """
     if not isinstance(data, dict):
-        raise CodecError(f"{where}: expected a mapping, got {type(data).__name__}")
+        raise CodecError(f"{where}: expected a mapping, got {kind_of(data)}")
     missing = keys - data.keys()
     unknown = data.keys() - keys
     if missing:
         raise CodecError(f"{where}: missing key(s) {sorted(missing)}")
     if unknown:
-        raise CodecError(f"{where}: unknown key(s) {sorted(unknown)}")
+        raise CodecError(f"{where}: unknown key(s) {sorted(map(str, unknown))}")
