@@ -9,8 +9,10 @@ import argparse
 import logging
 import os
 import sys
+from collections.abc import Callable
 from importlib.metadata import PackageNotFoundError, version
 
+from arxwatch.daemon.config import Config, ConfigError, load_config
 from arxwatch.daemon.demo import run_demo
 
 
@@ -46,7 +48,59 @@ def build_parser() -> argparse.ArgumentParser:
         "--days", type=_positive_float, default=4.0, help="simulated days of operation (default: 4)"
     )
     demo.add_argument("--seed", type=int, default=7, help="random seed (default: 7)")
+    check = commands.add_parser(
+        "check",
+        help="load and validate a config file without connecting",
+        description="Read the config file, validate it and print a summary (never a "
+        "secret). Exit status 0 if valid, 2 if not.",
+    )
+    check.add_argument("--config", required=True, metavar="FILE", help="YAML config file")
     return parser
+
+
+def summarise(config: Config, emit: Callable[[str], object]) -> None:
+    """Write a short summary of a validated config, without secrets.
+
+    Parameters
+    ----------
+    config : Config
+        Validated configuration.
+    emit : callable
+        Called with each line, e.g. :func:`print`.
+    """
+    broker = config.broker
+    emit(f"config {config.source}: valid")
+    emit(f"broker: {broker.endpoint}, client id {broker.client_id}, qos {broker.qos}")
+    if broker.password_file is not None:
+        emit(f"  username {broker.username}, password from file {broker.password_file}")
+    elif broker.password_env is not None:
+        emit(f"  username {broker.username}, password from environment variable "
+             f"{broker.password_env}")
+    elif broker.username is not None:
+        emit(f"  username {broker.username}, no password")
+    emit(f"status topic: {config.topics.status}")
+    emit(f"alerts: {config.topics.events_topic('<asset>')}, "
+         f"{config.topics.state_topic('<asset>')}")
+    emit("subscriptions:")
+    for subscription in config.subscriptions():
+        emit(f"  {subscription}")
+    emit("asset classes:")
+    for asset_class in config.asset_classes:
+        order = asset_class.model.order
+        model = ("auto (chosen from the baseline)" if order is None
+                 else f"na={order.na} nb={list(order.nb)} nk={list(order.nk)} "
+                 f"constant={order.constant}")
+        emit(f"  {asset_class.name}: {asset_class.pattern.text} -> {asset_class.asset_id}, "
+             f"every {asset_class.sample_period_s:g} s")
+        emit(f"    output {asset_class.output.signal} ({asset_class.output.name}, "
+             f"{asset_class.output.unit})")
+        for signal in asset_class.inputs:
+            emit(f"    input  {signal.signal} ({signal.name}, {signal.unit})")
+        if asset_class.mode is not None:
+            emit(f"    mode   {asset_class.mode.signal}")
+        emit(f"    model  {model}")
+    emit(f"metrics: http://{config.metrics.listen}/metrics")
+    emit(f"state: {config.state.path}, checkpoint every {config.state.checkpoint_every_s:g} s")
 
 
 def _positive_float(text: str) -> float:
@@ -70,6 +124,14 @@ def main(argv: list[str] | None = None) -> int:
     try:
         if args.command == "demo":
             return run_demo(print, days=args.days, seed=args.seed)
+        if args.command == "check":
+            try:
+                config = load_config(args.config)
+            except ConfigError as err:
+                print(f"arxwatch check: {err}", file=sys.stderr)
+                return 2
+            summarise(config, print)
+            return 0
     except BrokenPipeError:
         # The reader went away (e.g. piped into head): not an error of ours.
         # Point stdout at devnull so the interpreter's final flush is quiet.
