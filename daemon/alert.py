@@ -255,7 +255,13 @@ def build_record(
         "evidence": _finite(ev.values),
         "baseline": _finite(baseline),
         "current": _finite(current),
-        "reading": reading(ev, names, sigma),
+        "reading": reading(ev, names, sigma)
+        if transition.state == "raised"
+        else (
+            f"back within its limit ({ev.detector} {ev.statistic:.3g}, limit "
+            f"{ev.threshold:.3g}) since this sample; the alert raised at "
+            f"{iso_utc(transition.first_seen_s)} is cleared."
+        ),
         "caution": CAUTION,
         "mode": mode,
     }

@@ -88,6 +88,13 @@ class MonitorConfig:
         parameter-based detectors are judged.
     clip_sigma : float
         Winsorising level of the normalised residual.
+    reset_factor : float
+        When an innovation detector raises an alert, and again at every
+        evaluation while one stays raised, the live estimator's ``P`` is
+        multiplied by this (repeated covariance resetting) so that it
+        follows the changing asset within a few hours instead of a whole
+        memory, and its read-out does not wander through models that mix
+        the old and the new behaviour.
     policy : AlertPolicy
         Persistence, hysteresis and severities.
     """
@@ -102,6 +109,7 @@ class MonitorConfig:
     evaluate_every: int = 60
     settle_memories: float = 1.0
     clip_sigma: float = 4.0
+    reset_factor: float = 10.0
     policy: AlertPolicy = field(default_factory=AlertPolicy)
 
     def __post_init__(self) -> None:
@@ -158,6 +166,7 @@ class _ModeMonitor:
         self.bands = PhysicalBands(config.bands)
         self.tracker = AlertTracker(config.policy)
         self.samples = 0
+        self.changing = False
         self.baseline_values = _readout_values(baseline, None, baseline.sigma2)
         self.current_values = dict(self.baseline_values)
         self._start_from_baseline()
@@ -197,6 +206,10 @@ class _ModeMonitor:
         if self.estimator.update(y, u) is None:
             return evidence
         self.samples += 1
+        if self.samples % config.evaluate_every == 0 and self.changing:
+            # While an innovation alert stays up the asset is still changing:
+            # keep the live estimate re-learning (repeated covariance resetting).
+            self.estimator.inflate_covariance(config.reset_factor)
         if self.samples >= config.settle_samples() and self.samples % config.evaluate_every == 0:
             theta = self.estimator.theta
             drift = self.drift.update(theta, self.estimator.parameter_covariance)
@@ -224,6 +237,7 @@ class _ModeMonitor:
             "bands": self.bands.to_state(),
             "tracker": self.tracker.to_state(),
             "samples": self.samples,
+            "changing": self.changing,
             "current": self.current_values,
         }
 
@@ -238,6 +252,7 @@ class _ModeMonitor:
         self.bands.load_state(state["bands"])
         self.tracker.load_state(state["tracker"])
         self.samples = int(state["samples"])
+        self.changing = bool(state["changing"])
         self.current_values = {str(k): float(v) for k, v in state["current"].items()}
 
 
@@ -316,7 +331,13 @@ class AssetMonitor:
         if monitor is None:
             self.skipped += 1
             return []
-        return self._records(monitor, monitor.tracker, monitor.step(y, u), time_s)
+        records = self._records(monitor, monitor.tracker, monitor.step(y, u), time_s)
+        if records:
+            active = monitor.tracker.active()
+            monitor.changing = any(key.split("/")[0] in _CHANGE_DETECTORS for key in active)
+            if any(r["state"] == "raised" and r["detector"] in _CHANGE_DETECTORS for r in records):
+                monitor.estimator.inflate_covariance(self.config.reset_factor)
+        return records
 
     def signal_sample(self, signal: str, time_s: float, value: float) -> list[dict[str, Any]]:
         """Check one raw sample of a signal for data quality; return alert records.
@@ -360,6 +381,16 @@ class AssetMonitor:
                     )
                 )
         return records
+
+    def readout(self, mode: str | None = None) -> dict[str, float]:
+        """Return the latest live physical read-out of ``mode`` (gains, tau, offset, sigma).
+
+        Raises
+        ------
+        KeyError
+            If the asset has no baseline for ``mode``.
+        """
+        return dict(self._modes[mode].current_values)
 
     def restart(self) -> None:
         """Forget past samples of every mode (call after a data gap)."""
@@ -417,6 +448,9 @@ class AssetMonitor:
         last = state["last_mode"]
         self._last_mode = last[0] if last else _NO_MODE
 
+
+#: Raising one of these means the asset changed: the live estimate re-learns.
+_CHANGE_DETECTORS = frozenset({"innovation_mean", "innovation_variance"})
 
 #: Sentinel: no sample seen yet, so the first sample restarts nothing.
 _NO_MODE = object()

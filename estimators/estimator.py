@@ -204,6 +204,30 @@ class ArxEstimator:
             state[self.layout.n_updates] = float(self.config.warmup_updates)
         self._state = state
 
+    def inflate_covariance(self, factor: float) -> None:
+        """Multiply ``P`` by ``factor`` so the estimate re-learns quickly.
+
+        Used when a change has been detected: the data before it no longer
+        describe the asset, and a large ``P`` lets the next samples dominate
+        (covariance resetting; Åström and Wittenmark, *Adaptive Control*,
+        2nd ed., 1995, section 11.2). The trace cap still applies.
+
+        Raises
+        ------
+        ValueError
+            If ``factor`` is not a finite number >= 1.
+        """
+        if not (math.isfinite(factor) and factor >= 1.0):
+            raise ValueError(f"factor must be a finite number >= 1, got {factor!r}")
+        state = self._state
+        diag = self.layout.diag
+        scaled = [d * factor for d in state[diag]]
+        bound = self.config.trace_bound(self.layout.n_params)
+        trace = self.layout.trace(state) * factor
+        if trace > bound:
+            scaled = [d * bound / trace for d in scaled]
+        state[diag] = scaled
+
     def restart_history(self) -> None:
         """Forget past samples (after a data gap) but keep the learned model."""
         self._history.clear()

@@ -55,6 +55,7 @@ class Case:
     fault: Fault
     expected: tuple[str, ...]  # detector/signal keys, any of which names the change
     days: float = 4.0
+    word: str = ""  # the naming alert's reading must say this (direction of the change)
 
 
 DAY = 86400.0
@@ -63,9 +64,14 @@ CASES = {
         Fault("gain_loss", FAULT_AT_DAY * DAY, 0.4), ("physical_band/gain_1",)
     ),
     "gradual gain loss": Case(
-        Fault("gain_loss", FAULT_AT_DAY * DAY, 0.4, ramp_s=DAY), ("physical_band/gain_1",), days=5.0
+        Fault("gain_loss", FAULT_AT_DAY * DAY, 0.4, ramp_s=DAY),
+        ("physical_band/gain_1",),
+        days=5.0,
+        word="below",
     ),
-    "stuck actuator": Case(Fault("stuck_actuator", FAULT_AT_DAY * DAY), ("physical_band/gain_1",)),
+    "stuck actuator": Case(
+        Fault("stuck_actuator", FAULT_AT_DAY * DAY), ("physical_band/gain_1",), word="below"
+    ),
     "offset (leak)": Case(
         Fault("offset", FAULT_AT_DAY * DAY, 0.15),
         ("innovation_mean/innovation", "physical_band/offset"),
@@ -78,7 +84,9 @@ CASES = {
         Fault("noise_increase", FAULT_AT_DAY * DAY, 1.0), ("innovation_variance/innovation",)
     ),
     "time-constant change": Case(
-        Fault("slow_response", FAULT_AT_DAY * DAY, 1.0), ("physical_band/time_constant_s",)
+        Fault("slow_response", FAULT_AT_DAY * DAY, 1.0),
+        ("physical_band/time_constant_s",),
+        word="slower",
     ),
 }
 RESULTS: dict[tuple[str, str], str] = {}
@@ -126,12 +134,17 @@ def test_each_fault_is_detected_and_named(loop_name: str, case_name: str) -> Non
     records = run(loop_name, case.days, (case.fault,), seed=7)
     start_k = int(FAULT_AT_DAY * PER_DAY)
     first: dict[str, int] = {}
+    readings: dict[str, str] = {}
     for r in records:
         if r["state"] == "raised" and r["_k"] >= start_k:
-            first.setdefault(f"{r['detector']}/{r['signal']}", r["_k"] - start_k)
+            key = f"{r['detector']}/{r['signal']}"
+            first.setdefault(key, r["_k"] - start_k)
+            readings.setdefault(key, r["reading"])
     assert first, "no alert after the fault"
     named = [first[key] for key in case.expected if key in first]
     assert named, f"expected one of {case.expected}, got {sorted(first)}"
+    said = [readings[key] for key in case.expected if key in readings]
+    assert any(case.word in text for text in said), said
     RESULTS[(loop_name, case_name)] = (
         f"first alert {min(first.values()) * TS / 60:.0f} min, "
         f"named ({'/'.join(k.split('/')[-1] for k in case.expected if k in first)}) "
