@@ -97,3 +97,15 @@ def test_warm_start_sets_theta_and_p_exactly() -> None:
         est.warm_start(theta, -p)
     with pytest.raises(DimensionError, match="warm start needs theta"):
         est.warm_start(theta[:2], p)
+
+
+def test_inflate_covariance_scales_p_under_the_cap() -> None:
+    est = ArxEstimator(ORDER, RlsConfig(p0=10.0))
+    _feed(est, 200, 6)
+    before = est.covariance
+    est.inflate_covariance(4.0)
+    np.testing.assert_allclose(est.covariance, 4.0 * before, rtol=1e-12)
+    est.inflate_covariance(1e12)
+    assert est.trace == pytest.approx(est.config.trace_bound(est.order.n_params), rel=1e-9)
+    with pytest.raises(ValueError, match="factor must be a finite number >= 1"):
+        est.inflate_covariance(0.5)
