@@ -74,26 +74,33 @@ def summarise(config: Config, emit: Callable[[str], object]) -> None:
     if broker.password_file is not None:
         emit(f"  username {broker.username}, password from file {broker.password_file}")
     elif broker.password_env is not None:
-        emit(f"  username {broker.username}, password from environment variable "
-             f"{broker.password_env}")
+        emit(
+            f"  username {broker.username}, password from environment variable "
+            f"{broker.password_env}"
+        )
     elif broker.username is not None:
         emit(f"  username {broker.username}, no password")
     emit(f"status topic: {config.topics.status}")
-    emit(f"alerts: {config.topics.events_topic('<asset>')}, "
-         f"{config.topics.state_topic('<asset>')}")
+    emit(f"alerts: {config.topics.events_topic('<asset>')}, {config.topics.state_topic('<asset>')}")
     emit("subscriptions:")
     for subscription in config.subscriptions():
         emit(f"  {subscription}")
     emit("asset classes:")
     for asset_class in config.asset_classes:
         order = asset_class.model.order
-        model = ("auto (chosen from the baseline)" if order is None
-                 else f"na={order.na} nb={list(order.nb)} nk={list(order.nk)} "
-                 f"constant={order.constant}")
-        emit(f"  {asset_class.name}: {asset_class.pattern.text} -> {asset_class.asset_id}, "
-             f"every {asset_class.sample_period_s:g} s")
-        emit(f"    output {asset_class.output.signal} ({asset_class.output.name}, "
-             f"{asset_class.output.unit})")
+        model = (
+            "auto (chosen from the baseline)"
+            if order is None
+            else f"na={order.na} nb={list(order.nb)} nk={list(order.nk)} constant={order.constant}"
+        )
+        emit(
+            f"  {asset_class.name}: {asset_class.pattern.text} -> {asset_class.asset_id}, "
+            f"every {asset_class.sample_period_s:g} s"
+        )
+        emit(
+            f"    output {asset_class.output.signal} ({asset_class.output.name}, "
+            f"{asset_class.output.unit})"
+        )
         for signal in asset_class.inputs:
             emit(f"    input  {signal.signal} ({signal.name}, {signal.unit})")
         if asset_class.mode is not None:

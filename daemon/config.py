@@ -150,7 +150,8 @@ class _UniqueKeyLoader(yaml.SafeLoader):
                 continue  # unhashable key: the base class reports it
             if earlier is not None:
                 raise yaml.constructor.ConstructorError(
-                    None, None,
+                    None,
+                    None,
                     f"duplicate key {key!r} (first at line {earlier}); "
                     "each key may appear once in a mapping",
                     key_node.start_mark,
@@ -179,8 +180,15 @@ def _show(value: object) -> str:
     text = repr(value)
     if len(text) > _SHOW_CHARS:
         text = text[:_SHOW_CHARS] + "..."
-    kind = {bool: "a boolean", int: "an integer", float: "a number", str: "a string",
-            list: "a list", dict: "a mapping", type(None): "null"}.get(type(value))
+    kind = {
+        bool: "a boolean",
+        int: "an integer",
+        float: "a number",
+        str: "a string",
+        list: "a list",
+        dict: "a mapping",
+        type(None): "null",
+    }.get(type(value))
     return f"{text} ({kind})" if kind else f"{text} ({type(value).__name__})"
 
 
@@ -219,8 +227,9 @@ class _Reader:
                 )
         return cast(dict[str, object], value)
 
-    def section(self, parent: Mapping[str, object], path: str, key: str,
-                keys: Collection[str]) -> dict[str, object]:
+    def section(
+        self, parent: Mapping[str, object], path: str, key: str, keys: Collection[str]
+    ) -> dict[str, object]:
         """Read an optional sub-mapping; absent or null gives an empty one."""
         value = parent.get(key)
         return {} if value is None else self.mapping(value, _key(path, key), keys)
@@ -232,12 +241,20 @@ class _Reader:
             raise self.fail(_key(path, key), "required key is missing")
         return default
 
-    def string(self, parent: Mapping[str, object], path: str, key: str,
-               default: object = _REQUIRED, pattern: re.Pattern[str] | None = None,
-               what: str = "a non-empty string") -> str:
+    def string(
+        self,
+        parent: Mapping[str, object],
+        path: str,
+        key: str,
+        default: object = _REQUIRED,
+        pattern: re.Pattern[str] | None = None,
+        what: str = "a non-empty string",
+    ) -> str:
         value = self.raw(parent, path, key, default)
-        if not isinstance(value, str) or not value or (
-            pattern is not None and not pattern.fullmatch(value)
+        if (
+            not isinstance(value, str)
+            or not value
+            or (pattern is not None and not pattern.fullmatch(value))
         ):
             raise self.expected(_key(path, key), value, what)
         return value
@@ -247,16 +264,29 @@ class _Reader:
             return None
         return self.string(parent, path, key)
 
-    def choice(self, parent: Mapping[str, object], path: str, key: str,
-               options: Sequence[T], default: object = _REQUIRED) -> T:
+    def choice(
+        self,
+        parent: Mapping[str, object],
+        path: str,
+        key: str,
+        options: Sequence[T],
+        default: object = _REQUIRED,
+    ) -> T:
         value = self.raw(parent, path, key, default)
         if isinstance(value, bool) or value not in options:
             listed = " or ".join(repr(option) for option in options)
             raise self.expected(_key(path, key), value, listed)
         return cast(T, value)
 
-    def integer(self, parent: Mapping[str, object], path: str, key: str,
-                default: object = _REQUIRED, low: int = 0, high: int | None = None) -> int:
+    def integer(
+        self,
+        parent: Mapping[str, object],
+        path: str,
+        key: str,
+        default: object = _REQUIRED,
+        low: int = 0,
+        high: int | None = None,
+    ) -> int:
         value = self.raw(parent, path, key, default)
         what = f"an integer >= {low}" if high is None else f"an integer in {low}..{high}"
         if isinstance(value, bool) or not isinstance(value, int):
@@ -265,23 +295,35 @@ class _Reader:
             raise self.expected(_key(path, key), value, what)
         return value
 
-    def number(self, parent: Mapping[str, object], path: str, key: str,
-               default: object = _REQUIRED, positive: bool = False) -> float:
+    def number(
+        self,
+        parent: Mapping[str, object],
+        path: str,
+        key: str,
+        default: object = _REQUIRED,
+        positive: bool = False,
+    ) -> float:
         value = self.raw(parent, path, key, default)
         what = "a finite number > 0" if positive else "a finite number"
-        if (isinstance(value, bool) or not isinstance(value, int | float)
-                or not math.isfinite(value) or (positive and value <= 0)):
+        if (
+            isinstance(value, bool)
+            or not isinstance(value, int | float)
+            or not math.isfinite(value)
+            or (positive and value <= 0)
+        ):
             raise self.expected(_key(path, key), value, what)
         return float(value)
 
-    def optional_number(self, parent: Mapping[str, object], path: str, key: str,
-                        positive: bool = False) -> float | None:
+    def optional_number(
+        self, parent: Mapping[str, object], path: str, key: str, positive: bool = False
+    ) -> float | None:
         if parent.get(key) is None:
             return None
         return self.number(parent, path, key, positive=positive)
 
-    def boolean(self, parent: Mapping[str, object], path: str, key: str,
-                default: object = _REQUIRED) -> bool:
+    def boolean(
+        self, parent: Mapping[str, object], path: str, key: str, default: object = _REQUIRED
+    ) -> bool:
         value = self.raw(parent, path, key, default)
         if not isinstance(value, bool):
             raise self.expected(_key(path, key), value, "true or false")
@@ -296,16 +338,20 @@ class _Reader:
             raise self.fail(_key(path, key), f"file {str(file)!r} {problem}")
         return file
 
-    def items(self, parent: Mapping[str, object], path: str, key: str,
-              minimum: int = 0) -> list[tuple[str, object]]:
+    def items(
+        self, parent: Mapping[str, object], path: str, key: str, minimum: int = 0
+    ) -> list[tuple[str, object]]:
         """Read a list; return (path of the item, item) pairs."""
         value = self.raw(parent, path, key, _REQUIRED if minimum else [])
         where = _key(path, key)
         if not isinstance(value, list):
             raise self.expected(where, value, "a list")
         if len(value) < minimum:
-            raise self.expected(where, value, f"a list of at least {minimum} entr"
-                                + ("y" if minimum == 1 else "ies"))
+            raise self.expected(
+                where,
+                value,
+                f"a list of at least {minimum} entr" + ("y" if minimum == 1 else "ies"),
+            )
         return [(f"{where}[{index}]", item) for index, item in enumerate(value)]
 
     def build(self, path: str, make: Callable[[], T]) -> T:
@@ -397,8 +443,19 @@ class BrokerConfig:
 
 
 _BROKER_KEYS = (
-    "host", "port", "client_id", "keepalive_s", "qos", "session_expiry_s", "protocol", "tls",
-    "username", "password", "password_file", "password_env", "allow_plaintext_password",
+    "host",
+    "port",
+    "client_id",
+    "keepalive_s",
+    "qos",
+    "session_expiry_s",
+    "protocol",
+    "tls",
+    "username",
+    "password",
+    "password_file",
+    "password_env",
+    "allow_plaintext_password",
 )
 
 
@@ -424,16 +481,23 @@ def _broker(r: _Reader, data: Mapping[str, object]) -> BrokerConfig:
         )
         if (tls.cert_file is None) != (tls.key_file is None):
             missing = "key_file" if tls.key_file is None else "cert_file"
-            raise r.fail(f"broker.tls.{missing}", "required when a client certificate "
-                         "is configured: give cert_file and key_file together")
+            raise r.fail(
+                f"broker.tls.{missing}",
+                "required when a client certificate "
+                "is configured: give cert_file and key_file together",
+            )
     password_file = r.existing_file(raw, path, "password_file")
     password_env = None
     if raw.get("password_env") is not None:
-        password_env = r.string(raw, path, "password_env", pattern=_ENV_NAME,
-                                what="an environment variable name such as MQTT_PASSWORD")
+        password_env = r.string(
+            raw,
+            path,
+            "password_env",
+            pattern=_ENV_NAME,
+            what="an environment variable name such as MQTT_PASSWORD",
+        )
     if password_file is not None and password_env is not None:
-        raise r.fail("broker.password_env", "give either password_file or password_env, "
-                     "not both")
+        raise r.fail("broker.password_env", "give either password_file or password_env, not both")
     username = r.optional_string(raw, path, "username")
     if (password_file or password_env) and username is None:
         raise r.fail("broker.username", "required key is missing: a password needs a username")
@@ -448,14 +512,18 @@ def _broker(r: _Reader, data: Mapping[str, object]) -> BrokerConfig:
     return BrokerConfig(
         host=_host(r, r.string(raw, path, "host"), "broker.host"),
         port=r.integer(raw, path, "port", 8883 if tls else 1883, low=1, high=65535),
-        client_id=r.string(raw, path, "client_id", pattern=_CLIENT_ID,
-                           what="1 to 64 characters from [A-Za-z0-9_-]"),
+        client_id=r.string(
+            raw, path, "client_id", pattern=_CLIENT_ID, what="1 to 64 characters from [A-Za-z0-9_-]"
+        ),
         keepalive_s=r.integer(raw, path, "keepalive_s", 30, low=1, high=65535),
         qos=cast(Literal[0, 1], r.choice(raw, path, "qos", (0, 1), 1)),
-        session_expiry_s=r.integer(raw, path, "session_expiry_s", 86400, low=0,
-                                   high=_MAX_SESSION_EXPIRY_S),
-        protocol=cast(Literal["mqtt5", "mqtt311"],
-                      r.choice(raw, path, "protocol", ("mqtt5", "mqtt311"), "mqtt5")),
+        session_expiry_s=r.integer(
+            raw, path, "session_expiry_s", 86400, low=0, high=_MAX_SESSION_EXPIRY_S
+        ),
+        protocol=cast(
+            Literal["mqtt5", "mqtt311"],
+            r.choice(raw, path, "protocol", ("mqtt5", "mqtt311"), "mqtt5"),
+        ),
         tls=tls,
         username=username,
         password_file=password_file,
@@ -507,13 +575,16 @@ class TopicsConfig:
 def _topics(r: _Reader, data: Mapping[str, object], client_id: str) -> TopicsConfig:
     raw = r.section(data, "", "topics", ("status", "alerts_prefix"))
     found: dict[str, str] = {}
-    for key, default in (("status", f"arxwatch/{client_id}/status"),
-                         ("alerts_prefix", "arxwatch/alerts")):
+    for key, default in (
+        ("status", f"arxwatch/{client_id}/status"),
+        ("alerts_prefix", "arxwatch/alerts"),
+    ):
         text = r.string(raw, "topics", key, default)
         r.build(f"topics.{key}", partial(validate_topic, text))
         if text.startswith("$"):
-            raise r.expected(f"topics.{key}", text, "a topic not starting with '$' "
-                             "(reserved for the broker)")
+            raise r.expected(
+                f"topics.{key}", text, "a topic not starting with '$' (reserved for the broker)"
+            )
         if key == "alerts_prefix" and text.endswith("/"):
             raise r.expected("topics.alerts_prefix", text, "a prefix without a trailing '/'")
         found[key] = text
@@ -582,8 +653,7 @@ class StateConfig:
 def _state(r: _Reader, data: Mapping[str, object]) -> StateConfig:
     raw = r.section(data, "", "state", ("path", "checkpoint_every_s"))
     return StateConfig(
-        path=Path(r.string(raw, "state", "path", "/var/lib/arxwatch/state.db",
-                           what="a file path")),
+        path=Path(r.string(raw, "state", "path", "/var/lib/arxwatch/state.db", what="a file path")),
         checkpoint_every_s=r.number(raw, "state", "checkpoint_every_s", 60.0, positive=True),
     )
 
@@ -635,8 +705,9 @@ def _limits(r: _Reader, data: Mapping[str, object]) -> LimitsConfig:
     raw = r.section(data, "", "limits", ("max_assets", "max_payload_bytes", "queue_size"))
     return LimitsConfig(
         max_assets=r.integer(raw, "limits", "max_assets", 10000, low=1),
-        max_payload_bytes=r.integer(raw, "limits", "max_payload_bytes", 4096, low=1,
-                                    high=_MQTT_MAX_PAYLOAD_BYTES),
+        max_payload_bytes=r.integer(
+            raw, "limits", "max_payload_bytes", 4096, low=1, high=_MQTT_MAX_PAYLOAD_BYTES
+        ),
         queue_size=r.integer(raw, "limits", "queue_size", 10000, low=1),
     )
 
@@ -752,8 +823,16 @@ class PayloadConfig:
     offset: float
 
 
-_PAYLOAD_KEYS = ("kind", "value_field", "time_field", "time_format", "quality_field",
-                 "good_quality", "scale", "offset")
+_PAYLOAD_KEYS = (
+    "kind",
+    "value_field",
+    "time_field",
+    "time_format",
+    "quality_field",
+    "good_quality",
+    "scale",
+    "offset",
+)
 
 
 def _payload(r: _Reader, parent: Mapping[str, object], path: str) -> PayloadConfig:
@@ -769,8 +848,9 @@ def _payload(r: _Reader, parent: Mapping[str, object], path: str) -> PayloadConf
         kind=r.choice(raw, path, "kind", ("json", "number"), "json"),
         value_field=r.string(raw, path, "value_field", "value"),
         time_field=None if arrival_time else r.string(raw, path, "time_field", "ts"),
-        time_format=r.choice(raw, path, "time_format", ("epoch_s", "epoch_ms", "iso8601"),
-                             "epoch_s"),
+        time_format=r.choice(
+            raw, path, "time_format", ("epoch_s", "epoch_ms", "iso8601"), "epoch_s"
+        ),
         quality_field=r.optional_string(raw, path, "quality_field"),
         good_quality=frozenset(good) if "good_quality" in raw else frozenset({"good"}),
         scale=r.number(raw, path, "scale", 1.0),
@@ -879,8 +959,14 @@ class DetectorsConfig:
     evaluate_every: int | None = None
 
 
-_DETECTOR_NUMBERS = ("cusum_h", "variance_alpha", "whiteness_alpha", "drift_alpha",
-                     "gain_tolerance", "time_constant_tolerance")
+_DETECTOR_NUMBERS = (
+    "cusum_h",
+    "variance_alpha",
+    "whiteness_alpha",
+    "drift_alpha",
+    "gain_tolerance",
+    "time_constant_tolerance",
+)
 
 
 def _detectors(r: _Reader, parent: Mapping[str, object], path: str) -> DetectorsConfig:
@@ -947,8 +1033,13 @@ class AssetClassConfig:
 
     def route_rule(self) -> RouteRule:
         """Return the routing rule of the class."""
-        return RouteRule(self.name, self.pattern, asset_id=self.asset_id, signal="{signal}",
-                         allowed_signals=frozenset(self.signals))
+        return RouteRule(
+            self.name,
+            self.pattern,
+            asset_id=self.asset_id,
+            signal="{signal}",
+            allowed_signals=frozenset(self.signals),
+        )
 
     def payload_format(self, signal: str | None = None) -> PayloadFormat:
         """Return the payload format of one signal of the class.
@@ -974,8 +1065,11 @@ class AssetClassConfig:
         own = next((s for s in (self.output, *self.inputs) if s.signal == signal), None)
         p = self.payload
         return PayloadFormat(
-            kind=p.kind, value_field=p.value_field, time_field=p.time_field,
-            time_format=p.time_format, quality_field=p.quality_field,
+            kind=p.kind,
+            value_field=p.value_field,
+            time_field=p.time_field,
+            time_format=p.time_format,
+            quality_field=p.quality_field,
             good_quality=p.good_quality,
             scale=own.scale if own and own.scale is not None else p.scale,
             offset=own.offset if own and own.offset is not None else p.offset,
@@ -999,26 +1093,39 @@ class AssetClassConfig:
             base,
             rls=replace(base.rls, forgetting=self.forgetting),
             cusum=base.cusum if d.cusum_h is None else replace(base.cusum, h=d.cusum_h),
-            variance=(base.variance if d.variance_alpha is None
-                      else replace(base.variance, alpha=d.variance_alpha)),
-            whiteness=(base.whiteness if d.whiteness_alpha is None
-                       else replace(base.whiteness, alpha=d.whiteness_alpha)),
+            variance=(
+                base.variance
+                if d.variance_alpha is None
+                else replace(base.variance, alpha=d.variance_alpha)
+            ),
+            whiteness=(
+                base.whiteness
+                if d.whiteness_alpha is None
+                else replace(base.whiteness, alpha=d.whiteness_alpha)
+            ),
             drift_alpha=base.drift_alpha if d.drift_alpha is None else d.drift_alpha,
             bands=replace(
                 base.bands,
-                gain_tolerance=(base.bands.gain_tolerance if d.gain_tolerance is None
-                                else d.gain_tolerance),
-                time_constant_tolerance=(base.bands.time_constant_tolerance
-                                         if d.time_constant_tolerance is None
-                                         else d.time_constant_tolerance),
+                gain_tolerance=(
+                    base.bands.gain_tolerance if d.gain_tolerance is None else d.gain_tolerance
+                ),
+                time_constant_tolerance=(
+                    base.bands.time_constant_tolerance
+                    if d.time_constant_tolerance is None
+                    else d.time_constant_tolerance
+                ),
             ),
             evaluate_every=base.evaluate_every if d.evaluate_every is None else d.evaluate_every,
         )
 
     def signal_names(self) -> SignalNames:
         """Return the site names and units used in alert readings."""
-        return SignalNames(self.output.name, self.output.unit,
-                           tuple(s.name for s in self.inputs), tuple(s.unit for s in self.inputs))
+        return SignalNames(
+            self.output.name,
+            self.output.unit,
+            tuple(s.name for s in self.inputs),
+            tuple(s.unit for s in self.inputs),
+        )
 
     def quality_configs(self) -> dict[str, QualityConfig]:
         """Return data-quality settings per output and input signal.
@@ -1027,15 +1134,30 @@ class AssetClassConfig:
         periods.
         """
         return {
-            s.signal: QualityConfig(expected_period_s=self.sample_period_s,
-                                    stale_after_s=5.0 * self.sample_period_s,
-                                    minimum=s.minimum, maximum=s.maximum)
+            s.signal: QualityConfig(
+                expected_period_s=self.sample_period_s,
+                stale_after_s=5.0 * self.sample_period_s,
+                minimum=s.minimum,
+                maximum=s.maximum,
+            )
             for s in (self.output, *self.inputs)
         }
 
 
-_CLASS_KEYS = ("name", "pattern", "asset_id", "sample_period_s", "output", "inputs", "mode",
-               "payload", "model", "forgetting", "baseline", "detectors")
+_CLASS_KEYS = (
+    "name",
+    "pattern",
+    "asset_id",
+    "sample_period_s",
+    "output",
+    "inputs",
+    "mode",
+    "payload",
+    "model",
+    "forgetting",
+    "baseline",
+    "detectors",
+)
 
 
 def _asset_class(r: _Reader, value: object, path: str, limits: LimitsConfig) -> AssetClassConfig:
@@ -1043,12 +1165,14 @@ def _asset_class(r: _Reader, value: object, path: str, limits: LimitsConfig) -> 
     pattern_text = r.string(raw, path, "pattern")
     pattern = r.build(_key(path, "pattern"), lambda: TopicPattern.parse(pattern_text))
     if "signal" not in pattern.names:
-        raise r.expected(_key(path, "pattern"), pattern_text,
-                         "a topic pattern with a {signal} level")
+        raise r.expected(
+            _key(path, "pattern"), pattern_text, "a topic pattern with a {signal} level"
+        )
     inputs = tuple(_signal(r, item, where) for where, item in r.items(raw, path, "inputs", 1))
     config = AssetClassConfig(
-        name=r.string(raw, path, "name", pattern=_CLASS_NAME,
-                      what="a name matching [a-z][a-z0-9_-]*"),
+        name=r.string(
+            raw, path, "name", pattern=_CLASS_NAME, what="a name matching [a-z][a-z0-9_-]*"
+        ),
         pattern=pattern,
         asset_id=r.string(raw, path, "asset_id"),
         sample_period_s=r.number(raw, path, "sample_period_s", positive=True),
@@ -1067,8 +1191,10 @@ def _asset_class(r: _Reader, value: object, path: str, limits: LimitsConfig) -> 
     r.build(_key(path, "asset_id"), config.route_rule)
     r.build(_key(path, "inputs"), config.align_config)
     r.build(_key(path, "payload"), config.payload_format)
-    for where, item in ((_key(path, "output"), config.output),
-                        *((f"{path}.inputs[{i}]", s) for i, s in enumerate(inputs))):
+    for where, item in (
+        (_key(path, "output"), config.output),
+        *((f"{path}.inputs[{i}]", s) for i, s in enumerate(inputs)),
+    ):
         r.build(where, partial(config.payload_format, item.signal))
     r.build(_key(path, "forgetting"), replace(config, detectors=DetectorsConfig()).monitor_config)
     for key in (*_DETECTOR_NUMBERS, "evaluate_every"):
@@ -1106,8 +1232,9 @@ class Config:
 
     def router(self) -> Router:
         """Return a fresh router over the asset classes (it is stateful)."""
-        return Router([c.route_rule() for c in self.asset_classes],
-                      max_assets=self.limits.max_assets)
+        return Router(
+            [c.route_rule() for c in self.asset_classes], max_assets=self.limits.max_assets
+        )
 
     def subscriptions(self) -> tuple[str, ...]:
         """Return the topic filters to subscribe to."""
@@ -1150,21 +1277,31 @@ def parse_config(text: str, source_name: str) -> Config:
     )
     seen: dict[str, int] = {}
     for index, asset_class in enumerate(classes):
-        for attribute, value in (("name", asset_class.name),
-                                 ("pattern", asset_class.pattern.text)):
+        for attribute, value in (("name", asset_class.name), ("pattern", asset_class.pattern.text)):
             earlier = seen.setdefault(f"{attribute}:{value}", index)
             if earlier != index:
-                raise r.fail(f"asset_classes[{index}].{attribute}",
-                             f"{value!r} is already used by asset_classes[{earlier}]")
+                raise r.fail(
+                    f"asset_classes[{index}].{attribute}",
+                    f"{value!r} is already used by asset_classes[{earlier}]",
+                )
     topics = _topics(r, data, broker.client_id)
     config = Config(
-        source=source_name, broker=broker, topics=topics, metrics=_metrics(r, data),
-        state=_state(r, data), logging=_logging(r, data), limits=limits, asset_classes=classes,
+        source=source_name,
+        broker=broker,
+        topics=topics,
+        metrics=_metrics(r, data),
+        state=_state(r, data),
+        logging=_logging(r, data),
+        limits=limits,
+        asset_classes=classes,
     )
     for subscription in config.subscriptions():
         if matches(subscription, topics.status):
-            raise r.fail("topics.status", f"{topics.status!r} matches the subscription "
-                         f"{subscription!r}; arxwatch would read its own status")
+            raise r.fail(
+                "topics.status",
+                f"{topics.status!r} matches the subscription "
+                f"{subscription!r}; arxwatch would read its own status",
+            )
     return config
 
 
@@ -1229,14 +1366,18 @@ def read_secret(config: Config, environ: Mapping[str, str]) -> str | None:
             problem = f"cannot read {str(broker.password_file)!r}: {err.strerror}"
             raise ConfigError(config.source, where, problem) from None
         if not secret:
-            raise ConfigError(config.source, where,
-                              f"the password file {str(broker.password_file)!r} is empty")
+            raise ConfigError(
+                config.source, where, f"the password file {str(broker.password_file)!r} is empty"
+            )
         return secret
     if broker.password_env is not None:
         secret = environ.get(broker.password_env, "")
         if not secret:
             state = "is empty" if broker.password_env in environ else "is not set"
-            raise ConfigError(config.source, "broker.password_env",
-                              f"environment variable {broker.password_env!r} {state}")
+            raise ConfigError(
+                config.source,
+                "broker.password_env",
+                f"environment variable {broker.password_env!r} {state}",
+            )
         return secret
     return None

@@ -180,7 +180,9 @@ def validate_topic(text: str) -> str:
         for wildcard in "+#":
             if wildcard in level:
                 raise TopicError(
-                    "topic name", text, f"wildcard {wildcard!r} is not allowed in a topic name",
+                    "topic name",
+                    text,
+                    f"wildcard {wildcard!r} is not allowed in a topic name",
                     index,
                 )
     return text
@@ -297,20 +299,26 @@ class TopicPattern:
         for index, level in enumerate(text.split("/")):
             if "+" in level or "#" in level:
                 raise TopicError(
-                    "topic pattern", text,
-                    "wildcards are not allowed; write a named level such as {asset}", index,
+                    "topic pattern",
+                    text,
+                    "wildcards are not allowed; write a named level such as {asset}",
+                    index,
                 )
             if "{" in level or "}" in level:
                 if not (level.startswith("{") and level.endswith("}")):
                     raise TopicError(
-                        "topic pattern", text, "a named level must be the whole level {name}",
+                        "topic pattern",
+                        text,
+                        "a named level must be the whole level {name}",
                         index,
                     )
                 name = level[1:-1]
                 if not _NAME.fullmatch(name):
                     raise TopicError(
-                        "topic pattern", text,
-                        f"level name {name!r} must match [a-z_][a-z0-9_]*", index,
+                        "topic pattern",
+                        text,
+                        f"level name {name!r} must match [a-z_][a-z0-9_]*",
+                        index,
                     )
                 if name in (lv for lv, is_named in zip(levels, named, strict=True) if is_named):
                     raise TopicError("topic pattern", text, f"name {name!r} is used twice", index)
@@ -321,8 +329,10 @@ class TopicPattern:
                 named.append(False)
         if not named[0] and levels[0] == "$share":
             raise TopicError(
-                "topic pattern", text,
-                "shared subscriptions are not supported; replicas split sites by owns()", 0,
+                "topic pattern",
+                text,
+                "shared subscriptions are not supported; replicas split sites by owns()",
+                0,
             )
         return cls(text, tuple(levels), tuple(named))
 
@@ -364,7 +374,8 @@ class TopicPattern:
         for name, value in values.items():
             if value == "" or "/" in value:
                 raise TopicError(
-                    "topic pattern", self.text,
+                    "topic pattern",
+                    self.text,
                     f"value {value!r} for {{{name}}} must be one non-empty level",
                 )
             validate_topic(value)
@@ -465,20 +476,24 @@ class RouteRule:
         if not isinstance(self.asset_class, str) or not self.asset_class:
             raise ValueError(f"asset_class must be a non-empty string, got {self.asset_class!r}")
         used: set[str] = set()
-        for kind, template in (("asset_id template", self.asset_id),
-                               ("signal template", self.signal)):
+        for kind, template in (
+            ("asset_id template", self.asset_id),
+            ("signal template", self.signal),
+        ):
             names = _template_names(kind, template)
             missing = [name for name in names if name not in self.pattern.names]
             if missing:
                 raise TopicError(
-                    kind, template,
+                    kind,
+                    template,
                     f"uses {{{missing[0]}}}, which pattern {self.pattern.text!r} does not name",
                 )
             used.update(names)
         unused = [name for name in self.pattern.names if name not in used]
         if unused:
             raise TopicError(
-                "topic pattern", self.pattern.text,
+                "topic pattern",
+                self.pattern.text,
                 f"named level {{{unused[0]}}} is used in neither asset_id nor signal; "
                 "assets differing only there would be merged",
             )
@@ -585,8 +600,11 @@ class Router:
         self.rules = tuple(self.rules)
         if not self.rules:
             raise ValueError("rules must hold at least one RouteRule")
-        if (isinstance(self.max_assets, bool) or not isinstance(self.max_assets, int)
-                or self.max_assets < 1):
+        if (
+            isinstance(self.max_assets, bool)
+            or not isinstance(self.max_assets, int)
+            or self.max_assets < 1
+        ):
             raise ValueError(f"max_assets must be an integer >= 1, got {self.max_assets!r}")
 
     @property

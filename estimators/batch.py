@@ -178,8 +178,9 @@ class BatchRls:
                 for full, part in zip(self._state, sub, strict=True):
                     full[idx] = part
         innovation, normalised, weight, excitation = out
-        return BatchStep(innovation, normalised, weight, excitation,
-                         updated=updated, rejected=rejected)
+        return BatchStep(
+            innovation, normalised, weight, excitation, updated=updated, rejected=rejected
+        )
 
     def _run(
         self,
@@ -204,8 +205,11 @@ class BatchRls:
         for lo in range(0, size, chunk):
             part = slice(lo, lo + chunk)
             _, e, nrm, w, upd, ex = self._kernel(
-                [a[part] for a in state], list(phi_t[:, part]), y[part],
-                list(inputs_t[:, part]), check[part],
+                [a[part] for a in state],
+                list(phi_t[:, part]),
+                y[part],
+                list(inputs_t[:, part]),
+                check[part],
             )
             dest = part if idx is None else idx[part]
             for row, values in zip(out, (e, nrm, w, ex), strict=True):
@@ -227,9 +231,7 @@ class BatchRls:
         """
         self._check_index(index)
         if len(state) != self.layout.size:
-            raise DimensionError(
-                f"asset state needs {self.layout.size} entries, got {len(state)}"
-            )
+            raise DimensionError(f"asset state needs {self.layout.size} entries, got {len(state)}")
         for a, v in zip(self._state, state, strict=True):
             a[index] = v
 

@@ -36,8 +36,9 @@ def decode_order(data: Any, where: str = "order") -> ArxOrder:
         If keys are missing or unknown; OrderError if the orders are impossible.
     """
     expect_keys(data, {"na", "nb", "nk", "constant"}, where)
-    return ArxOrder(na=data["na"], nb=tuple(data["nb"]), nk=tuple(data["nk"]),
-                    constant=bool(data["constant"]))
+    return ArxOrder(
+        na=data["na"], nb=tuple(data["nb"]), nk=tuple(data["nk"]), constant=bool(data["constant"])
+    )
 
 
 def encode_config(config: RlsConfig) -> dict[str, Any]:
@@ -90,8 +91,10 @@ def decode_estimator(data: Any) -> ArxEstimator:
         raise CodecError(
             f"estimator.version: this build reads version {VERSION}, got {data['version']!r}"
         )
-    estimator = ArxEstimator(decode_order(data["order"], "estimator.order"),
-                             decode_config(data["config"], "estimator.config"))
+    estimator = ArxEstimator(
+        decode_order(data["order"], "estimator.order"),
+        decode_config(data["config"], "estimator.config"),
+    )
     expect_keys(data["state"], {"rls", "history"}, "estimator.state")
     estimator.load_state(data["state"])
     return estimator

@@ -522,4 +522,3 @@ def build_kernel(layout: StateLayout, config: RlsConfig, vectorised: bool = Fals
     exec(compile(source, f"<arxwatch rls kernel n={layout.n_params}>", "exec"), namespace)
     kernel: Kernel = namespace["step"]
     return kernel
-

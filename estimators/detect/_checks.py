@@ -14,11 +14,7 @@ from typing import Any
 
 def is_real(value: object) -> bool:
     """Tell whether ``value`` is a finite real number (not a bool)."""
-    return (
-        not isinstance(value, bool)
-        and isinstance(value, Real)
-        and math.isfinite(float(value))
-    )
+    return not isinstance(value, bool) and isinstance(value, Real) and math.isfinite(float(value))
 
 
 def is_int(value: object) -> bool:
@@ -50,9 +46,7 @@ def check_probability(owner: str, name: str, value: float) -> None:
     check_setting(owner, name, value, ok, "a number strictly between 0 and 1")
 
 
-def expect_state(
-    state: object, detector: str, keys: Collection[str]
-) -> Mapping[str, Any]:
+def expect_state(state: object, detector: str, keys: Collection[str]) -> Mapping[str, Any]:
     """Check that ``state`` is a dict saved by ``detector`` holding exactly ``keys``.
 
     Raises

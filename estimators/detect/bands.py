@@ -74,15 +74,22 @@ class BandsConfig:
 
     def __post_init__(self) -> None:
         owner = type(self).__name__
-        for name in ("gain_tolerance", "time_constant_tolerance", "dead_time_tolerance",
-                     "offset_sigmas"):
+        for name in (
+            "gain_tolerance",
+            "time_constant_tolerance",
+            "dead_time_tolerance",
+            "offset_sigmas",
+        ):
             value = getattr(self, name)
-            check_setting(owner, name, value, is_real(value) and value > 0.0,
-                          "a finite number > 0")
+            check_setting(owner, name, value, is_real(value) and value > 0.0, "a finite number > 0")
         tol = self.offset_tolerance
-        check_setting(owner, "offset_tolerance", tol,
-                      tol is None or (is_real(tol) and tol > 0.0),
-                      "None or a finite number > 0 (output units)")
+        check_setting(
+            owner,
+            "offset_tolerance",
+            tol,
+            tol is None or (is_real(tol) and tol > 0.0),
+            "None or a finite number > 0 (output units)",
+        )
 
 
 def _features(readout: PhysicalReadout) -> dict[str, float]:
@@ -190,7 +197,8 @@ class PhysicalBands:
         if offset is not None and offset_tolerance is not None:
             monitored.append(("offset", offset, False, offset_tolerance))
         self._baseline = [
-            entry for entry in monitored
+            entry
+            for entry in monitored
             if math.isfinite(entry[1]) and not (entry[2] and entry[1] == 0.0)
         ]
         self._shape = (len(gains), offset is not None)
@@ -244,19 +252,33 @@ class PhysicalBands:
         for name, base, relative, tol in self._baseline:
             value = current[name]
             if not math.isfinite(value):
-                out.append(Evidence(
-                    detector=_NAME, family="behaviour", statistic=math.inf, threshold=tol,
-                    alarm=True, signal=name, values={"baseline": base}, detail="undefined",
-                ))
+                out.append(
+                    Evidence(
+                        detector=_NAME,
+                        family="behaviour",
+                        statistic=math.inf,
+                        threshold=tol,
+                        alarm=True,
+                        signal=name,
+                        values={"baseline": base},
+                        detail="undefined",
+                    )
+                )
                 continue
             change = (value - base) / abs(base) if relative else value - base
             statistic = abs(change)
-            out.append(Evidence(
-                detector=_NAME, family="behaviour", statistic=statistic, threshold=tol,
-                alarm=statistic >= tol, signal=name,
-                values={"baseline": base, "current": value, "change": change},
-                detail="high" if change >= 0.0 else "low",
-            ))
+            out.append(
+                Evidence(
+                    detector=_NAME,
+                    family="behaviour",
+                    statistic=statistic,
+                    threshold=tol,
+                    alarm=statistic >= tol,
+                    signal=name,
+                    values={"baseline": base, "current": value, "change": change},
+                    detail="high" if change >= 0.0 else "low",
+                )
+            )
         return out
 
     def reset(self) -> None:
@@ -288,16 +310,24 @@ class PhysicalBands:
         if raw is None:
             self.reset()
             return
-        keys = {"gains", "time_constant_s", "dead_times_s", "offset", "has_offset",
-                "offset_tolerance"}
+        keys = {
+            "gains",
+            "time_constant_s",
+            "dead_times_s",
+            "offset",
+            "has_offset",
+            "offset_tolerance",
+        }
         if not isinstance(raw, dict) or set(raw) != keys:
-            raise ValueError(f"{_NAME} state: baseline must be null or a dict with keys "
-                             f"{sorted(keys)}")
+            raise ValueError(
+                f"{_NAME} state: baseline must be null or a dict with keys {sorted(keys)}"
+            )
         gains = _list_or_nan(raw["gains"], "baseline.gains")
         dead_times = _list_or_nan(raw["dead_times_s"], "baseline.dead_times_s")
         if len(gains) != len(dead_times):
-            raise ValueError(f"{_NAME} state: baseline.gains and baseline.dead_times_s "
-                             "differ in length")
+            raise ValueError(
+                f"{_NAME} state: baseline.gains and baseline.dead_times_s differ in length"
+            )
         tau = _value_or_nan(raw["time_constant_s"], "baseline.time_constant_s")
         has_offset = raw["has_offset"]
         if not isinstance(has_offset, bool):
@@ -308,8 +338,10 @@ class PhysicalBands:
             offset = _value_or_nan(raw["offset"], "baseline.offset")
             tolerance = raw["offset_tolerance"]
             if not (is_real(tolerance) and float(tolerance) > 0.0):
-                raise ValueError(f"{_NAME} state: baseline.offset_tolerance must be a finite "
-                                 f"number > 0, got {tolerance!r}")
+                raise ValueError(
+                    f"{_NAME} state: baseline.offset_tolerance must be a finite "
+                    f"number > 0, got {tolerance!r}"
+                )
             tolerance = float(tolerance)
         elif raw["offset"] is not None or raw["offset_tolerance"] is not None:
             raise ValueError(f"{_NAME} state: baseline without offset holds an offset")
@@ -332,4 +364,3 @@ def _list_or_nan(v: Any, key: str) -> list[float]:
     if not isinstance(v, list):
         raise ValueError(f"{_NAME} state: {key} must be a list, got {type(v).__name__}")
     return [_value_or_nan(x, key) for x in v]
-

@@ -77,8 +77,11 @@ class CusumConfig:
         check_setting(owner, "k", self.k, is_real(self.k) and self.k >= 0.0, "a finite number >= 0")
         check_setting(owner, "h", self.h, is_real(self.h) and self.h > 0.0, "a finite number > 0")
         check_setting(
-            owner, "after_alarm", self.after_alarm,
-            self.after_alarm in ("restart", "hold"), "'restart' or 'hold'",
+            owner,
+            "after_alarm",
+            self.after_alarm,
+            self.after_alarm in ("restart", "hold"),
+            "'restart' or 'hold'",
         )
 
 

@@ -204,8 +204,7 @@ def calibrate(d2_samples: ArrayLike, false_alarm_rate: float) -> float:
 def _check_common(owner: str, alpha: float, every: int, rcond: float) -> None:
     check_probability(owner, "alpha", alpha)
     check_setting(owner, "every", every, is_int(every) and every >= 1, "an integer >= 1")
-    check_setting(owner, "rcond", rcond, is_real(rcond) and 0.0 < rcond < 1.0,
-                  "a number in (0, 1)")
+    check_setting(owner, "rcond", rcond, is_real(rcond) and 0.0 < rcond < 1.0, "a number in (0, 1)")
 
 
 @dataclass(frozen=True)
@@ -243,8 +242,13 @@ class ParameterDriftConfig:
                 and all(is_int(i) and i >= 0 for i in self.indices)
                 and len(set(self.indices)) == len(self.indices)
             )
-            check_setting(owner, "indices", self.indices, ok,
-                          "None or a non-empty tuple of distinct integers >= 0")
+            check_setting(
+                owner,
+                "indices",
+                self.indices,
+                ok,
+                "None or a non-empty tuple of distinct integers >= 0",
+            )
 
 
 @dataclass(frozen=True)
@@ -277,11 +281,14 @@ class FeatureDriftConfig:
 
     def __post_init__(self) -> None:
         owner = type(self).__name__
-        check_setting(owner, "order", self.order, isinstance(self.order, ArxOrder),
-                      "an ArxOrder")
-        check_setting(owner, "sample_period_s", self.sample_period_s,
-                      is_real(self.sample_period_s) and self.sample_period_s > 0.0,
-                      "a finite number of seconds > 0")
+        check_setting(owner, "order", self.order, isinstance(self.order, ArxOrder), "an ArxOrder")
+        check_setting(
+            owner,
+            "sample_period_s",
+            self.sample_period_s,
+            is_real(self.sample_period_s) and self.sample_period_s > 0.0,
+            "a finite number of seconds > 0",
+        )
         _check_common(owner, self.alpha, self.every, self.rcond)
         if self.features is not None:
             names = feature_names(self.order)
@@ -291,8 +298,13 @@ class FeatureDriftConfig:
                 and all(f in names for f in self.features)
                 and len(set(self.features)) == len(self.features)
             )
-            check_setting(owner, "features", self.features, ok,
-                          f"None or a non-empty tuple of distinct names from {names}")
+            check_setting(
+                owner,
+                "features",
+                self.features,
+                ok,
+                f"None or a non-empty tuple of distinct names from {names}",
+            )
 
 
 class _WaldDrift(ABC):
@@ -436,8 +448,14 @@ class _WaldDrift(ABC):
         if idx.shape[0] == 0:
             values["n_tested"] = 0.0
             return Evidence(
-                detector=self._name, family="behaviour", statistic=0.0, threshold=math.inf,
-                alarm=False, signal=self._signal, values=values, detail="undefined",
+                detector=self._name,
+                family="behaviour",
+                statistic=0.0,
+                threshold=math.inf,
+                alarm=False,
+                signal=self._signal,
+                values=values,
+                detail="undefined",
             )
         sub = np.ix_(idx, idx)
         d2, rank = wald_distance(x[idx] - x0[idx], c0[sub] + cx[sub], rcond=self._rcond)
@@ -447,15 +465,23 @@ class _WaldDrift(ABC):
             detail = "partial"
         elif rank < idx.shape[0]:
             detail = "rank_deficient"
-        values.update({
-            "d2": d2,
-            "df": float(rank),
-            "p_value": float(chi2.sf(d2, rank)),
-            "n_tested": float(idx.shape[0]),
-        })
+        values.update(
+            {
+                "d2": d2,
+                "df": float(rank),
+                "p_value": float(chi2.sf(d2, rank)),
+                "n_tested": float(idx.shape[0]),
+            }
+        )
         return Evidence(
-            detector=self._name, family="behaviour", statistic=d2, threshold=threshold,
-            alarm=d2 >= threshold, signal=self._signal, values=values, detail=detail,
+            detector=self._name,
+            family="behaviour",
+            statistic=d2,
+            threshold=threshold,
+            alarm=d2 >= threshold,
+            signal=self._signal,
+            values=values,
+            detail=detail,
         )
 
     def _chi2(self, df: int) -> float:
@@ -504,16 +530,19 @@ class _WaldDrift(ABC):
             return
         keys = {"x", "covariance", "n_params", "threshold"}
         if not isinstance(raw, dict) or set(raw) != keys:
-            raise ValueError(f"{name} state: baseline must be null or a dict with keys "
-                             f"{sorted(keys)}")
+            raise ValueError(
+                f"{name} state: baseline must be null or a dict with keys {sorted(keys)}"
+            )
         n_params = state_int(raw, name, "n_params", minimum=1)
         n = self._tested_size(n_params)
         x0 = np.array(_vector_or_nan(raw["x"], name, "baseline.x", n), dtype=np.float64)
         rows = raw["covariance"]
         if not isinstance(rows, list) or len(rows) != n:
             raise ValueError(f"{name} state: baseline.covariance must be a list of {n} rows")
-        c0 = np.array([_vector_or_nan(row, name, "baseline.covariance row", n) for row in rows],
-                      dtype=np.float64).reshape(n, n)
+        c0 = np.array(
+            [_vector_or_nan(row, name, "baseline.covariance row", n) for row in rows],
+            dtype=np.float64,
+        ).reshape(n, n)
         empirical = raw["threshold"]
         if empirical is not None and not (is_real(empirical) and empirical > 0.0):
             raise ValueError(

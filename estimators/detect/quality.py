@@ -56,8 +56,14 @@ __all__ = ["QualityConfig", "SignalQuality"]
 
 _NAME = "data_quality"
 _KEYS = (
-    "last_time_s", "first_check_s", "run_start_s", "run_min", "run_max", "has_moved",
-    "gap_count", "gap_total_s",
+    "last_time_s",
+    "first_check_s",
+    "run_start_s",
+    "run_min",
+    "run_max",
+    "has_moved",
+    "gap_count",
+    "gap_total_s",
 )
 
 
@@ -103,25 +109,56 @@ class QualityConfig:
 
     def __post_init__(self) -> None:
         owner = type(self).__name__
-        check_setting(owner, "expected_period_s", self.expected_period_s,
-                      _positive(self.expected_period_s, False), "a finite number of seconds > 0")
-        check_setting(owner, "stale_after_s", self.stale_after_s,
-                      _positive(self.stale_after_s, True), "a number of seconds > 0 or inf")
-        check_setting(owner, "gap_factor", self.gap_factor,
-                      _positive(self.gap_factor, False) and self.gap_factor > 1.0,
-                      "a finite number > 1")
-        check_setting(owner, "stuck_window_s", self.stuck_window_s,
-                      _positive(self.stuck_window_s, True), "a number of seconds > 0 or inf")
+        check_setting(
+            owner,
+            "expected_period_s",
+            self.expected_period_s,
+            _positive(self.expected_period_s, False),
+            "a finite number of seconds > 0",
+        )
+        check_setting(
+            owner,
+            "stale_after_s",
+            self.stale_after_s,
+            _positive(self.stale_after_s, True),
+            "a number of seconds > 0 or inf",
+        )
+        check_setting(
+            owner,
+            "gap_factor",
+            self.gap_factor,
+            _positive(self.gap_factor, False) and self.gap_factor > 1.0,
+            "a finite number > 1",
+        )
+        check_setting(
+            owner,
+            "stuck_window_s",
+            self.stuck_window_s,
+            _positive(self.stuck_window_s, True),
+            "a number of seconds > 0 or inf",
+        )
         eps = self.stuck_epsilon
-        check_setting(owner, "stuck_epsilon", eps,
-                      eps == 0.0 or _positive(eps, False), "a finite number >= 0")
+        check_setting(
+            owner, "stuck_epsilon", eps, eps == 0.0 or _positive(eps, False), "a finite number >= 0"
+        )
         for name in ("minimum", "maximum"):
             value = getattr(self, name)
-            check_setting(owner, name, value,
-                          isinstance(value, Real) and not isinstance(value, bool)
-                          and not math.isnan(float(value)), "a number (may be infinite)")
-        check_setting(owner, "maximum", self.maximum, self.maximum > self.minimum,
-                      f"greater than minimum ({self.minimum!r})")
+            check_setting(
+                owner,
+                name,
+                value,
+                isinstance(value, Real)
+                and not isinstance(value, bool)
+                and not math.isnan(float(value)),
+                "a number (may be infinite)",
+            )
+        check_setting(
+            owner,
+            "maximum",
+            self.maximum,
+            self.maximum > self.minimum,
+            f"greater than minimum ({self.minimum!r})",
+        )
 
 
 class SignalQuality:
@@ -155,8 +192,16 @@ class SignalQuality:
     """
 
     __slots__ = (
-        "signal", "config", "_last", "_first_check", "_run_start", "_run_min", "_run_max",
-        "_has_moved", "_gap_count", "_gap_total",
+        "signal",
+        "config",
+        "_last",
+        "_first_check",
+        "_run_start",
+        "_run_min",
+        "_run_max",
+        "_has_moved",
+        "_gap_count",
+        "_gap_total",
     )
 
     def __init__(self, signal: str, config: QualityConfig | None = None) -> None:
@@ -253,11 +298,19 @@ class SignalQuality:
 
         return [
             Evidence(
-                detector="out_of_range", family=family, statistic=value, threshold=limit,
-                alarm=out, signal=self.signal, values=range_values, detail=side,
+                detector="out_of_range",
+                family=family,
+                statistic=value,
+                threshold=limit,
+                alarm=out,
+                signal=self.signal,
+                values=range_values,
+                detail=side,
             ),
             Evidence(
-                detector="stuck", family=family, statistic=flat_s,
+                detector="stuck",
+                family=family,
+                statistic=flat_s,
                 threshold=config.stuck_window_s,
                 alarm=self._has_moved and flat_s >= config.stuck_window_s,
                 signal=self.signal,
@@ -265,8 +318,12 @@ class SignalQuality:
                 detail="stuck",
             ),
             Evidence(
-                detector="gap", family=family, statistic=periods, threshold=config.gap_factor,
-                alarm=gap, signal=self.signal,
+                detector="gap",
+                family=family,
+                statistic=periods,
+                threshold=config.gap_factor,
+                alarm=gap,
+                signal=self.signal,
                 values={
                     "interval_s": interval,
                     "gap_count": float(self._gap_count),
@@ -311,9 +368,14 @@ class SignalQuality:
         age = max(0.0, now_s - reference)
         values["age_s"] = age
         return Evidence(
-            detector="stale", family="data_quality", statistic=age,
-            threshold=self.config.stale_after_s, alarm=age > self.config.stale_after_s,
-            signal=self.signal, values=values, detail="stale",
+            detector="stale",
+            family="data_quality",
+            statistic=age,
+            threshold=self.config.stale_after_s,
+            alarm=age > self.config.stale_after_s,
+            signal=self.signal,
+            values=values,
+            detail="stale",
         )
 
     def reset(self) -> None:

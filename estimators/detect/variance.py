@@ -84,7 +84,10 @@ class VarianceConfig:
     def __post_init__(self) -> None:
         owner = type(self).__name__
         check_setting(
-            owner, "lam", self.lam, is_real(self.lam) and 0.0 < self.lam <= 1.0,
+            owner,
+            "lam",
+            self.lam,
+            is_real(self.lam) and 0.0 < self.lam <= 1.0,
             "a number in (0, 1]",
         )
         check_probability(owner, "alpha", self.alpha)
@@ -179,13 +182,24 @@ class VarianceChange:
                 statistic = 1.0 / s if s > 0.0 else math.inf
                 threshold = 1.0 / self.lower_limit
                 return Evidence(
-                    detector=_NAME, family="behaviour", statistic=statistic,
-                    threshold=threshold, alarm=statistic >= threshold, signal="innovation",
-                    values=values, detail="low",
+                    detector=_NAME,
+                    family="behaviour",
+                    statistic=statistic,
+                    threshold=threshold,
+                    alarm=statistic >= threshold,
+                    signal="innovation",
+                    values=values,
+                    detail="low",
                 )
         return Evidence(
-            detector=_NAME, family="behaviour", statistic=s, threshold=self.upper_limit,
-            alarm=s >= self.upper_limit, signal="innovation", values=values, detail="high",
+            detector=_NAME,
+            family="behaviour",
+            statistic=s,
+            threshold=self.upper_limit,
+            alarm=s >= self.upper_limit,
+            signal="innovation",
+            values=values,
+            detail="high",
         )
 
     @property

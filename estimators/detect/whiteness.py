@@ -75,13 +75,19 @@ class WhitenessConfig:
 
     def __post_init__(self) -> None:
         owner = type(self).__name__
-        check_setting(owner, "lags", self.lags, is_int(self.lags) and self.lags >= 1,
-                      "an integer >= 1")
-        check_setting(owner, "window", self.window,
-                      is_int(self.window) and self.window > self.lags,
-                      f"an integer > lags ({self.lags})")
-        check_setting(owner, "every", self.every, is_int(self.every) and self.every >= 1,
-                      "an integer >= 1")
+        check_setting(
+            owner, "lags", self.lags, is_int(self.lags) and self.lags >= 1, "an integer >= 1"
+        )
+        check_setting(
+            owner,
+            "window",
+            self.window,
+            is_int(self.window) and self.window > self.lags,
+            f"an integer > lags ({self.lags})",
+        )
+        check_setting(
+            owner, "every", self.every, is_int(self.every) and self.every >= 1, "an integer >= 1"
+        )
         check_probability(owner, "alpha", self.alpha)
 
     @property

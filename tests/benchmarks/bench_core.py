@@ -131,13 +131,16 @@ def main() -> None:
     parser.add_argument("--repeat", type=int, default=5, help="runs per figure (best kept)")
     args = parser.parse_args()
 
-    best = best_of(args.repeat, {
-        "ours": per_asset(args.samples),
-        "pad": padasip_rls(args.samples),
-        "smd": statsmodels_rls(args.samples),
-        "b1k": batched(1_000, 200),
-        "b10k": batched(10_000, 60),
-    })
+    best = best_of(
+        args.repeat,
+        {
+            "ours": per_asset(args.samples),
+            "pad": padasip_rls(args.samples),
+            "smd": statsmodels_rls(args.samples),
+            "b1k": batched(1_000, 200),
+            "b10k": batched(10_000, 60),
+        },
+    )
     ours, b1k, b10k = best["ours"], best["b1k"], best["b10k"]
     pad, smd = best.get("pad"), best.get("smd")
     state = BatchRls(N_PARAMS, 2, 1).state_bytes_per_asset
@@ -145,15 +148,23 @@ def main() -> None:
     print(f"RLS update, n = {N_PARAMS} parameters, lambda = {LAMBDA}")
     print(f"  per-asset path (ArxEstimator.step)      {ours * 1e6:8.2f} us/sample")
     if pad is not None:
-        print(f"  padasip FilterRLS.adapt (reference)     {pad * 1e6:8.2f} us/sample"
-              f"   ratio {pad / ours:5.2f}x  (target >= 4x)")
+        print(
+            f"  padasip FilterRLS.adapt (reference)     {pad * 1e6:8.2f} us/sample"
+            f"   ratio {pad / ours:5.2f}x  (target >= 4x)"
+        )
     if smd is not None:
-        print(f"  statsmodels RecursiveLS.fit (reference) {smd * 1e6:8.2f} us/sample"
-              f"   ratio {smd / ours:5.2f}x  (target >= 4x)")
-    print(f"  batched, 1,000 assets                   {b1k * 1e9:8.1f} ns/asset-update"
-          f"   {ours / b1k:6.1f}x the per-asset path")
-    print(f"  batched, 10,000 assets                  {b10k * 1e9:8.1f} ns/asset-update"
-          f"   {ours / b10k:6.1f}x the per-asset path  (target <= 150 ns)")
+        print(
+            f"  statsmodels RecursiveLS.fit (reference) {smd * 1e6:8.2f} us/sample"
+            f"   ratio {smd / ours:5.2f}x  (target >= 4x)"
+        )
+    print(
+        f"  batched, 1,000 assets                   {b1k * 1e9:8.1f} ns/asset-update"
+        f"   {ours / b1k:6.1f}x the per-asset path"
+    )
+    print(
+        f"  batched, 10,000 assets                  {b10k * 1e9:8.1f} ns/asset-update"
+        f"   {ours / b10k:6.1f}x the per-asset path  (target <= 150 ns)"
+    )
     print(f"  batched state                           {state:8d} bytes/asset (target <= 512)")
 
 

@@ -27,8 +27,14 @@ from arxwatch.estimators.estimator import ArxEstimator
 
 TS = 60.0
 PER_DAY = 1440
-LOOP = Loop(gain=-0.11, time_constant_s=600.0, dead_time_s=120.0, sample_period_s=TS,
-            offset=24.0, noise_std=0.03)
+LOOP = Loop(
+    gain=-0.11,
+    time_constant_s=600.0,
+    dead_time_s=120.0,
+    sample_period_s=TS,
+    offset=24.0,
+    noise_std=0.03,
+)
 NAMES = SignalNames("supply-air temperature", "degC", ("cooling valve",), ("%",))
 
 
@@ -40,8 +46,9 @@ def main() -> None:
     args = parser.parse_args()
 
     u0 = daily_operation(2 * PER_DAY, TS, seed=1)
-    result = fit_baseline(LOOP.simulate(u0, seed=2), u0[:, None],
-                          np.arange(len(u0)) * TS, sample_period_s=TS)
+    result = fit_baseline(
+        LOOP.simulate(u0, seed=2), u0[:, None], np.arange(len(u0)) * TS, sample_period_s=TS
+    )
     assert result.baseline is not None, result.reasons
     baseline = result.baseline
     n = int(args.days * PER_DAY)
@@ -68,12 +75,16 @@ def main() -> None:
         best["estimator"] = min(best["estimator"], estimator_only())
         best["monitor"] = min(best["monitor"], monitor())
     est_us, mon_us = best["estimator"] * 1e6, best["monitor"] * 1e6
-    print(f"drift monitor, order {baseline.order.na}/{baseline.order.nb}/{baseline.order.nk}, "
-          f"{baseline.order.n_params} parameters, {n} samples per run")
+    print(
+        f"drift monitor, order {baseline.order.na}/{baseline.order.nb}/{baseline.order.nk}, "
+        f"{baseline.order.n_params} parameters, {n} samples per run"
+    )
     print(f"  estimator alone (ArxEstimator.update)   {est_us:8.2f} us/sample")
     print(f"  whole monitor (AssetMonitor.step)       {mon_us:8.2f} us/sample")
-    print(f"  detectors and lifecycle add             {mon_us - est_us:8.2f} us/sample"
-          f"   = {(mon_us - est_us) / est_us:5.2f}x the estimator (target <= 1x)")
+    print(
+        f"  detectors and lifecycle add             {mon_us - est_us:8.2f} us/sample"
+        f"   = {(mon_us - est_us) / est_us:5.2f}x the estimator (target <= 1x)"
+    )
 
 
 if __name__ == "__main__":

@@ -90,13 +90,17 @@ def pattern_and_topic(draw: st.DrawFn) -> tuple[TopicPattern, str]:
     size = draw(st.integers(1, 5))
     named = draw(st.lists(st.booleans(), min_size=size, max_size=size))
     fixed = draw(st.lists(NAME_LEVELS, min_size=size, max_size=size))
-    text = "/".join(f"{{n{k}}}" if is_named else level
-                    for k, (is_named, level) in enumerate(zip(named, fixed, strict=True)))
+    text = "/".join(
+        f"{{n{k}}}" if is_named else level
+        for k, (is_named, level) in enumerate(zip(named, fixed, strict=True))
+    )
     assume(text)  # a single empty fixed level is the empty pattern
     if draw(st.booleans()):
         return TopicPattern.parse(text), draw(topic_names)
-    fitted = [draw(NAME_LEVELS) if is_named else level
-              for is_named, level in zip(named, fixed, strict=True)]
+    fitted = [
+        draw(NAME_LEVELS) if is_named else level
+        for is_named, level in zip(named, fixed, strict=True)
+    ]
     return TopicPattern.parse(text), "/".join(fitted) or draw(topic_names)
 
 
@@ -116,7 +120,9 @@ def test_pattern_match_agrees_with_its_subscription(case: tuple[TopicPattern, st
 KEYS = [f"site-{k}" for k in range(2000)]
 replica_sets = st.lists(
     st.text(alphabet="abcdefghij-0123456789", min_size=1, max_size=8),
-    min_size=2, max_size=8, unique=True,
+    min_size=2,
+    max_size=8,
+    unique=True,
 )
 
 

@@ -126,8 +126,9 @@ def test_class_arl_under_one_sigma_shift_by_renewal_after_restart() -> None:
     # Source: Montgomery (2009), table 9.3, h = 5, 1 sigma: ARL = 10.4 (from memory).
     rng = np.random.default_rng(7)
     det = Cusum()
-    alarms = [t for t, z in enumerate(rng.standard_normal(60000) + 1.0)
-              if det.update(float(z)).alarm]
+    alarms = [
+        t for t, z in enumerate(rng.standard_normal(60000) + 1.0) if det.update(float(z)).alarm
+    ]
     gaps = np.diff(np.array([-1, *alarms]))
     se = float(gaps.std(ddof=1)) / math.sqrt(gaps.size)
     assert abs(float(gaps.mean()) - 10.4) <= 4.0 * se + 0.05
@@ -222,8 +223,7 @@ def test_wald_distance_equals_direct_numpy() -> None:
     s_low = b @ b.T
     d2, rank = wald_distance(delta, s_low)
     assert rank == 3
-    assert d2 == pytest.approx(float(delta @ np.linalg.pinv(s_low, rcond=1e-10) @ delta),
-                               rel=1e-8)
+    assert d2 == pytest.approx(float(delta @ np.linalg.pinv(s_low, rcond=1e-10) @ delta), rel=1e-8)
 
 
 def test_false_alarm_rate_is_alpha_for_a_linear_gaussian_model() -> None:

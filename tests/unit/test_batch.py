@@ -12,8 +12,9 @@ from arxwatch.estimators.rls import RlsConfig
 
 @pytest.mark.parametrize("gated", [False, True])
 def test_batch_equals_per_asset_path(gated: bool) -> None:
-    cfg = RlsConfig(forgetting=0.98, p0=1e3, warmup_updates=10,
-                    min_input_std=0.3 if gated else None)
+    cfg = RlsConfig(
+        forgetting=0.98, p0=1e3, warmup_updates=10, min_input_std=0.3 if gated else None
+    )
     rng = np.random.default_rng(11)
     n_assets, steps = 40, 1500
     batch = BatchRls(6, 2, n_assets, cfg)
@@ -70,8 +71,7 @@ def test_shape_errors_name_the_argument() -> None:
 def test_chunks_give_the_same_bits_and_update_in_place(gated: bool) -> None:
     # The vectorised kernel writes into the state arrays, so chunks of views
     # must give exactly what one call over all assets gives.
-    cfg = RlsConfig(forgetting=0.97, p0=1e2, warmup_updates=5,
-                    min_input_std=0.3 if gated else None)
+    cfg = RlsConfig(forgetting=0.97, p0=1e2, warmup_updates=5, min_input_std=0.3 if gated else None)
     rng = np.random.default_rng(12)
     whole, chunked = BatchRls(4, 1, 23, cfg), BatchRls(4, 1, 23, cfg, chunk=5)
     arrays = list(chunked._state)

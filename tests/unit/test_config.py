@@ -27,10 +27,16 @@ def base() -> dict[str, Any]:
                 "pattern": "yard/{building}/vav/{asset}/{signal}",
                 "asset_id": "{building}/{asset}",
                 "sample_period_s": 60,
-                "output": {"signal": "zone-temp", "name": "zone temperature",
-                           "unit": "degC", "min": 5, "max": 40},
-                "inputs": [{"signal": "reheat", "name": "reheat valve",
-                            "unit": "%", "min": 0, "max": 100}],
+                "output": {
+                    "signal": "zone-temp",
+                    "name": "zone temperature",
+                    "unit": "degC",
+                    "min": 5,
+                    "max": 40,
+                },
+                "inputs": [
+                    {"signal": "reheat", "name": "reheat valve", "unit": "%", "min": 0, "max": 100}
+                ],
                 "model": {"na": 1, "nb": 1, "nk": 1},
                 "baseline": {"learn_for_s": 86400},
             }
@@ -56,9 +62,11 @@ def test_example_loads_and_builds_every_derived_object() -> None:
     assert ahu.signal_names().inputs == ("cooling valve", "supply fan speed")
     router = config.router()
     assert router.route("larkspur/block-c/vav/v-3-14/damper") == Route(
-        "vav", "block-c/v-3-14", "damper")
+        "vav", "block-c/v-3-14", "damper"
+    )
     assert router.route("larkspur/block-c/vav/v-3-14/setpoint") == Refused(
-        "signal not allowed", "vav")
+        "signal not allowed", "vav"
+    )
 
 
 def test_defaults_of_a_minimal_config() -> None:
@@ -73,67 +81,92 @@ def test_defaults_of_a_minimal_config() -> None:
 def test_unknown_key_suggests_the_close_one() -> None:
     data = base()
     data["broker"]["prot"] = 1883
-    with pytest.raises(ConfigError, match=r"site\.yaml: broker\.prot: unknown key; "
-                       r"did you mean 'port'\?"):
+    with pytest.raises(
+        ConfigError,
+        match=r"site\.yaml: broker\.prot: unknown key; "
+        r"did you mean 'port'\?",
+    ):
         parse(data)
 
 
 def test_unknown_key_deep_in_a_list_names_the_index() -> None:
     data = base()
     data["asset_classes"][0]["inputs"][0]["delay_samples"] = 2
-    with pytest.raises(ConfigError,
-                       match=re.escape("site.yaml: asset_classes[0].inputs[0].delay_samples")):
+    with pytest.raises(
+        ConfigError, match=re.escape("site.yaml: asset_classes[0].inputs[0].delay_samples")
+    ):
         parse(data)
 
 
 def test_wrong_type_names_value_and_expectation() -> None:
     data = base()
     data["asset_classes"][0]["sample_period_s"] = "60"
-    with pytest.raises(ConfigError, match=re.escape(
+    with pytest.raises(
+        ConfigError,
+        match=re.escape(
             "site.yaml: asset_classes[0].sample_period_s: expected a finite number > 0, "
-            "found '60' (a string)")):
+            "found '60' (a string)"
+        ),
+    ):
         parse(data)
 
 
 def test_bool_is_not_an_integer() -> None:
     data = base()
     data["limits"] = {"max_assets": True}
-    with pytest.raises(ConfigError, match=r"limits\.max_assets: expected an integer >= 1, "
-                       r"found True \(a boolean\)"):
+    with pytest.raises(
+        ConfigError,
+        match=r"limits\.max_assets: expected an integer >= 1, "
+        r"found True \(a boolean\)",
+    ):
         parse(data)
 
 
 def test_duplicate_key_is_refused_with_its_line() -> None:
     text = yaml.safe_dump(base(), sort_keys=False).replace(
-        "  client_id: test-0\n", "  client_id: test-0\n  host: 10.0.0.9\n")
+        "  client_id: test-0\n", "  client_id: test-0\n  host: 10.0.0.9\n"
+    )
     line = text.splitlines().index("  host: 10.0.0.9") + 1
-    with pytest.raises(ConfigError, match=rf"site\.yaml: line {line}: duplicate key 'host' "
-                       r"\(first at line 2\)"):
+    with pytest.raises(
+        ConfigError,
+        match=rf"site\.yaml: line {line}: duplicate key 'host' "
+        r"\(first at line 2\)",
+    ):
         parse_config(text, "site.yaml")
 
 
 def test_impossible_order_is_reported_at_the_model() -> None:
     data = base()
     data["asset_classes"][0]["model"] = {"na": 1, "nb": 0, "nk": 1}
-    with pytest.raises(ConfigError, match=re.escape(
-            "site.yaml: asset_classes[0].model: impossible model order: nb[0] must be in")):
+    with pytest.raises(
+        ConfigError,
+        match=re.escape(
+            "site.yaml: asset_classes[0].model: impossible model order: nb[0] must be in"
+        ),
+    ):
         parse(data)
 
 
 def test_order_list_must_have_one_entry_per_input() -> None:
     data = base()
     data["asset_classes"][0]["model"] = {"na": 1, "nb": [1, 2], "nk": 1}
-    with pytest.raises(ConfigError, match=re.escape(
-            "asset_classes[0].model.nb: expected an integer or a list of 1 integers")):
+    with pytest.raises(
+        ConfigError,
+        match=re.escape("asset_classes[0].model.nb: expected an integer or a list of 1 integers"),
+    ):
         parse(data)
 
 
 def test_malformed_topic_pattern_is_reported_with_the_route_message() -> None:
     data = base()
     data["asset_classes"][0]["pattern"] = "yard/+/vav/{asset}/{signal}"
-    with pytest.raises(ConfigError, match=re.escape(
+    with pytest.raises(
+        ConfigError,
+        match=re.escape(
             "site.yaml: asset_classes[0].pattern: topic pattern 'yard/+/vav/{asset}/{signal}': "
-            "wildcards are not allowed")):
+            "wildcards are not allowed"
+        ),
+    ):
         parse(data)
 
 
@@ -147,8 +180,9 @@ def test_unused_pattern_level_is_reported_at_asset_id() -> None:
 def test_password_key_is_refused_with_the_alternatives() -> None:
     data = base()
     data["broker"]["password"] = SECRET
-    with pytest.raises(ConfigError, match=r"broker\.password: .*password_file.*password_env"
-                       ) as caught:
+    with pytest.raises(
+        ConfigError, match=r"broker\.password: .*password_file.*password_env"
+    ) as caught:
         parse(data)
     assert SECRET not in str(caught.value)
 
@@ -156,8 +190,11 @@ def test_password_key_is_refused_with_the_alternatives() -> None:
 def test_password_without_tls_is_refused_unless_allowed() -> None:
     data = base()
     data["broker"].update(username="u", password_env="MQTT_PASSWORD")
-    with pytest.raises(ConfigError, match=r"broker\.password_env: a password without TLS .*"
-                       r"allow_plaintext_password: true"):
+    with pytest.raises(
+        ConfigError,
+        match=r"broker\.password_env: a password without TLS .*"
+        r"allow_plaintext_password: true",
+    ):
         parse(data)
     data["broker"]["allow_plaintext_password"] = True
     parse(data)
@@ -174,8 +211,11 @@ def test_tls_file_must_exist(tmp_path: Path) -> None:
 def test_bad_port(port: object) -> None:
     data = base()
     data["broker"]["port"] = port
-    with pytest.raises(ConfigError, match=r"site\.yaml: broker\.port: expected an integer "
-                       r"in 1\.\.65535"):
+    with pytest.raises(
+        ConfigError,
+        match=r"site\.yaml: broker\.port: expected an integer "
+        r"in 1\.\.65535",
+    ):
         parse(data)
 
 
@@ -227,8 +267,11 @@ def test_read_secret_from_the_given_environment(tmp_path: Path) -> None:
 
 def test_read_secret_missing_variable_names_it_and_shows_no_secret(tmp_path: Path) -> None:
     config = load_config(_with_password(tmp_path, password_env="MQTT_PASSWORD"))
-    with pytest.raises(ConfigError, match=r"site\.yaml: broker\.password_env: environment "
-                       r"variable 'MQTT_PASSWORD' is not set") as caught:
+    with pytest.raises(
+        ConfigError,
+        match=r"site\.yaml: broker\.password_env: environment "
+        r"variable 'MQTT_PASSWORD' is not set",
+    ) as caught:
         read_secret(config, {"OTHER": SECRET})
     assert SECRET not in str(caught.value)
 
@@ -245,8 +288,7 @@ def test_check_command_on_the_example(capsys: pytest.CaptureFixture[str]) -> Non
     assert "chw-valve" in out and "ARXWATCH_MQTT_PASSWORD" in out
 
 
-def test_check_command_prints_no_secret(tmp_path: Path,
-                                        capsys: pytest.CaptureFixture[str]) -> None:
+def test_check_command_prints_no_secret(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     secret_file = tmp_path / "mqtt-password"
     secret_file.write_text(SECRET, encoding="utf-8")
     path = _with_password(tmp_path, password_file=str(secret_file))

@@ -36,8 +36,11 @@ def test_pinned_alarm_index_for_one_sigma_shift_at_500() -> None:
 
 def test_shift_estimate_at_signal_is_near_the_true_shift() -> None:
     det = Cusum()
-    estimates = [ev.values["shift_sigma"] for z in _stream(3, n=20000, shift_at=0)
-                 if (ev := det.update(z)).alarm]
+    estimates = [
+        ev.values["shift_sigma"]
+        for z in _stream(3, n=20000, shift_at=0)
+        if (ev := det.update(z)).alarm
+    ]
     assert len(estimates) > 1000
     # Montgomery's k + C/N is biased upwards at a signal; it still lands near 1 sigma.
     assert 0.9 < float(np.mean(estimates)) < 1.6
@@ -109,12 +112,18 @@ def test_non_finite_innovation_is_refused_without_change() -> None:
         ([], "state must be a dict"),
         ({"detector": "innovation_variance", "s": 1.0}, "saved by detector 'innovation_variance'"),
         ({"detector": "innovation_mean", "c_high": 0.0}, r"missing keys \['c_low', 'n_high'"),
-        ({"detector": "innovation_mean", "c_high": -1.0, "c_low": 0.0, "n_high": 0,
-          "n_low": 0}, "c_high must be a finite number >= 0.0, got -1.0"),
-        ({"detector": "innovation_mean", "c_high": 1.0, "c_low": 0.0, "n_high": 0,
-          "n_low": 0}, "c_high=1.0 and n_high=0 disagree"),
-        ({"detector": "innovation_mean", "c_high": 0.0, "c_low": 0.0, "n_high": 1.5,
-          "n_low": 0}, "n_high must be an integer >= 0, got 1.5"),
+        (
+            {"detector": "innovation_mean", "c_high": -1.0, "c_low": 0.0, "n_high": 0, "n_low": 0},
+            "c_high must be a finite number >= 0.0, got -1.0",
+        ),
+        (
+            {"detector": "innovation_mean", "c_high": 1.0, "c_low": 0.0, "n_high": 0, "n_low": 0},
+            "c_high=1.0 and n_high=0 disagree",
+        ),
+        (
+            {"detector": "innovation_mean", "c_high": 0.0, "c_low": 0.0, "n_high": 1.5, "n_low": 0},
+            "n_high must be an integer >= 0, got 1.5",
+        ),
     ],
 )
 def test_bad_state_is_refused(state: object, match: str) -> None:

@@ -63,8 +63,11 @@ def test_schedule_first_call_then_every_and_skips_without_reading() -> None:
 def test_pinned_first_alarm_after_gain_coefficient_drift_at_500() -> None:
     det = ParameterDrift(ParameterDriftConfig(every=10))
     det.set_baseline(THETA, COV)
-    alarms = [k for k, t in enumerate(_live(5, 1000, 500))
-              if (ev := det.update(t, COV)) is not None and ev.alarm]
+    alarms = [
+        k
+        for k, t in enumerate(_live(5, 1000, 500))
+        if (ev := det.update(t, COV)) is not None and ev.alarm
+    ]
     assert alarms[0] == 550 and all(k >= 500 for k in alarms)
 
 
@@ -132,9 +135,7 @@ def test_feature_drift_leaves_out_undefined_features() -> None:
     ev = det.update([0.5, 0.3, 0.1], COV)  # pole at -0.5: no time constant
     assert ev is not None and ev.detail == "partial" and ev.values["n_tested"] == 2.0
     assert "current_time_constant_s" not in ev.values and "current_gain_1" in ev.values
-    only_tau = FeatureDrift(
-        FeatureDriftConfig(ORDER, 60.0, every=1, features=("time_constant_s",))
-    )
+    only_tau = FeatureDrift(FeatureDriftConfig(ORDER, 60.0, every=1, features=("time_constant_s",)))
     only_tau.set_baseline(THETA, COV)
     ev = only_tau.update([-1.0, 0.3, 0.1], COV)  # integrating
     assert ev is not None and ev.detail == "undefined" and not ev.alarm
@@ -203,10 +204,14 @@ def test_reset_and_missing_baseline() -> None:
         (lambda: ParameterDriftConfig(indices=(1, 1)), r"indices must be None or a non-empty"),
         (lambda: ParameterDriftConfig(rcond=0.0), r"rcond must be a number in \(0, 1\)"),
         (lambda: FeatureDriftConfig(ORDER, -1.0), r"sample_period_s must be a finite number"),
-        (lambda: FeatureDriftConfig(ORDER, 60.0, features=("gain_2",)),
-         r"features must be None or a non-empty tuple of distinct names from"),
-        (lambda: FeatureDriftConfig("arx", 60.0),  # type: ignore[arg-type]
-         r"FeatureDriftConfig\.order must be an ArxOrder"),
+        (
+            lambda: FeatureDriftConfig(ORDER, 60.0, features=("gain_2",)),
+            r"features must be None or a non-empty tuple of distinct names from",
+        ),
+        (
+            lambda: FeatureDriftConfig("arx", 60.0),  # type: ignore[arg-type]
+            r"FeatureDriftConfig\.order must be an ArxOrder",
+        ),
     ],
 )
 def test_bad_settings_are_refused(factory: Callable[[], object], match: str) -> None:

@@ -69,8 +69,7 @@ def test_json_state_round_trip_continues_identically() -> None:
     rng = np.random.default_rng(5)
     times = np.cumsum(rng.exponential(60.0, 200)).tolist()
     values = np.round(rng.standard_normal(200), 1).tolist()
-    q = SignalQuality("oat", QualityConfig(stuck_window_s=200.0, stuck_epsilon=0.1,
-                                           maximum=1.5))
+    q = SignalQuality("oat", QualityConfig(stuck_window_s=200.0, stuck_epsilon=0.1, maximum=1.5))
     _feed(q, times[:100], values[:100])
     q.check(times[99] + 30.0)
     twin = q.clone()

@@ -124,7 +124,9 @@ def test_pattern_subscription_and_extraction() -> None:
     assert pattern.names == ("site", "asset", "signal")
     assert pattern.subscription() == "site/+/ahu/+/+"
     assert pattern.match("site/s1/ahu/ahu-2/supply-temp") == {
-        "site": "s1", "asset": "ahu-2", "signal": "supply-temp"
+        "site": "s1",
+        "asset": "ahu-2",
+        "signal": "supply-temp",
     }
     assert pattern.match("site/s1/ahu/ahu-2") is None
     assert pattern.match("site/s1/vav/ahu-2/t") is None
@@ -162,8 +164,11 @@ def test_pattern_subscription_bound_to_a_share() -> None:
 @pytest.mark.parametrize(
     ("text", "message"),
     [
-        ("site/+/x", r"wildcards are not allowed; write a named level such as \{asset\}, "
-                     r"found at level 1"),
+        (
+            "site/+/x",
+            r"wildcards are not allowed; write a named level such as \{asset\}, "
+            r"found at level 1",
+        ),
         ("site/#", r"wildcards are not allowed.*level 1"),
         ("site/x{asset}", r"a named level must be the whole level \{name\}, found at level 1"),
         ("site/{asset", r"whole level \{name\}, found at level 1"),
@@ -184,16 +189,21 @@ def test_bad_patterns(text: str, message: str) -> None:
 
 def ahu_rule(**kwargs: object) -> RouteRule:
     options: dict[str, object] = {
-        "asset_id": "{site}/{asset}", "signal": "{signal}", "allowed_signals": None
+        "asset_id": "{site}/{asset}",
+        "signal": "{signal}",
+        "allowed_signals": None,
     }
     options.update(kwargs)
-    return RouteRule("ahu", TopicPattern.parse("site/{site}/ahu/{asset}/{signal}"),
-                     **options)  # type: ignore[arg-type]
+    return RouteRule("ahu", TopicPattern.parse("site/{site}/ahu/{asset}/{signal}"), **options)  # type: ignore[arg-type]
 
 
 def vav_rule() -> RouteRule:
-    return RouteRule("vav", TopicPattern.parse("bldg-c/vav/{asset}/zone-temp"),
-                     asset_id="bldg-c/{asset}", signal="zone-temp")
+    return RouteRule(
+        "vav",
+        TopicPattern.parse("bldg-c/vav/{asset}/zone-temp"),
+        asset_id="bldg-c/{asset}",
+        signal="zone-temp",
+    )
 
 
 def test_route_renders_templates() -> None:
@@ -210,9 +220,13 @@ def test_unmatched_topic_is_refused() -> None:
 
 
 def test_first_matching_rule_wins_even_when_it_refuses() -> None:
-    special = RouteRule("rooftop", TopicPattern.parse("site/s9/ahu/{asset}/{signal}"),
-                        asset_id="s9/{asset}", signal="{signal}",
-                        allowed_signals=frozenset({"supply-temp"}))
+    special = RouteRule(
+        "rooftop",
+        TopicPattern.parse("site/s9/ahu/{asset}/{signal}"),
+        asset_id="s9/{asset}",
+        signal="{signal}",
+        allowed_signals=frozenset({"supply-temp"}),
+    )
     router = Router([special, ahu_rule()], max_assets=10)
     assert router.route("site/s9/ahu/a1/supply-temp") == Route("rooftop", "s9/a1", "supply-temp")
     assert router.route("site/s9/ahu/a1/fan-speed") == Refused("signal not allowed", "rooftop")
@@ -260,8 +274,9 @@ def test_same_asset_id_under_two_classes_is_a_conflict() -> None:
 
 
 def test_dollar_topics_are_not_routed_by_leading_named_levels() -> None:
-    rule = RouteRule("ahu", TopicPattern.parse("{site}/ahu/{asset}"),
-                     asset_id="{site}/{asset}", signal="t")
+    rule = RouteRule(
+        "ahu", TopicPattern.parse("{site}/ahu/{asset}"), asset_id="{site}/{asset}", signal="t"
+    )
     assert Router([rule], max_assets=10).route("$SYS/ahu/a1") == Refused("no matching rule")
 
 
@@ -272,8 +287,9 @@ def test_route_never_raises_on_odd_topics() -> None:
 
 
 def test_subscriptions_are_deduplicated_in_rule_order() -> None:
-    again = RouteRule("ahu2", TopicPattern.parse("site/{s}/ahu/{a}/{sig}"),
-                      asset_id="{s}:{a}", signal="{sig}")
+    again = RouteRule(
+        "ahu2", TopicPattern.parse("site/{s}/ahu/{a}/{sig}"), asset_id="{s}:{a}", signal="{sig}"
+    )
     router = Router([vav_rule(), ahu_rule(), again], max_assets=10)
     assert router.subscriptions() == ("bldg-c/vav/+/zone-temp", "site/+/ahu/+/+")
 
@@ -348,7 +364,10 @@ def test_owners_do_not_depend_on_the_hash_seed() -> None:
     seen = set()
     for seed in ("1", "2"):
         result = subprocess.run(
-            [sys.executable, "-c", code], capture_output=True, text=True, check=True,
+            [sys.executable, "-c", code],
+            capture_output=True,
+            text=True,
+            check=True,
             env={"PYTHONHASHSEED": seed, "PATH": ""},
         )
         seen.add(result.stdout)
