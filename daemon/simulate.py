@@ -210,3 +210,27 @@ def daily_operation(n: int, sample_period_s: float, seed: int) -> NDArray[np.flo
     moves = lfilter([1.0], [1.0, -0.97], rng.normal(scale=1.5, size=n))
     u: NDArray[np.float64] = np.clip(load + moves, 0.0, 100.0)
     return u
+
+
+#: Invented reference loops, cooling valve % -> supply-air temperature degC at
+#: 60 s, shared by the detection tests and the monitor benchmark so that
+#: their figures describe the same plants.
+REFERENCE_LOOPS: dict[str, Loop] = {
+    "first-order+dead-time": Loop(
+        gain=-0.11,
+        time_constant_s=600.0,
+        dead_time_s=120.0,
+        sample_period_s=60.0,
+        offset=24.0,
+        noise_std=0.03,
+    ),
+    "second-order": Loop(
+        gain=-0.11,
+        time_constant_s=600.0,
+        dead_time_s=60.0,
+        sample_period_s=60.0,
+        offset=24.0,
+        noise_std=0.03,
+        second_time_constant_s=180.0,
+    ),
+}

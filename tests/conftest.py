@@ -8,21 +8,13 @@ import pytest
 
 from arxwatch.daemon.alert import SignalNames
 from arxwatch.daemon.monitor import AssetMonitor, MonitorConfig
-from arxwatch.daemon.simulate import Fault, Loop, daily_operation
+from arxwatch.daemon.simulate import REFERENCE_LOOPS, Fault, Loop, daily_operation
 from arxwatch.estimators.baseline import Baseline, BaselineSet, fit_baseline
 
 SAMPLE_PERIOD_S = 60.0
 PER_DAY = int(86400 / SAMPLE_PERIOD_S)
 START_S = 1_767_225_600.0  # 2026-01-01T00:00:00Z
-#: Invented test loop: cooling valve % -> supply-air temperature degC.
-LOOP = Loop(
-    gain=-0.11,
-    time_constant_s=600.0,
-    dead_time_s=120.0,
-    sample_period_s=SAMPLE_PERIOD_S,
-    offset=24.0,
-    noise_std=0.03,
-)
+LOOP = REFERENCE_LOOPS["first-order+dead-time"]
 NAMES = SignalNames("supply-air temperature", "degC", ("cooling valve",), ("%",))
 
 Run = Callable[..., tuple[list[dict], AssetMonitor]]

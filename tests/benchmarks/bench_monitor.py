@@ -21,20 +21,13 @@ import numpy as np
 
 from arxwatch.daemon.alert import SignalNames
 from arxwatch.daemon.monitor import AssetMonitor
-from arxwatch.daemon.simulate import Loop, daily_operation
+from arxwatch.daemon.simulate import REFERENCE_LOOPS, daily_operation
 from arxwatch.estimators.baseline import BaselineSet, fit_baseline
 from arxwatch.estimators.estimator import ArxEstimator
 
 TS = 60.0
 PER_DAY = 1440
-LOOP = Loop(
-    gain=-0.11,
-    time_constant_s=600.0,
-    dead_time_s=120.0,
-    sample_period_s=TS,
-    offset=24.0,
-    noise_std=0.03,
-)
+LOOP = REFERENCE_LOOPS["first-order+dead-time"]
 NAMES = SignalNames("supply-air temperature", "degC", ("cooling valve",), ("%",))
 
 

@@ -15,7 +15,7 @@ import pytest
 
 from arxwatch.daemon.alert import SignalNames
 from arxwatch.daemon.monitor import AssetMonitor
-from arxwatch.daemon.simulate import Fault, Loop, daily_operation
+from arxwatch.daemon.simulate import REFERENCE_LOOPS, Fault, daily_operation
 from arxwatch.estimators.baseline import BaselineSet, fit_baseline
 
 TS = 60.0
@@ -26,25 +26,7 @@ FAULT_AT_DAY = 1.5
 #: target of this project: about one per asset per ten days; no source).
 FALSE_ALERT_TARGET = 0.1
 
-LOOPS = {
-    "first-order+dead-time": Loop(
-        gain=-0.11,
-        time_constant_s=600.0,
-        dead_time_s=120.0,
-        sample_period_s=TS,
-        offset=24.0,
-        noise_std=0.03,
-    ),
-    "second-order": Loop(
-        gain=-0.11,
-        time_constant_s=600.0,
-        dead_time_s=60.0,
-        sample_period_s=TS,
-        offset=24.0,
-        noise_std=0.03,
-        second_time_constant_s=180.0,
-    ),
-}
+LOOPS = REFERENCE_LOOPS
 NAMES = SignalNames("supply-air temperature", "degC", ("cooling valve",), ("%",))
 
 
