@@ -39,7 +39,7 @@ import numpy as np
 
 from arxwatch.daemon.alert import SignalNames, build_record
 from arxwatch.daemon.decide import AlertPolicy, AlertTracker
-from arxwatch.estimators.arx import RegressorHistory
+from arxwatch.estimators.arx import ArxOrder, RegressorHistory
 from arxwatch.estimators.baseline import Baseline, BaselineSet
 from arxwatch.estimators.detect.bands import BandsConfig, PhysicalBands
 from arxwatch.estimators.detect.cusum import Cusum, CusumConfig
@@ -50,7 +50,7 @@ from arxwatch.estimators.detect.quality import QualityConfig, SignalQuality
 from arxwatch.estimators.detect.variance import VarianceChange, VarianceConfig
 from arxwatch.estimators.detect.whiteness import Whiteness, WhitenessConfig
 from arxwatch.estimators.estimator import ArxEstimator
-from arxwatch.estimators.readout import feature_names, feature_vector, read_out
+from arxwatch.estimators.readout import PhysicalReadout, feature_names, feature_vector, read_out
 from arxwatch.estimators.rls import RlsConfig
 
 
@@ -131,13 +131,8 @@ class MonitorConfig:
         return int(math.ceil(self.settle_memories * memory))
 
 
-def _readout_values(
-    baseline: Baseline, theta: Sequence[float] | None, sigma2: float
-) -> dict[str, float]:
-    readout = read_out(
-        baseline.order, theta if theta is not None else baseline.theta, baseline.sample_period_s
-    )
-    values = dict(zip(feature_names(baseline.order), feature_vector(readout).tolist(), strict=True))
+def _readout_values(readout: PhysicalReadout, order: ArxOrder, sigma2: float) -> dict[str, float]:
+    values = dict(zip(feature_names(order), feature_vector(readout).tolist(), strict=True))
     values["sigma"] = math.sqrt(sigma2)
     return values
 
@@ -166,8 +161,7 @@ class _ModeMonitor:
         self.bands = PhysicalBands(config.bands)
         self.tracker = AlertTracker(config.policy)
         self.samples = 0
-        self.changing = False
-        self.baseline_values = _readout_values(baseline, None, baseline.sigma2)
+        self.baseline_values = _readout_values(baseline.readout, order, baseline.sigma2)
         self.current_values = dict(self.baseline_values)
         self._start_from_baseline()
 
@@ -206,22 +200,21 @@ class _ModeMonitor:
         if self.estimator.update(y, u) is None:
             return evidence
         self.samples += 1
-        if self.samples % config.evaluate_every == 0 and self.changing:
+        if self.samples % config.evaluate_every != 0:
+            return evidence
+        if any(key.split("/")[0] in _CHANGE_DETECTORS for key in self.tracker.active()):
             # While an innovation alert stays up the asset is still changing:
             # keep the live estimate re-learning (repeated covariance resetting).
             self.estimator.inflate_covariance(config.reset_factor)
-        if self.samples >= config.settle_samples() and self.samples % config.evaluate_every == 0:
+        if self.samples >= config.settle_samples():
             theta = self.estimator.theta
             drift = self.drift.update(theta, self.estimator.parameter_covariance)
             if drift is not None:
                 evidence.append(drift)
-            evidence.extend(
-                self.bands.update(
-                    read_out(self.baseline.order, theta, self.baseline.sample_period_s)
-                )
-            )
+            readout = read_out(self.baseline.order, theta, self.baseline.sample_period_s)
+            evidence.extend(self.bands.update(readout))
             self.current_values = _readout_values(
-                self.baseline, theta.tolist(), self.estimator.sigma2
+                readout, self.baseline.order, self.estimator.sigma2
             )
         return evidence
 
@@ -237,7 +230,6 @@ class _ModeMonitor:
             "bands": self.bands.to_state(),
             "tracker": self.tracker.to_state(),
             "samples": self.samples,
-            "changing": self.changing,
             "current": self.current_values,
         }
 
@@ -252,7 +244,6 @@ class _ModeMonitor:
         self.bands.load_state(state["bands"])
         self.tracker.load_state(state["tracker"])
         self.samples = int(state["samples"])
-        self.changing = bool(state["changing"])
         self.current_values = {str(k): float(v) for k, v in state["current"].items()}
 
 
@@ -332,11 +323,8 @@ class AssetMonitor:
             self.skipped += 1
             return []
         records = self._records(monitor, monitor.tracker, monitor.step(y, u), time_s)
-        if records:
-            active = monitor.tracker.active()
-            monitor.changing = any(key.split("/")[0] in _CHANGE_DETECTORS for key in active)
-            if any(r["state"] == "raised" and r["detector"] in _CHANGE_DETECTORS for r in records):
-                monitor.estimator.inflate_covariance(self.config.reset_factor)
+        if any(r["state"] == "raised" and r["detector"] in _CHANGE_DETECTORS for r in records):
+            monitor.estimator.inflate_covariance(self.config.reset_factor)
         return records
 
     def signal_sample(self, signal: str, time_s: float, value: float) -> list[dict[str, Any]]:
