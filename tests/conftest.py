@@ -17,7 +17,7 @@ START_S = 1_767_225_600.0  # 2026-01-01T00:00:00Z
 LOOP = REFERENCE_LOOPS["first-order+dead-time"]
 NAMES = SignalNames("supply-air temperature", "degC", ("cooling valve",), ("%",))
 
-Run = Callable[..., tuple[list[dict], AssetMonitor]]
+Run = Callable[..., tuple[list[tuple[int, dict]], AssetMonitor]]
 
 
 @dataclass(frozen=True)
@@ -37,11 +37,10 @@ def plant() -> Plant:
     return Plant()
 
 
-@pytest.fixture(scope="session")
-def baseline() -> Baseline:
-    """Baseline fitted on two fault-free days of ordinary operation."""
+def fit_reference_baseline(loop: Loop) -> Baseline:
+    """Baseline of ``loop`` fitted on two fault-free days of ordinary operation."""
     u = daily_operation(2 * PER_DAY, SAMPLE_PERIOD_S, seed=1)
-    y = LOOP.simulate(u, seed=2)
+    y = loop.simulate(u, seed=2)
     t = START_S + np.arange(len(u)) * SAMPLE_PERIOD_S
     result = fit_baseline(y, u[:, None], t, sample_period_s=SAMPLE_PERIOD_S)
     assert result.accepted, result.reasons
@@ -50,22 +49,38 @@ def baseline() -> Baseline:
 
 
 @pytest.fixture(scope="session")
-def run_asset(baseline: Baseline) -> Run:
-    """Run a monitor over simulated days; return its records and itself."""
+def baseline() -> Baseline:
+    """Baseline of the first-order test loop."""
+    return fit_reference_baseline(LOOP)
+
+
+@pytest.fixture(scope="session")
+def run_asset() -> Run:
+    """Run a monitor over simulated days of one reference loop.
+
+    Returns the monitor and its records, each with the index of the sample
+    that produced it.
+    """
+    baselines: dict[str, Baseline] = {}
 
     def run(
         days: float,
         faults: tuple[Fault, ...] = (),
         seed: int = 5,
         config: MonitorConfig | None = None,
-    ) -> tuple[list[dict], AssetMonitor]:
-        monitor = AssetMonitor("block-c/ahu-c2", BaselineSet((baseline,)), NAMES, config)
+        loop: str = "first-order+dead-time",
+    ) -> tuple[list[tuple[int, dict]], AssetMonitor]:
+        plant = REFERENCE_LOOPS[loop]
+        if loop not in baselines:
+            baselines[loop] = fit_reference_baseline(plant)
+        monitor = AssetMonitor("block-c/ahu-c2", BaselineSet((baselines[loop],)), NAMES, config)
         n = int(days * PER_DAY)
         u = daily_operation(n, SAMPLE_PERIOD_S, seed)
-        y = LOOP.simulate(u, faults, seed=seed + 1)
+        y = plant.simulate(u, faults, seed=seed + 1)
         records = []
         for k in range(n):
-            records.extend(monitor.step(START_S + k * SAMPLE_PERIOD_S, float(y[k]), [float(u[k])]))
+            for record in monitor.step(START_S + k * SAMPLE_PERIOD_S, float(y[k]), [float(u[k])]):
+                records.append((k, record))
         return records, monitor
 
     return run

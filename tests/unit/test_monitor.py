@@ -13,7 +13,8 @@ from arxwatch.estimators.baseline import Baseline, BaselineSet
 
 
 def test_fault_raises_records_that_follow_the_schema(run_asset) -> None:
-    records, monitor = run_asset(3.0, (Fault("offset", start_s=1.5 * 86400, magnitude=0.3),))
+    indexed, monitor = run_asset(3.0, (Fault("offset", start_s=1.5 * 86400, magnitude=0.3),))
+    records = [record for _, record in indexed]
     assert records and monitor.active()
     schema = load_schema()
     for record in records:
