@@ -16,6 +16,14 @@ one-step error of that filter on the reference. Under the reference
 behaviour ``epsilon`` is approximately white N(0, 1); a change of the
 asset shows as a change of ``epsilon``.
 
+Constant memory
+---------------
+The reference is not stored: the autocovariances the Yule-Walker equations
+need follow exactly from ``2 p + 2`` running sums and the first and last
+``p`` values (:mod:`arxwatch.estimators.detect._sums`), whatever the
+reference length. This is what lets one process carry thousands of assets;
+the column-wise monitor of the daemon runs the same arithmetic on arrays.
+
 References
 ----------
 D. C. Montgomery, *Introduction to Statistical Quality Control*, 6th ed.,
@@ -29,11 +37,16 @@ estimates of an AR model).
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 from scipy.linalg import solve_toeplitz
+
+from arxwatch.estimators.detect._sums import add_value, centred_sums
+
+_STATE_VERSION = 2
 
 
 @dataclass(frozen=True)
@@ -68,6 +81,37 @@ class PrewhitenConfig:
             )
 
 
+def fit_reference(
+    sums: Sequence[float], head: Sequence[float], past: Sequence[float], count: int
+) -> tuple[list[float], float]:
+    """Yule-Walker AR coefficients and innovation scale from a reference's running sums.
+
+    Parameters
+    ----------
+    sums, head, past : sequences of float
+        As kept by :func:`arxwatch.estimators.detect._sums.add_value`.
+    count : int
+        Length n of the reference, > p.
+
+    Returns
+    -------
+    phi : list of float, length p
+        AR coefficients (zeros when the reference has no variance).
+    scale : float
+        Standard deviation of the one-step error of the filter on the
+        reference; 1.0 when that is not positive.
+    """
+    p = len(head)
+    gamma = np.array(centred_sums(sums, head, past, count)) / float(count)
+    if p == 0 or gamma[0] <= 0.0:
+        phi = np.zeros(p)
+    else:
+        phi = solve_toeplitz(gamma[:p], gamma[1 : p + 1])
+    innovation_var = float(gamma[0] - phi @ gamma[1 : p + 1]) if p else float(gamma[0])
+    scale = math.sqrt(innovation_var) if innovation_var > 0.0 else 1.0
+    return [float(v) for v in phi], scale
+
+
 class Prewhitener:
     """AR prewhitening filter, fitted once on the first reference samples.
 
@@ -96,10 +140,13 @@ class Prewhitener:
 
     def reset(self) -> None:
         """Forget the reference and the filter."""
-        self._reference: list[float] = []
+        p = self.config.ar_order
+        self._count = 0
+        self._sums = [0.0] * (p + 2)
+        self._head = [0.0] * p
+        self._past = [0.0] * p
         self._phi: list[float] | None = None
         self._scale = 1.0
-        self._past: list[float] = []
 
     def clone(self) -> Prewhitener:
         """Return an unfitted twin with the same settings."""
@@ -121,43 +168,31 @@ class Prewhitener:
         if not math.isfinite(z):
             raise ValueError(f"z must be finite, got {z!r}")
         phi = self._phi
-        if phi is None:
-            self._reference.append(z)
-            if len(self._reference) >= self.config.reference_samples:
-                self._fit()
-            return None
         past = self._past
+        if phi is None:
+            add_value(self._sums, self._head, past, self._count, z)
+            self._count += 1
+            if self._count >= self.config.reference_samples:
+                self._phi, self._scale = fit_reference(self._sums, self._head, past, self._count)
+            return None
         predicted = 0.0
-        for coefficient, value in zip(phi, past, strict=False):
+        for coefficient, value in zip(phi, past, strict=True):
             predicted += coefficient * value
-        if phi:
+        if past:
             past.insert(0, z)
-            del past[len(phi) :]
+            del past[-1]
         return (z - predicted) / self._scale
-
-    def _fit(self) -> None:
-        x = np.asarray(self._reference)
-        p = self.config.ar_order
-        x = x - x.mean()
-        n = x.shape[0]
-        acov = np.array([x[: n - lag] @ x[lag:] / n for lag in range(p + 1)])
-        if p == 0 or acov[0] <= 0.0:
-            phi = np.zeros(p)
-        else:
-            phi = solve_toeplitz(acov[:p], acov[1 : p + 1])
-        innovation_var = float(acov[0] - phi @ acov[1 : p + 1]) if p else float(acov[0])
-        self._phi = [float(v) for v in phi]
-        self._scale = math.sqrt(innovation_var) if innovation_var > 0.0 else 1.0
-        self._past = [float(v) for v in self._reference[::-1][:p]]
-        self._reference = []
 
     def to_state(self) -> dict[str, Any]:
         """State as plain data, for checkpoints."""
         return {
-            "reference": list(self._reference),
+            "version": _STATE_VERSION,
+            "count": self._count,
+            "sums": list(self._sums),
+            "head": list(self._head),
+            "past": list(self._past),
             "phi": None if self._phi is None else list(self._phi),
             "scale": self._scale,
-            "past": list(self._past),
         }
 
     def load_state(self, state: dict[str, Any]) -> None:
@@ -166,18 +201,32 @@ class Prewhitener:
         Raises
         ------
         ValueError
-            If the saved filter does not fit the configured order.
+            If the state has another version or does not fit the configured order.
         """
-        phi = state["phi"]
-        if phi is not None and len(phi) != self.config.ar_order:
+        if state.get("version") != _STATE_VERSION:
             raise ValueError(
-                f"saved prewhitening filter has order {len(phi)}, config says "
-                f"{self.config.ar_order}"
+                f"prewhitening state version must be {_STATE_VERSION}, got {state.get('version')!r}"
             )
+        p = self.config.ar_order
+        phi = state["phi"]
+        lengths = {"sums": p + 2, "head": p, "past": p}
+        for key, size in lengths.items():
+            if len(state[key]) != size:
+                raise ValueError(
+                    f"saved prewhitening {key} has {len(state[key])} entries, "
+                    f"order {p} needs {size}"
+                )
+        if phi is not None and len(phi) != p:
+            raise ValueError(f"saved prewhitening filter has order {len(phi)}, config says {p}")
         scale = float(state["scale"])
         if not (math.isfinite(scale) and scale > 0.0):
             raise ValueError(f"saved prewhitening scale must be positive, got {scale!r}")
-        self._reference = [float(v) for v in state["reference"]]
+        count = int(state["count"])
+        if count < 0:
+            raise ValueError(f"saved prewhitening count must be >= 0, got {count}")
+        self._count = count
+        self._sums = [float(v) for v in state["sums"]]
+        self._head = [float(v) for v in state["head"]]
+        self._past = [float(v) for v in state["past"]]
         self._phi = None if phi is None else [float(v) for v in phi]
         self._scale = scale
-        self._past = [float(v) for v in state["past"]]

@@ -1,8 +1,9 @@
-r"""Windowed Ljung–Box test of whether the innovations are still white.
+r"""Ljung–Box test, block by block, of whether the innovations are still white.
 
 A model that has lost part of the dynamics (a new lag, a slower valve, an
-oscillating loop) leaves structure in its innovations. Over the last W
-normalised innovations, demeaned, with sample autocorrelations
+oscillating loop) leaves structure in its innovations. The normalised
+innovations are cut into consecutive blocks of W samples; for each block,
+demeaned, with sample autocorrelations
 
 .. math::
 
@@ -16,8 +17,13 @@ the Ljung–Box statistic
 
 is approximately chi-square with L degrees of freedom for white noise; the
 test rejects whiteness when the p-value ``chi2.sf(Q, L)`` is below alpha.
-Q costs O(W L), so it is evaluated only every ``every`` samples; in between
-the sample is just written into a ring buffer.
+Each block is tested once, when it is complete, so successive evaluations
+are independent under the null hypothesis.
+
+The block is not stored: its centred lag products follow exactly from
+running sums (:mod:`arxwatch.estimators.detect._sums`), so the detector
+holds ``3 L + 2`` numbers whatever W is. That keeps thousands of assets in
+one process; the column-wise monitor of the daemon runs the same arithmetic.
 
 References
 ----------
@@ -28,6 +34,7 @@ models", *Biometrika* 65 (1978), 297-303.
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -43,10 +50,11 @@ from arxwatch.estimators.detect._checks import (
     state_floats,
     state_int,
 )
+from arxwatch.estimators.detect._sums import add_value, centred_sums
 from arxwatch.estimators.detect.evidence import Evidence
 from arxwatch.estimators.errors import DimensionError
 
-__all__ = ["Whiteness", "WhitenessConfig", "ljung_box"]
+__all__ = ["Whiteness", "WhitenessConfig", "block_evidence", "ljung_box"]
 
 _NAME = "innovation_whiteness"
 
@@ -58,19 +66,15 @@ class WhitenessConfig:
     Attributes
     ----------
     window : int
-        Number W of most recent innovations tested, > lags. Default 240.
+        Block length W: innovations per test, > lags. Default 240.
     lags : int
         Number L of autocorrelation lags, >= 1. Default 10.
-    every : int
-        Evaluate every this many samples once the window is full, >= 1.
-        Default 60.
     alpha : float
         Significance level in (0, 1). Default 0.001.
     """
 
     window: int = 240
     lags: int = 10
-    every: int = 60
     alpha: float = 0.001
 
     def __post_init__(self) -> None:
@@ -84,9 +88,6 @@ class WhitenessConfig:
             self.window,
             is_int(self.window) and self.window > self.lags,
             f"an integer > lags ({self.lags})",
-        )
-        check_setting(
-            owner, "every", self.every, is_int(self.every) and self.every >= 1, "an integer >= 1"
         )
         check_probability(owner, "alpha", self.alpha)
 
@@ -155,19 +156,19 @@ def _q_from(r: list[float], n: int) -> float:
 
 
 class Whiteness:
-    """Windowed Ljung–Box whiteness test on normalised innovations.
+    """Ljung–Box whiteness test on consecutive blocks of normalised innovations.
 
     Parameters
     ----------
     config : WhitenessConfig, optional
-        Settings; defaults W = 240, L = 10, every 60 samples, alpha = 0.001.
+        Settings; defaults W = 240, L = 10, alpha = 0.001.
 
     Examples
     --------
-    >>> det = Whiteness(WhitenessConfig(window=20, lags=2, every=5))
-    >>> results = [det.update(float((-1) ** k)) for k in range(25)]
+    >>> det = Whiteness(WhitenessConfig(window=20, lags=2))
+    >>> results = [det.update(float((-1) ** k)) for k in range(40)]
     >>> [k for k, ev in enumerate(results) if ev is not None]
-    [19, 24]
+    [19, 39]
     >>> results[19].alarm  # a sign flip every sample is far from white
     True
 
@@ -177,19 +178,16 @@ class Whiteness:
     series models", *Biometrika* 65 (1978), 297-303.
     """
 
-    __slots__ = ("config", "threshold", "_window", "_every", "_buffer", "_count")
+    __slots__ = ("config", "threshold", "_count", "_sums", "_head", "_past")
 
     def __init__(self, config: WhitenessConfig | None = None) -> None:
         self.config = config if config is not None else WhitenessConfig()
         #: Critical value of Q, fixed by the settings.
         self.threshold = self.config.threshold
-        self._window = self.config.window
-        self._every = self.config.every
-        self._buffer: NDArray[np.float64] = np.zeros(self._window, dtype=np.float64)
-        self._count = 0
+        self.reset()
 
     def update(self, z: float) -> Evidence | None:
-        """Take one normalised innovation; test when due.
+        """Take one normalised innovation; test the block when it is complete.
 
         Parameters
         ----------
@@ -199,12 +197,12 @@ class Whiteness:
         Returns
         -------
         Evidence or None
-            None while the window fills and on samples that are not
-            evaluated (so a caller counting evaluations sees each one once).
-            Otherwise ``statistic`` Q, ``threshold`` chi2.ppf(1 - alpha, L),
-            ``alarm`` when the p-value is below alpha; ``values``: ``q``,
-            ``p_value``, ``lags``, ``window`` and
-            ``max_abs_autocorrelation`` (over lags 1..L).
+            None while a block fills (so a caller counting evaluations sees
+            each block once). At the block's last sample: ``statistic`` Q,
+            ``threshold`` chi2.ppf(1 - alpha, L), ``alarm`` when the p-value
+            is below alpha; ``values``: ``q``, ``p_value``, ``lags``,
+            ``window`` and ``max_abs_autocorrelation`` (over lags 1..L).
+            The next sample starts a new block.
 
         Raises
         ------
@@ -213,54 +211,38 @@ class Whiteness:
         """
         if not math.isfinite(z):
             raise ValueError(f"z must be finite, got {z!r}")
-        count = self._count
-        self._buffer[count % self._window] = z
-        count += 1
-        self._count = count
-        past = count - self._window
-        if past < 0 or past % self._every:
+        add_value(self._sums, self._head, self._past, self._count, z)
+        self._count += 1
+        if self._count < self.config.window:
             return None
-        return self._evaluate()
-
-    def _evaluate(self) -> Evidence:
-        lags = self.config.lags
-        start = self._count % self._window
-        x = np.concatenate((self._buffer[start:], self._buffer[:start]))
-        r = _autocorrelations(x, lags)
-        q = _q_from(r, self._window)
-        p_value = float(chi2.sf(q, lags))
-        max_r = max(abs(rj) for rj in r)
-        return Evidence(
-            detector=_NAME,
-            family="behaviour",
-            statistic=q,
-            threshold=self.threshold,
-            alarm=p_value < self.config.alpha,
-            signal="innovation",
-            values={
-                "q": q,
-                "p_value": p_value,
-                "lags": float(lags),
-                "window": float(self._window),
-                "max_abs_autocorrelation": max_r,
-            },
+        evidence = block_evidence(
+            self.config,
+            self.threshold,
+            centred_sums(self._sums, self._head, self._past, self._count),
         )
+        self.reset()
+        return evidence
 
     def reset(self) -> None:
-        """Empty the window."""
-        self._buffer = np.zeros(self._window, dtype=np.float64)
+        """Start a new, empty block."""
+        lags = self.config.lags
         self._count = 0
+        self._sums = [0.0] * (lags + 2)
+        self._head = [0.0] * lags
+        self._past = [0.0] * lags
 
     def clone(self) -> Whiteness:
         """Return an untrained twin with the same settings."""
         return Whiteness(self.config)
 
     def to_state(self) -> dict[str, Any]:
-        """Learned state as plain JSON-safe data (the ring buffer and sample count)."""
+        """Learned state as plain JSON-safe data (the running sums of the open block)."""
         return {
             "detector": _NAME,
-            "buffer": [float(v) for v in self._buffer],
             "count": self._count,
+            "sums": list(self._sums),
+            "head": list(self._head),
+            "past": list(self._past),
         }
 
     def load_state(self, state: dict[str, Any]) -> None:
@@ -270,11 +252,56 @@ class Whiteness:
         ------
         ValueError
             If the state was saved by another detector, has missing or
-            unknown keys, a buffer whose length differs from ``window`` or
-            holds non-finite values, or a negative count.
+            unknown keys, sums of the wrong length or non-finite values, or
+            a count outside [0, window).
         """
-        data = expect_state(state, _NAME, ("buffer", "count"))
-        buffer = state_floats(data, _NAME, "buffer", self._window)
+        data = expect_state(state, _NAME, ("count", "sums", "head", "past"))
+        lags = self.config.lags
         count = state_int(data, _NAME, "count")
-        self._buffer = np.array(buffer, dtype=np.float64)
+        if count >= self.config.window:
+            raise ValueError(
+                f"{_NAME} state: count must be below window={self.config.window}, got {count}"
+            )
+        self._sums = state_floats(data, _NAME, "sums", lags + 2)
+        self._head = state_floats(data, _NAME, "head", lags)
+        self._past = state_floats(data, _NAME, "past", lags)
         self._count = count
+
+
+def block_evidence(config: WhitenessConfig, threshold: float, centred: Sequence[float]) -> Evidence:
+    """Evidence of one complete block from its centred lag sums ``C_0 .. C_L``.
+
+    Parameters
+    ----------
+    config : WhitenessConfig
+        Settings (W, L, alpha).
+    threshold : float
+        ``config.threshold``, computed once by the caller (scipy is slow).
+    centred : sequence of float, length L + 1
+        From :func:`arxwatch.estimators.detect._sums.centred_sums`.
+
+    Returns
+    -------
+    Evidence
+        As :meth:`Whiteness.update` at a block end.
+    """
+    denom = centred[0]
+    lags = config.lags
+    r = [0.0] * lags if denom <= 0.0 else [c / denom for c in centred[1:]]
+    q = _q_from(r, config.window)
+    p_value = float(chi2.sf(q, lags))
+    return Evidence(
+        detector=_NAME,
+        family="behaviour",
+        statistic=q,
+        threshold=threshold,
+        alarm=p_value < config.alpha,
+        signal="innovation",
+        values={
+            "q": q,
+            "p_value": p_value,
+            "lags": float(lags),
+            "window": float(config.window),
+            "max_abs_autocorrelation": max(abs(rj) for rj in r),
+        },
+    )

@@ -49,5 +49,23 @@ def test_state_round_trip_and_errors() -> None:
         PrewhitenConfig(ar_order=6, reference_samples=30)
     with pytest.raises(ValueError, match="z must be finite"):
         a.update(float("nan"))
-    with pytest.raises(ValueError, match="has order 2, config says 3"):
+    with pytest.raises(ValueError, match="sums has 4 entries, order 3 needs 5"):
         Prewhitener(PrewhitenConfig(ar_order=3, reference_samples=50)).load_state(a.to_state())
+    with pytest.raises(ValueError, match="state version must be 2, got None"):
+        b.load_state({"phi": None})
+
+
+def test_mid_reference_round_trip_matches_uninterrupted_run() -> None:
+    # Checkpoint while the reference is still being collected: the sums,
+    # head and past must carry the whole reference forward.
+    cfg = PrewhitenConfig(ar_order=3, reference_samples=60)
+    rng = np.random.default_rng(4)
+    data = rng.normal(size=100).tolist()
+    whole = Prewhitener(cfg)
+    expected = [whole.update(x) for x in data]
+    first = Prewhitener(cfg)
+    for x in data[:25]:
+        first.update(x)
+    second = Prewhitener(cfg)
+    second.load_state(json.loads(json.dumps(first.to_state())))
+    assert [second.update(x) for x in data[25:]] == expected[25:]
