@@ -24,9 +24,13 @@ limit) — the m-of-n rule here is that idea applied to detector alarms.
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+import math
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any, Literal
+
+import numpy as np
+from numpy.typing import NDArray
 
 from arxwatch.estimators.detect.evidence import Evidence
 
@@ -233,3 +237,231 @@ class AlertTracker:
             except (KeyError, TypeError, ValueError) as exc:
                 raise ValueError(f"alert state {key!r}: malformed entry ({exc})") from None
         self._episodes = episodes
+
+
+#: Number of set bits of every byte value, for popcounts over any unsigned width.
+_BITS_IN_BYTE = np.array([bin(v).count("1") for v in range(256)], dtype=np.uint8)
+
+
+def _popcount(values: NDArray[np.unsignedinteger[Any]]) -> NDArray[np.intp]:
+    """Set bits of each unsigned integer (``int.bit_count`` element-wise)."""
+    size = values.dtype.itemsize
+    counts = _BITS_IN_BYTE[values.reshape(-1).view(np.uint8)].reshape(-1, size)
+    total: NDArray[np.intp] = counts.sum(axis=1, dtype=np.intp).reshape(values.shape)
+    return total
+
+
+def _bits_dtype(raise_n: int) -> np.dtype[Any]:
+    for dtype in (np.uint8, np.uint16, np.uint32, np.uint64):
+        if raise_n <= np.iinfo(dtype).bits:
+            return np.dtype(dtype)
+    raise ValueError(f"raise_n must be <= 64, got {raise_n}")
+
+
+@dataclass(frozen=True)
+class BankTransition:
+    """A transition found by :meth:`TrackerBank.observe` (the evidence stays with the caller).
+
+    Attributes
+    ----------
+    position : int
+        Index into the ``rows`` argument of the call.
+    state, severity : str
+        As :class:`Transition`.
+    first_seen_s : float
+        As :class:`Transition`.
+    """
+
+    position: int
+    state: State
+    severity: Severity
+    first_seen_s: float
+
+
+class TrackerBank:
+    """Episode state of many (row, key) pairs in arrays: the column-wise twin of AlertTracker.
+
+    A row is one monitored unit (an asset, or an asset in one operating
+    mode); the keys are a fixed list of ``detector/signal`` names. For the
+    same evaluations in the same order, :meth:`observe` decides exactly as
+    :meth:`AlertTracker.observe` does for each row (the tests compare them);
+    only the bookkeeping differs: the alarm histories use the smallest
+    unsigned type that holds ``raise_n`` bits, and the quiet run stops
+    counting at ``clear_n`` (larger values decide nothing).
+
+    Parameters
+    ----------
+    policy : AlertPolicy
+        Settings shared by all pairs.
+    keys : sequence of str
+        Key names, distinct.
+    capacity : int
+        Rows to allocate; :meth:`resize` grows them.
+
+    Raises
+    ------
+    ValueError
+        If ``keys`` is empty or repeats a name, or ``capacity`` is negative.
+    """
+
+    def __init__(self, policy: AlertPolicy, keys: Sequence[str], capacity: int) -> None:
+        self.policy = policy
+        self.keys = tuple(keys)
+        if not self.keys or len(set(self.keys)) != len(self.keys):
+            raise ValueError(f"keys must be distinct and at least one, got {list(self.keys)!r}")
+        if isinstance(capacity, bool) or not isinstance(capacity, int) or capacity < 0:
+            raise ValueError(f"capacity must be an integer >= 0, got {capacity!r}")
+        self._bits = _bits_dtype(policy.raise_n)
+        self._window = (1 << policy.raise_n) - 1
+        shape = (capacity, len(self.keys))
+        self.alarms = np.zeros(shape, dtype=self._bits)
+        self.criticals = np.zeros(shape, dtype=self._bits)
+        self.quiet_run = np.zeros(shape, dtype=np.uint32)
+        self.raised = np.zeros(shape, dtype=np.bool_)
+        self.critical = np.zeros(shape, dtype=np.bool_)
+        self.first_seen_s = np.full(shape, np.nan)
+
+    @property
+    def capacity(self) -> int:
+        """Rows allocated."""
+        return int(self.alarms.shape[0])
+
+    def arrays(self) -> dict[str, NDArray[Any]]:
+        """Return the state arrays by name (views), for checkpoints."""
+        return {
+            "alarms": self.alarms,
+            "criticals": self.criticals,
+            "quiet_run": self.quiet_run,
+            "raised": self.raised,
+            "critical": self.critical,
+            "first_seen_s": self.first_seen_s,
+        }
+
+    def load_arrays(self, arrays: Mapping[str, NDArray[Any]]) -> None:
+        """Restore arrays saved from :meth:`arrays` (same keys, any capacity).
+
+        Raises
+        ------
+        ValueError
+            If a name is missing or a shape or dtype does not fit.
+        """
+        mine = self.arrays()
+        if set(arrays) != set(mine):
+            raise ValueError(f"tracker arrays must be {sorted(mine)}, got {sorted(arrays)}")
+        rows = {int(np.shape(a)[0]) for a in arrays.values()}
+        if len(rows) != 1:
+            raise ValueError("tracker arrays disagree in their number of rows")
+        for name, current in mine.items():
+            saved = np.asarray(arrays[name])
+            if saved.ndim != 2 or saved.shape[1] != len(self.keys) or saved.dtype != current.dtype:
+                raise ValueError(
+                    f"tracker array {name!r} has shape {saved.shape} and dtype {saved.dtype}; "
+                    f"expected (rows, {len(self.keys)}) of {current.dtype}"
+                )
+            setattr(self, name, saved.copy())
+
+    def resize(self, capacity: int) -> None:
+        """Grow (or shrink) to ``capacity`` rows; new rows start quiet."""
+        old = self.capacity
+        for name, array in self.arrays().items():
+            grown = np.resize(array, (capacity, len(self.keys)))
+            if capacity > old:
+                grown[old:] = np.nan if name == "first_seen_s" else 0
+            setattr(self, name, grown)
+
+    def clear(self, rows: NDArray[np.intp] | Sequence[int]) -> None:
+        """Reset every episode of ``rows`` to quiet."""
+        index = np.asarray(rows, dtype=np.intp)
+        for name, array in self.arrays().items():
+            array[index] = np.nan if name == "first_seen_s" else 0
+
+    def active(self, row: int) -> dict[str, Severity]:
+        """Return the raised alerts of ``row`` by key, with their severity."""
+        raised = np.flatnonzero(self.raised[row])
+        return {
+            self.keys[k]: "critical" if self.critical[row, k] else "warning"
+            for k in raised.tolist()
+        }
+
+    def observe(
+        self,
+        rows: NDArray[np.intp],
+        key: int,
+        statistic: NDArray[np.float64],
+        threshold: NDArray[np.float64] | float,
+        alarm: NDArray[np.bool_],
+        time_s: NDArray[np.float64] | float,
+    ) -> list[BankTransition]:
+        """Account one evaluation of key ``key`` for each of ``rows`` (distinct).
+
+        Parameters
+        ----------
+        rows : ndarray of intp, shape (k,)
+            Rows evaluated, each at most once.
+        key : int
+            Index into :attr:`keys`.
+        statistic, threshold, alarm : arrays of shape (k,) (threshold may be a scalar)
+            The evaluations, as the fields of :class:`Evidence`.
+        time_s : array of shape (k,) or float
+            Sample times.
+
+        Returns
+        -------
+        list of BankTransition
+            The transitions, in the order of ``rows``.
+        """
+        policy = self.policy
+        stat = np.asarray(statistic, dtype=np.float64)
+        limit = np.broadcast_to(np.asarray(threshold, dtype=np.float64), stat.shape)
+        alarm = np.asarray(alarm, dtype=np.bool_)
+        when = np.broadcast_to(np.asarray(time_s, dtype=np.float64), stat.shape)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            ratio = np.where(limit == 0.0, np.where(stat > 0.0, np.inf, 0.0), stat / limit)
+        critical = alarm & (ratio >= policy.critical_ratio)
+        one = self._bits.type(1)
+        window = self._bits.type(self._window)
+        alarms = ((self.alarms[rows, key] << one) | alarm.astype(self._bits)) & window
+        criticals = ((self.criticals[rows, key] << one) | critical.astype(self._bits)) & window
+        first = self.first_seen_s[rows, key]
+        first = np.where(alarm & np.isnan(first), when, first)
+        quiet = (stat < policy.clear_ratio * limit) & ~alarm
+        run = np.where(quiet, np.minimum(self.quiet_run[rows, key], policy.clear_n) + 1, 0)
+        raised = self.raised[rows, key].copy()
+        severe = self.critical[rows, key].copy()
+        n_alarms = _popcount(alarms)
+        n_criticals = _popcount(criticals)
+
+        rise = ~raised & (n_alarms >= policy.raise_m)
+        first = np.where(~raised & ~rise & (alarms == 0), np.nan, first)
+        severe = np.where(rise, n_criticals >= policy.critical_m, severe)
+        escalate = raised & ~severe & (n_criticals >= policy.critical_m)
+        severe |= escalate
+        clear = raised & ~escalate & (run >= policy.clear_n)
+        raised |= rise
+
+        out: list[BankTransition] = []
+        changed = np.flatnonzero(rise | escalate | clear)
+        for pos in changed.tolist():
+            seen = float(first[pos])
+            out.append(
+                BankTransition(
+                    position=pos,
+                    state="cleared" if clear[pos] else "raised",
+                    severity="critical" if severe[pos] else "warning",
+                    first_seen_s=seen if not math.isnan(seen) else float(when[pos]),
+                )
+            )
+        # A cleared episode starts over.
+        alarms[clear] = 0
+        criticals[clear] = 0
+        run[clear] = 0
+        raised[clear] = False
+        severe[clear] = False
+        first[clear] = np.nan
+        self.alarms[rows, key] = alarms
+        self.criticals[rows, key] = criticals
+        self.quiet_run[rows, key] = run
+        self.raised[rows, key] = raised
+        self.critical[rows, key] = severe
+        self.first_seen_s[rows, key] = first
+        return out
