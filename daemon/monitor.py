@@ -131,7 +131,8 @@ class MonitorConfig:
         return int(math.ceil(self.settle_memories * memory))
 
 
-def _readout_values(readout: PhysicalReadout, order: ArxOrder, sigma2: float) -> dict[str, float]:
+def readout_values(readout: PhysicalReadout, order: ArxOrder, sigma2: float) -> dict[str, float]:
+    """Physical read-out as named values for alert records: features and ``sigma``."""
     values = dict(zip(feature_names(order), feature_vector(readout).tolist(), strict=True))
     values["sigma"] = math.sqrt(sigma2)
     return values
@@ -161,7 +162,7 @@ class _ModeMonitor:
         self.bands = PhysicalBands(config.bands)
         self.tracker = AlertTracker(config.policy)
         self.samples = 0
-        self.baseline_values = _readout_values(baseline.readout, order, baseline.sigma2)
+        self.baseline_values = readout_values(baseline.readout, order, baseline.sigma2)
         self.current_values = dict(self.baseline_values)
         self._start_from_baseline()
 
@@ -202,7 +203,7 @@ class _ModeMonitor:
         self.samples += 1
         if self.samples % config.evaluate_every != 0:
             return evidence
-        if any(key.split("/")[0] in _CHANGE_DETECTORS for key in self.tracker.active()):
+        if any(key.split("/")[0] in CHANGE_DETECTORS for key in self.tracker.active()):
             # While an innovation alert stays up the asset is still changing:
             # keep the live estimate re-learning (repeated covariance resetting).
             self.estimator.inflate_covariance(config.reset_factor)
@@ -213,7 +214,7 @@ class _ModeMonitor:
                 evidence.append(drift)
             readout = read_out(self.baseline.order, theta, self.baseline.sample_period_s)
             evidence.extend(self.bands.update(readout))
-            self.current_values = _readout_values(
+            self.current_values = readout_values(
                 readout, self.baseline.order, self.estimator.sigma2
             )
         return evidence
@@ -323,7 +324,7 @@ class AssetMonitor:
             self.skipped += 1
             return []
         records = self._records(monitor, monitor.tracker, monitor.step(y, u), time_s)
-        if any(r["state"] == "raised" and r["detector"] in _CHANGE_DETECTORS for r in records):
+        if any(r["state"] == "raised" and r["detector"] in CHANGE_DETECTORS for r in records):
             monitor.estimator.inflate_covariance(self.config.reset_factor)
         return records
 
@@ -438,7 +439,7 @@ class AssetMonitor:
 
 
 #: Raising one of these means the asset changed: the live estimate re-learns.
-_CHANGE_DETECTORS = frozenset({"innovation_mean", "innovation_variance"})
+CHANGE_DETECTORS = frozenset({"innovation_mean", "innovation_variance"})
 
 #: Sentinel: no sample seen yet, so the first sample restarts nothing.
 _NO_MODE = object()

@@ -413,8 +413,9 @@ class Baseline:
         :attr:`ArxOrder.param_names`.
     covariance : ndarray, shape (n, n)
         :math:`\mathrm{Cov}(\theta_0)`, finite, with a non-negative
-        diagonal. For lasso it is the covariance of least squares on the
-        active set, zero elsewhere (see :func:`fit_baseline`).
+        diagonal; stored symmetrised, ``(C + C') / 2``. For lasso it is the
+        covariance of least squares on the active set, zero elsewhere (see
+        :func:`fit_baseline`).
     sigma2 : float
         Innovation variance, finite and > 0, in output units squared.
     fit_percent : float
@@ -494,6 +495,9 @@ class Baseline:
             raise ValueError("covariance: expected finite numbers, found NaN or infinity")
         if (np.diag(cov) < 0.0).any():
             raise ValueError("covariance: a diagonal entry is negative, not a covariance")
+        # Exactly symmetric (an exactly symmetric input is unchanged: (a + a) / 2 == a),
+        # so the upper triangle alone reproduces every row.
+        cov = (cov + cov.T) / 2.0
         theta.setflags(write=False)
         cov.setflags(write=False)
         object.__setattr__(self, "theta", theta)

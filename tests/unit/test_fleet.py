@@ -1,0 +1,270 @@
+"""The column-wise fleet monitor gives the per-asset monitor's records, bit for bit."""
+
+import io
+import json
+from collections.abc import Callable
+
+import numpy as np
+import pytest
+
+from arxwatch.daemon.alert import SignalNames
+from arxwatch.daemon.fleet import FleetMonitor
+from arxwatch.daemon.monitor import AssetMonitor, MonitorConfig
+from arxwatch.daemon.simulate import REFERENCE_LOOPS, Fault, daily_operation
+from arxwatch.estimators.baseline import Baseline, BaselineSet, fit_baseline
+from arxwatch.estimators.detect.cusum import CusumConfig
+from arxwatch.estimators.detect.prewhiten import PrewhitenConfig
+from arxwatch.estimators.detect.quality import QualityConfig, SignalQuality
+
+LOOPS = ("first-order+dead-time", "second-order")
+SAMPLE_PERIOD_S = 60.0
+PER_DAY = 1440
+START_S = 1_767_225_600.0  # 2026-01-01T00:00:00Z
+NAMES = SignalNames("supply-air temperature", "degC", ("cooling valve",), ("%",))
+
+
+def _baseline(loop: str, mode: str | None, seed: int) -> Baseline:
+    plant = REFERENCE_LOOPS[loop]
+    u = daily_operation(2 * PER_DAY, SAMPLE_PERIOD_S, seed=seed)
+    y = plant.simulate(u, seed=seed + 1)
+    t = START_S - 3 * 86400.0 + np.arange(len(u)) * SAMPLE_PERIOD_S
+    result = fit_baseline(y, u[:, None], t, sample_period_s=SAMPLE_PERIOD_S, mode=mode)
+    assert result.baseline is not None, result.reasons
+    return result.baseline
+
+
+@pytest.fixture(scope="module")
+def assets() -> dict[str, tuple[BaselineSet, np.ndarray, np.ndarray, list[str | None]]]:
+    """Six assets: two loops, faults of several kinds, one asset with two modes."""
+    days = 2.5
+    n = int(days * PER_DAY)
+    t = START_S + np.arange(n) * SAMPLE_PERIOD_S
+    plan: list[tuple[str, str, tuple[Fault, ...]]] = [
+        ("block-a/ahu-1", LOOPS[0], ()),
+        ("block-a/ahu-2", LOOPS[0], (Fault("gain_loss", start_s=0.6 * 86400, magnitude=0.4),)),
+        ("block-b/ahu-1", LOOPS[1], (Fault("offset", start_s=0.5 * 86400, magnitude=0.3),)),
+        ("block-b/ahu-2", LOOPS[1], (Fault("noise_increase", start_s=0.4 * 86400, magnitude=2.0),)),
+        ("block-c/ahu-1", LOOPS[0], (Fault("slow_response", start_s=0.7 * 86400, magnitude=2.0),)),
+    ]
+    out = {}
+    for k, (asset, loop, faults) in enumerate(plan):
+        u = daily_operation(n, SAMPLE_PERIOD_S, seed=10 + k)
+        y = REFERENCE_LOOPS[loop].simulate(u, faults, seed=20 + k)
+        y[300 + 37 * k] += 6.0  # one spike each
+        out[asset] = (BaselineSet((_baseline(loop, None, 1),)), y, u, [None] * n)
+    # an asset with two modes (each with its own baseline) and a third, unmonitored mode
+    u = daily_operation(n, SAMPLE_PERIOD_S, seed=40)
+    y = REFERENCE_LOOPS[LOOPS[1]].simulate(
+        u, (Fault("gain_loss", start_s=1.2 * 86400, magnitude=0.5),), seed=41
+    )
+    modes: list[str | None] = []
+    for k in range(n):
+        hour = (k // 60) % 24
+        modes.append("occupied" if 6 <= hour < 18 else "unoccupied" if hour < 22 else "purge")
+    both = BaselineSet((_baseline(LOOPS[1], "occupied", 1), _baseline(LOOPS[0], "unoccupied", 5)))
+    out["block-d/ahu-9"] = (both, y, u, modes)
+    assert t.shape[0] == n
+    return out
+
+
+def _rows(n: int, count: int, seed: int) -> list[list[tuple[int, bool]]]:
+    """Per step, which assets have a row, and whether it follows a gap."""
+    rng = np.random.default_rng(seed)
+    missing = rng.random((n, count)) < 0.01
+    steps = []
+    gap = [False] * count
+    for k in range(n):
+        step = []
+        for a in range(count):
+            if missing[k, a]:
+                gap[a] = True
+                continue
+            step.append((a, gap[a] and rng.random() < 0.5))
+            gap[a] = False
+        steps.append(step)
+    return steps
+
+
+def _run_both(
+    assets: dict[str, tuple[BaselineSet, np.ndarray, np.ndarray, list[str | None]]],
+    config: MonitorConfig,
+    batch: Callable[[int], int],
+) -> tuple[dict[str, list[dict]], dict[str, list[dict]], FleetMonitor]:
+    names = list(assets)
+    n = len(next(iter(assets.values()))[1])
+    scalar = {a: AssetMonitor(a, assets[a][0], NAMES, config) for a in names}
+    fleet = FleetMonitor(NAMES, config)
+    slots = {a: fleet.add_asset(a, assets[a][0]) for a in names}
+    expected: dict[str, list[dict]] = {a: [] for a in names}
+    got: dict[str, list[dict]] = {a: [] for a in names}
+    steps = _rows(n, len(names), seed=3)
+    k = 0
+    while k < n:
+        # several sample times per call: the fleet must take them in time order
+        upto = min(n, k + batch(k))
+        rows = [(j, a, restart) for j in range(k, upto) for a, restart in steps[j]]
+        for j, a, restart in rows:
+            asset = names[a]
+            _, y, u, modes = assets[asset]
+            if restart:
+                scalar[asset].restart()
+            expected[asset] += scalar[asset].step(
+                START_S + j * SAMPLE_PERIOD_S, float(y[j]), [float(u[j])], modes[j]
+            )
+        if rows:
+            records = fleet.step(
+                [slots[names[a]] for _, a, _ in rows],
+                [START_S + j * SAMPLE_PERIOD_S for j, _, _ in rows],
+                [float(assets[names[a]][1][j]) for j, a, _ in rows],
+                [[float(assets[names[a]][2][j])] for j, a, _ in rows],
+                [assets[names[a]][3][j] for j, a, _ in rows],
+                [r for _, _, r in rows],
+            )
+            for record in records:
+                got[record["asset"]].append(record)
+        k = upto
+    return expected, got, fleet
+
+
+@pytest.mark.parametrize(
+    "config",
+    [
+        MonitorConfig(),
+        MonitorConfig(cusum=CusumConfig(h=5.0, after_alarm="restart"), evaluate_every=7),
+    ],
+    ids=["defaults", "restart-cusum"],
+)
+def test_records_equal_per_asset_monitors(assets: dict, config: MonitorConfig) -> None:
+    expected, got, fleet = _run_both(assets, config, batch=lambda k: 1 + (k // 7) % 5)
+    total = sum(len(v) for v in expected.values())
+    assert total > 10  # the faults raise and clear alerts: the comparison is not vacuous
+    kinds = {r["detector"] for v in expected.values() for r in v}
+    assert {"innovation_mean", "physical_band"} <= kinds
+    for asset in expected:
+        assert got[asset] == expected[asset], asset
+    for asset in expected:
+        scalar_monitor = AssetMonitor(asset, assets[asset][0], NAMES, config)
+        assert set(fleet.active(asset)) <= {
+            f"{m}:{k}" for m in scalar_monitor._modes for k in fleet._groups[0].keys
+        } | {f"{m}:{k}" for m in scalar_monitor._modes for k in fleet._groups[-1].keys}
+
+
+def test_quality_records_equal_per_asset_monitor(assets: dict) -> None:
+    asset = "block-a/ahu-2"
+    baselines, y, u, _ = assets[asset]
+    quality = {"sat": QualityConfig(minimum=-10.0, maximum=19.0, stuck_window_s=600.0)}
+    scalar = AssetMonitor(asset, baselines, NAMES, quality=quality)
+    fleet = FleetMonitor(NAMES, quality_signals=("sat",))
+    slot = fleet.add_asset(asset, baselines)
+    check = SignalQuality("sat", quality["sat"])
+    expected, got = [], []
+    values = y.copy()
+    values[500:530] = values[499]  # frozen sensor
+    for k in range(1500):
+        if 900 <= k < 960 or (1000 <= k < 1100 and k % 5):
+            continue  # silent sensor (stale), then samples every 5 min (gaps)
+        t = START_S + k * SAMPLE_PERIOD_S
+        expected += scalar.signal_sample("sat", t, float(values[k]))
+        got += fleet.quality(slot, check.update(t, float(values[k])), t)
+        expected += scalar.check_stale(t + 30.0)
+        got += fleet.quality(slot, [check.check(t + 30.0)], t + 30.0)
+        expected += scalar.step(t, float(y[k]), [float(u[k])])
+        got += fleet.step([slot], [t], [float(y[k])], [[float(u[k])]], [None], [False])
+    assert {r["detector"] for r in expected} >= {"out_of_range", "stuck", "gap"}
+    assert got == expected
+    assert fleet.active(asset) == scalar.active()
+
+
+def test_errors_name_what_is_wrong(assets: dict) -> None:
+    fleet = FleetMonitor(NAMES)
+    baselines = assets["block-a/ahu-1"][0]
+    slot = fleet.add_asset("block-a/ahu-1", baselines)
+    with pytest.raises(ValueError, match="'block-a/ahu-1' is already monitored"):
+        fleet.add_asset("block-a/ahu-1", baselines)
+    with pytest.raises(ValueError, match="the baseline set is empty"):
+        fleet.add_asset("block-a/ahu-3", BaselineSet(()))
+    with pytest.raises(ValueError, match="two rows with the same sample time"):
+        fleet.step(
+            [slot, slot],
+            [START_S, START_S],
+            [1.0, 1.0],
+            [[1.0], [1.0]],
+            [None, None],
+            [False, False],
+        )
+    with pytest.raises(ValueError, match="rows disagree in length"):
+        fleet.step([slot], [START_S, START_S], [1.0], [[1.0]], [None], [False])
+    with pytest.raises(KeyError, match="no baseline for mode 'purge'"):
+        fleet.readout("block-a/ahu-1", "purge")
+    fleet.remove_asset("block-a/ahu-1")
+    assert "block-a/ahu-1" not in fleet and len(fleet) == 0
+    with pytest.raises(ValueError, match=f"slot {slot} holds no asset"):
+        fleet.step([slot], [START_S], [1.0], [[1.0]], [None], [False])
+    assert fleet.add_asset("block-a/ahu-3", baselines) == slot  # the slot is reused
+
+
+def test_checkpoint_through_npz_continues_identically(assets: dict) -> None:
+    # Split the run at a sample, save through numpy's npz (no pickle) and
+    # JSON, restore into a new monitor: the records after the split are the
+    # uninterrupted run's.
+    names = ["block-a/ahu-2", "block-d/ahu-9"]
+    n = len(assets[names[0]][1])
+    split = int(0.9 * PER_DAY)
+
+    def rows(fleet: FleetMonitor, ks: range) -> list[dict]:
+        out = []
+        for k in ks:
+            out += fleet.step(
+                [0, 1],
+                [START_S + k * SAMPLE_PERIOD_S] * 2,
+                [float(assets[a][1][k]) for a in names],
+                [[float(assets[a][2][k])] for a in names],
+                [assets[a][3][k] for a in names],
+                [False, False],
+            )
+        return out
+
+    whole = FleetMonitor(NAMES)
+    for a in names:
+        whole.add_asset(a, assets[a][0])
+    expected = rows(whole, range(n))
+    first = FleetMonitor(NAMES)
+    for a in names:
+        first.add_asset(a, assets[a][0])
+    before = rows(first, range(split))
+    state = first.to_state()
+    buffer = io.BytesIO()
+    np.savez(buffer, **state["arrays"])
+    buffer.seek(0)
+    with np.load(buffer, allow_pickle=False) as saved:
+        arrays = {k: saved[k] for k in saved.files}
+    second = FleetMonitor(NAMES)
+    second.load_state({"meta": json.loads(json.dumps(state["meta"])), "arrays": arrays})
+    after = rows(second, range(split, n))
+    assert len(expected) > 4
+    assert before + after == expected
+    assert second.active("block-d/ahu-9") == whole.active("block-d/ahu-9")
+
+
+def test_state_from_other_settings_is_refused(assets: dict) -> None:
+    fleet = FleetMonitor(NAMES)
+    fleet.add_asset("block-a/ahu-1", assets["block-a/ahu-1"][0])
+    state = fleet.to_state()
+    other = FleetMonitor(NAMES, MonitorConfig(prewhiten=PrewhitenConfig(ar_order=4)))
+    with pytest.raises(ValueError, match="'pw_sums' has shape"):
+        other.load_state(state)
+    assert len(other) == 0  # left as it was
+    with pytest.raises(ValueError, match="this release reads 'arxwatch.fleet' version 1"):
+        fleet.load_state({"meta": {**state["meta"], "version": 9}, "arrays": state["arrays"]})
+    with pytest.raises(ValueError, match="saved monitor checks quality of"):
+        FleetMonitor(NAMES, quality_signals=("sat",)).load_state(state)
+
+
+def test_memory_per_asset_is_a_few_hundred_floats(assets: dict) -> None:
+    # The point of the fleet: arrays, not objects. One mode, one input.
+    fleet = FleetMonitor(NAMES, quality_signals=("sat", "valve"))
+    baselines = assets["block-a/ahu-1"][0]
+    for k in range(1000):
+        fleet.add_asset(f"block-a/vav-{k}", baselines)
+    per_asset = fleet.memory_bytes() / len(fleet)
+    assert per_asset < 2048, per_asset
