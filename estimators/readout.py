@@ -54,6 +54,8 @@ from arxwatch.estimators.errors import DimensionError
 
 __all__ = [
     "PhysicalReadout",
+    "feature_jacobians",
+    "feature_matrix",
     "feature_names",
     "feature_vector",
     "read_out",
@@ -378,6 +380,172 @@ def readout_jacobian(
     if not isinstance(order, ArxOrder):
         raise TypeError(f"order must be an ArxOrder, got {type(order).__name__}")
     theta_arr = _check_theta(order, theta)
+    jac: NDArray[np.float64] = feature_jacobians(
+        order, theta_arr[None, :], sample_period_s, relative_step=relative_step
+    )[0]
+    return jac
+
+
+def feature_matrix(
+    order: ArxOrder, thetas: ArrayLike, sample_period_s: float
+) -> NDArray[np.float64]:
+    """Physical features of many parameter vectors at once: the numbers of :func:`read_out`.
+
+    Row r is ``feature_vector(read_out(order, thetas[r], sample_period_s))``:
+    gains, time constant and offset by the rules :func:`read_out` states.
+    :func:`read_out` takes its numbers from here, so one parameter vector
+    gives the same bits whether it is read alone or among thousands; the
+    drift monitor of a whole fleet relies on that. For na <= 2 the poles come
+    from the closed-form quadratic (Press et al., *Numerical Recipes*, 3rd
+    ed., 2007, section 5.6), vectorised; larger na fall back to
+    :func:`numpy.roots` row by row.
+
+    Parameters
+    ----------
+    order : ArxOrder
+        Model structure.
+    thetas : array_like, shape (k, n_params)
+        Parameter vectors, finite.
+    sample_period_s : float
+        Sample period Ts in seconds, finite and > 0.
+
+    Returns
+    -------
+    ndarray, shape (k, n_inputs + 1 + int(order.constant))
+        Columns named by :func:`feature_names`; undefined entries ``nan``.
+
+    Raises
+    ------
+    DimensionError
+        If ``thetas`` is not (k, n_params).
+    ValueError
+        If a value is not finite or the sample period is not positive.
+
+    Examples
+    --------
+    >>> order = ArxOrder(na=1, nb=(1,), nk=(1,))
+    >>> feature_matrix(order, [[-0.5, 1.0, 0.25], [-1.0, 0.5, 0.0]], 10.0).round(6).tolist()
+    [[2.0, 14.42695, 0.5], [nan, nan, nan]]
+    """
+    arr = np.array(thetas, dtype=np.float64)
+    if arr.ndim != 2 or arr.shape[1] != order.n_params:
+        raise DimensionError(
+            f"thetas must have shape (k, n_params={order.n_params}), got {arr.shape}"
+        )
+    if not np.isfinite(arr).all():
+        raise ValueError("thetas must be finite")
+    return _features(order, arr, _check_sample_period(sample_period_s))
+
+
+def _sequential_sum(columns: NDArray[np.float64]) -> NDArray[np.float64]:
+    """Row sums added left to right (a fixed order, so every caller gets the same bits)."""
+    total = np.zeros(columns.shape[0])
+    for j in range(columns.shape[1]):
+        total = total + columns[:, j]
+    return total
+
+
+def _features(order: ArxOrder, th: NDArray[np.float64], ts: float) -> NDArray[np.float64]:
+    k, na = th.shape[0], order.na
+    a = th[:, :na]
+    a_at_one = 1.0 + _sequential_sum(a)
+    scale = 1.0 + _sequential_sum(np.abs(a))
+    integrating = np.abs(a_at_one) <= _A1_RTOL * scale
+    columns = []
+    with np.errstate(divide="ignore", invalid="ignore"):
+        for i in range(order.n_inputs):
+            gain = _sequential_sum(th[:, order.input_slice(i)]) / a_at_one
+            columns.append(np.where(integrating, np.nan, gain))
+        columns.append(_time_constants(a, integrating, ts))
+        if order.constant:
+            columns.append(np.where(integrating, np.nan, th[:, -1] / a_at_one))
+    return np.stack(columns, axis=1) if k else np.zeros((0, len(columns)))
+
+
+def _time_constants(
+    a: NDArray[np.float64], integrating: NDArray[np.bool_], ts: float
+) -> NDArray[np.float64]:
+    """Dominant time constant of each row of A coefficients (the rules of read_out)."""
+    k, na = a.shape
+    if na == 0:
+        return np.zeros(k)
+    if na == 1:
+        real = -a[:, 0]
+        modulus = np.abs(real)
+        negative = real < 0.0
+    elif na == 2:
+        b, c = a[:, 0], a[:, 1]
+        disc = b * b - 4.0 * c
+        pair = disc < 0.0
+        root = np.sqrt(np.abs(disc))
+        # complex pair: -b/2 +- i sqrt(-disc)/2; "real" if the imaginary part is negligible
+        re_pair = -0.5 * b
+        im_pair = 0.5 * root
+        mod_pair = np.hypot(re_pair, im_pair)
+        flat = im_pair <= _IMAG_RTOL * np.maximum(1.0, mod_pair)
+        # two real roots q and c/q (stable form), or a double zero
+        q = -0.5 * (b + np.copysign(root, b))
+        with np.errstate(divide="ignore", invalid="ignore"):
+            other = np.where(q != 0.0, c / np.where(q != 0.0, q, 1.0), 0.0)
+        m1, m2 = np.abs(q), np.abs(other)
+        largest = np.maximum(m1, m2)
+        tie = np.minimum(m1, m2) >= largest * (1.0 - _TIE_RTOL)
+        dominant_real = np.where(tie, np.maximum(q, other), np.where(m1 >= m2, q, other))
+        real = np.where(pair, re_pair, dominant_real)
+        modulus = np.where(pair & ~flat, mod_pair, np.abs(real))
+        negative = (~pair | flat) & (real < 0.0)
+    else:
+        modulus = np.empty(k)
+        negative = np.empty(k, dtype=np.bool_)
+        for r in range(k):
+            dominant = _dominant(_sorted_poles(a[r]))
+            modulus[r] = abs(dominant)
+            negative[r] = dominant.imag == 0.0 and dominant.real < 0.0
+    with np.errstate(divide="ignore", invalid="ignore"):
+        tau = -ts / np.log(np.where((modulus > 0.0) & (modulus < 1.0), modulus, 0.5))
+    undefined = integrating | (modulus >= 1.0) | negative
+    return np.where(modulus == 0.0, 0.0, np.where(undefined, np.nan, tau))
+
+
+def feature_jacobians(
+    order: ArxOrder,
+    thetas: ArrayLike,
+    sample_period_s: float,
+    *,
+    relative_step: float = _DEFAULT_STEP,
+) -> NDArray[np.float64]:
+    """:func:`readout_jacobian` of many parameter vectors at once.
+
+    Parameters
+    ----------
+    order : ArxOrder
+        Model structure.
+    thetas : array_like, shape (k, n_params)
+        Parameter vectors, finite.
+    sample_period_s : float
+        Sample period Ts in seconds, finite and > 0.
+    relative_step : float, optional
+        Relative finite-difference step (see :func:`readout_jacobian`).
+
+    Returns
+    -------
+    ndarray, shape (k, n_features, n_params)
+        ``readout_jacobian(order, thetas[r], ...)`` for each row r.
+
+    Raises
+    ------
+    DimensionError
+        If ``thetas`` is not (k, n_params).
+    ValueError
+        If a value or the step is not finite, or the sample period is not positive.
+    """
+    arr = np.array(thetas, dtype=np.float64)
+    if arr.ndim != 2 or arr.shape[1] != order.n_params:
+        raise DimensionError(
+            f"thetas must have shape (k, n_params={order.n_params}), got {arr.shape}"
+        )
+    if not np.isfinite(arr).all():
+        raise ValueError("thetas must be finite")
     ts = _check_sample_period(sample_period_s)
     if (
         isinstance(relative_step, bool)
@@ -386,25 +554,31 @@ def readout_jacobian(
         or float(relative_step) <= 0.0
     ):
         raise ValueError(f"relative_step must be a finite number > 0, got {relative_step!r}")
-    rel = float(relative_step)
-    n_features = order.n_inputs + 1 + int(order.constant)
-    jac = np.empty((n_features, order.n_params), dtype=np.float64)
-    at_theta = feature_vector(_read_out_unchecked(order, theta_arr, ts))
-    for j in range(order.n_params):
-        h = rel * max(abs(float(theta_arr[j])), 1.0)
-        plus = theta_arr.copy()
-        minus = theta_arr.copy()
-        plus[j] += h
-        minus[j] -= h
-        # Divide by the step actually taken after rounding theta_j +- h.
-        width = float(plus[j] - minus[j])
-        f_plus = feature_vector(_read_out_unchecked(order, plus, ts))
-        f_minus = feature_vector(_read_out_unchecked(order, minus, ts))
-        jac[:, j] = (f_plus - f_minus) / width
-    # A feature undefined at theta has no derivative there, even when both
-    # neighbours are finite (the gain of an integrator jumps from -inf to +inf).
-    jac[np.isnan(at_theta), :] = np.nan
-    return jac
+    return _jacobians(order, arr, ts, float(relative_step))
+
+
+def _jacobians(
+    order: ArxOrder, th: NDArray[np.float64], ts: float, rel: float
+) -> NDArray[np.float64]:
+    k, n = th.shape
+    # every +h and -h perturbation of every row, read out in one call
+    h = rel * np.maximum(np.abs(th), 1.0)
+    plus = np.repeat(th[None, :, :], n, axis=0)  # (n, k, n): perturbation j of each row
+    minus = plus.copy()
+    index = np.arange(n)
+    plus[index, :, index] += h.T
+    minus[index, :, index] -= h.T
+    width = plus[index, :, index] - minus[index, :, index]  # the step actually taken, (n, k)
+    both = np.concatenate((plus.reshape(n * k, n), minus.reshape(n * k, n)))
+    values = _features(order, both, ts)
+    f_plus = values[: n * k].reshape(n, k, -1)
+    f_minus = values[n * k :].reshape(n, k, -1)
+    jac = ((f_plus - f_minus) / width[:, :, None]).transpose(1, 2, 0)  # (k, f, n)
+    # a feature undefined at theta has no derivative there, even when both
+    # neighbours are finite (the gain of an integrator jumps from -inf to +inf)
+    at_theta = _features(order, th, ts)
+    jac[np.isnan(at_theta)] = np.nan
+    return np.ascontiguousarray(jac)
 
 
 def _check_theta(order: ArxOrder, theta: ArrayLike) -> NDArray[np.float64]:
@@ -512,30 +686,24 @@ def _read_out_unchecked(order: ArxOrder, theta: NDArray[np.float64], ts: float) 
     stable = not integrating and all(abs(p) < 1.0 for p in poles)
 
     nan = float("nan")
-    if integrating:
-        gains = tuple(nan for _ in range(order.n_inputs))
-    else:
-        gains = tuple(
-            float(np.sum(theta[order.input_slice(i)])) / a_at_one for i in range(order.n_inputs)
-        )
-    offset: float | None = None
-    if order.constant:
-        offset = nan if integrating else float(theta[-1]) / a_at_one
+    # The numbers come from the vectorised read-out, so that a vector read
+    # alone and one read among thousands give the same bits.
+    numbers = _features(order, theta[None, :], ts)[0].tolist()
+    gains = tuple(numbers[: order.n_inputs])
+    offset: float | None = numbers[-1] if order.constant else None
 
     dominant: complex | None = None
-    tau = nan
+    tau = numbers[order.n_inputs]
     omega_n = nan
     omega_d = nan
     zeta = nan
     if not poles:
-        tau = 0.0
         notes.append("no poles (na=0): the response settles in finitely many samples, tau 0 s")
     else:
         dominant = _dominant(poles)
         modulus = abs(dominant)
         label = _format_pole(dominant)
         if modulus == 0.0:
-            tau = 0.0
             notes.append("all poles at z=0: the response settles in finitely many samples, tau 0 s")
         elif modulus >= 1.0 or integrating:
             notes.append(
@@ -546,8 +714,6 @@ def _read_out_unchecked(order: ArxOrder, theta: NDArray[np.float64], ts: float) 
                 f"dominant pole z={label} is real and negative: the output alternates sign "
                 "every sample, which no sampled continuous-time lag does; time constant undefined"
             )
-        else:
-            tau = -ts / math.log(modulus)
         if dominant.imag != 0.0 and modulus > 0.0:
             s = cmath.log(dominant) / ts
             omega_n = abs(s)
