@@ -614,11 +614,14 @@ class MqttLink:
         Raises
         ------
         RuntimeError
-            If the link was started before.
+            If the link was started or stopped before: a link runs once.
         """
         with self._lock:
-            if self._started:
-                raise RuntimeError("MqttLink.start() called twice; a link starts once")
+            if self._started or self._stopped:
+                state = "started" if self._started else "stopped"
+                raise RuntimeError(
+                    f"MqttLink.start() on a link already {state}; a link runs once, make a new one"
+                )
             self._started = True
             client, protocol = self._client, self._protocol
         logger.info(

@@ -670,17 +670,3 @@ def test_refused_subscription_is_an_error(
         link.stop(timeout_s=0.5)
     finally:
         peer.close()
-
-
-def test_construction_errors_name_the_argument(broker: Broker) -> None:
-    config = broker_config(broker, "arxwatch-args")
-    with pytest.raises(ValueError, match=r"maxsize >= 1\), got maxsize=0"):
-        MqttLink(config, password=None, subscriptions=[], status_topic="s", inbox=queue.Queue())
-    bounded: queue.Queue[Incoming] = queue.Queue(maxsize=1)
-    with pytest.raises(ValueError, match=r"subscriptions\[1\]: topic filter 'a/#/b'"):
-        MqttLink(config, password=None, subscriptions=["a/#", "a/#/b"], status_topic="s",
-                 inbox=bounded)  # fmt: skip
-    with pytest.raises(ValueError, match=r"status_topic: topic name 'a/\+'"):
-        MqttLink(config, password=None, subscriptions=[], status_topic="a/+", inbox=bounded)
-    with pytest.raises(ValueError, match="password given but broker.username is None"):
-        MqttLink(config, password="x", subscriptions=[], status_topic="s", inbox=bounded)
