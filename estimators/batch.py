@@ -96,7 +96,7 @@ class BatchRls:
         self.config = config if config is not None else RlsConfig()
         self.layout = StateLayout(n_params, n_inputs)
         self.n_assets = n_assets
-        self._kernel = build_kernel(self.layout, self.config, vectorised=True)
+        self._kernel = build_kernel(self.layout, self.config, "arrays")
         self._chunk = chunk
         initial = self.layout.initial(self.config.p0)
         self._state: list[NDArray[np.float64]] = [np.full(n_assets, v) for v in initial]

@@ -29,8 +29,8 @@ Guards around the update
   deviations is given the Huber weight ``w = huber_k / |eps|`` so that a
   single spike moves the estimate by a bounded amount.
 
-One kernel, two back ends
--------------------------
+One kernel, three back ends
+---------------------------
 At n = 6 parameters numpy's per-call overhead costs more than the arithmetic,
 so the per-asset kernel is straight-line Python on floats, unrolled for the
 model size. The unrolled source is generated once per (size, settings) by
@@ -38,10 +38,13 @@ model size. The unrolled source is generated once per (size, settings) by
 with each state entry a numpy array over assets (struct-of-arrays),
 ``np.where``/``np.minimum`` in place of the scalar conditionals, and state
 updates as in-place statements (``d *= a``) that write into the state arrays
-instead of allocating new ones. Both back ends therefore perform the same
-IEEE operations in the same order and agree to the last bit. The state of
-one asset is a flat list of floats (layout in :class:`StateLayout`), of a
-batch a list of 1-D arrays, one per entry.
+instead of allocating new ones. The optional compiled back end
+(:mod:`arxwatch.estimators.native`) hands the same statements to numba, with
+the settings read from a small array instead of written in as literals.
+All three therefore perform the same IEEE operations in the same order and
+agree to the last bit. The state of one asset is a flat list of floats
+(layout in :class:`StateLayout`; a float64 array for the compiled kernel),
+of a batch a list of 1-D arrays, one per entry.
 
 References
 ----------
@@ -63,7 +66,7 @@ import math
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from functools import lru_cache
-from typing import Any
+from typing import Any, Literal
 
 import numpy as np
 from numpy.typing import NDArray
@@ -77,6 +80,10 @@ TRACE_CHECK_EVERY = 16
 #: Huber weight, whether the estimate was updated, excitation).
 StepResult = tuple[Any, Any, Any, Any, Any, Any]
 Kernel = Callable[..., StepResult]
+
+#: One asset's flat state as :class:`StateLayout` reads it: a list of floats
+#: (pure-Python kernel) or a 1-D float64 array (compiled kernel).
+FlatState = Sequence[float] | NDArray[np.float64]
 
 
 @dataclass(frozen=True)
@@ -243,7 +250,7 @@ class StateLayout:
         state[self.diag] = [float(p0)] * self.n_params
         return state
 
-    def covariance(self, state: Sequence[float]) -> NDArray[np.float64]:
+    def covariance(self, state: FlatState) -> NDArray[np.float64]:
         """Dense ``P = U D U'``, shape (n, n), from one asset's state."""
         n = self.n_params
         u = np.eye(n)
@@ -254,7 +261,7 @@ class StateLayout:
             pos += j
         return np.asarray((u * np.asarray(state[self.diag], dtype=np.float64)) @ u.T)
 
-    def trace(self, state: Sequence[float]) -> float:
+    def trace(self, state: FlatState) -> float:
         """``trace(P) = sum_j d_j (1 + sum_{i<j} U_ij^2)`` of one asset's state."""
         upper, diag = state[self.upper], state[self.diag]
         total, pos = 0.0, 0
@@ -264,7 +271,7 @@ class StateLayout:
             pos += j
         return total
 
-    def sigma2(self, state: Sequence[float]) -> float:
+    def sigma2(self, state: FlatState) -> float:
         """Innovation variance estimate (1.0 while no error has been seen)."""
         rss = state[self.rss]
         return rss / state[self.weight] if rss > 0.0 else 1.0
@@ -281,26 +288,106 @@ class _Source:
         self.lines.append("    " * self.indent + line)
 
 
-def kernel_source(layout: StateLayout, config: RlsConfig, vectorised: bool) -> str:
+#: What :func:`kernel_source` writes code for: ``"floats"`` one asset in
+#: plain Python, ``"arrays"`` a batch of assets as numpy arrays, ``"native"``
+#: one asset compiled by numba (:mod:`arxwatch.estimators.native`).
+KernelTarget = Literal["floats", "arrays", "native"]
+KERNEL_TARGETS: tuple[KernelTarget, ...] = ("floats", "arrays", "native")
+
+
+def kernel_constants(layout: StateLayout, config: RlsConfig) -> dict[str, float]:
+    """Return the settings the kernel uses, named as the ``"native"`` source reads them.
+
+    The ``"floats"`` and ``"arrays"`` kernels have these values written into
+    their source as literals; the ``"native"`` kernel reads them, in this
+    order, from its argument ``c``, so one compiled kernel serves every
+    configuration of the same structure (see :func:`kernel_structure`). A
+    literal and a variable holding the same float give the same results.
+
+    Parameters
+    ----------
+    layout : StateLayout
+        Model size.
+    config : RlsConfig
+        Settings.
+
+    Returns
+    -------
+    dict of str to float
+        ``lam`` (forgetting), ``cap`` (trace cap at a check), ``warm``
+        (updates before weighting and gating engage), with Huber weighting
+        ``hk`` (threshold) and ``lam_hk`` (lambda / threshold), with the
+        excitation gate ``floor`` (least input standard deviation).
+    """
+    lam = float(config.forgetting)
+    constants = {
+        "lam": lam,
+        "cap": float(config.trace_bound(layout.n_params) * lam**TRACE_CHECK_EVERY),
+        "warm": float(config.warmup_updates),
+    }
+    if config.huber_k is not None:
+        constants["hk"] = float(config.huber_k)
+        constants["lam_hk"] = float(config.forgetting / config.huber_k)
+    if config.min_input_std is not None and layout.n_inputs > 0:
+        constants["floor"] = float(config.min_input_std)
+    return constants
+
+
+def kernel_structure(layout: StateLayout, config: RlsConfig) -> tuple[StateLayout, bool, bool]:
+    """Return what shapes the kernel's code beyond its constants.
+
+    Returns ``(layout, weighted, gated)``: the model size, whether Huber
+    weighting is on and whether the excitation gate is on. Two settings with
+    the same structure share one ``"native"`` kernel.
+    """
+    gated = config.min_input_std is not None and layout.n_inputs > 0
+    return layout, config.huber_k is not None, gated
+
+
+def kernel_source(layout: StateLayout, config: RlsConfig, target: KernelTarget = "floats") -> str:
     """Python source of the unrolled UD-RLS step for ``layout`` and ``config``.
 
-    The function it defines, ``step(s, phi, y, u)``, updates the state ``s``
-    (a list of floats) and returns (prediction, innovation, normalised
-    innovation, Huber weight, updated, excitation), the fields of
-    :class:`arxwatch.estimators.estimator.StepResult` in their order. When
-    ``vectorised`` it is ``step(s, phi, y, u, check)`` over lists of 1-D
-    arrays, ``check`` a bool array marking the assets due for the trace
-    check; it updates the arrays of ``s`` in place and returns arrays (the
-    weight, ``updated`` and the excitation may be scalars shared by all
-    assets). A ``phi`` or ``u`` of the wrong length raises
-    :class:`~arxwatch.estimators.errors.DimensionError` before anything
-    changes. See the module docstring for the algorithm and sources.
+    For every target the source defines ``step(s, phi, y, u)`` (``"arrays"``:
+    ``step(s, phi, y, u, check)``), which updates the state ``s`` in place
+    and returns (prediction, innovation, normalised innovation, Huber weight,
+    updated, excitation), the fields of
+    :class:`arxwatch.estimators.estimator.StepResult` in their order. A
+    ``phi`` or ``u`` of the wrong length raises
+    :class:`~arxwatch.estimators.errors.DimensionError`, a non-finite sample
+    ``ValueError``, both before anything changes. See the module docstring
+    for the algorithm and sources.
+
+    * ``"floats"``: ``s`` is a list of floats (layout in
+      :class:`StateLayout`).
+    * ``"arrays"``: ``s``, ``phi`` and ``u`` are lists of 1-D arrays over
+      assets, ``check`` a bool array marking the assets due for the trace
+      check; results are arrays (the weight, ``updated`` and the excitation
+      may be scalars shared by all assets). Non-finite samples are the
+      caller's to screen out.
+    * ``"native"``: ``s`` is a float64 array. The source also defines
+      ``native(s, c, p0, ..., y, x0, ...)``, the part numba compiles, with
+      the settings read from the array ``c`` (:func:`kernel_constants`);
+      ``step`` unpacks ``phi`` and ``u`` and calls it as ``_native`` with
+      ``_constants``, names the caller binds.
+
+    The update itself is the same statements for every target (with
+    ``np.where`` in place of the scalar conditionals on arrays), so the three
+    perform the same IEEE operations in the same order and agree to the
+    last bit.
 
     A sample of weight ``w`` is a measurement of variance ``1 / w``: in
     Bierman's recursion it starts ``alpha_0 = lambda / w`` instead of
     ``lambda``, so ``alpha_n = lambda / w + phi' P phi`` and the unnormalised
     gain ``k = P phi`` comes out of the recursion.
+
+    Raises
+    ------
+    ValueError
+        If ``target`` is not one of :data:`KERNEL_TARGETS`.
     """
+    if target not in KERNEL_TARGETS:
+        raise ValueError(f"target must be one of {KERNEL_TARGETS}, got {target!r}")
+    vectorised, native = target == "arrays", target == "native"
     n, m = layout.n_params, layout.n_inputs
     theta = [f"t{j}" for j in range(n)]
     upper = [f"u{i}_{j}" for j in range(n) for i in range(j)]
@@ -311,10 +398,14 @@ def kernel_source(layout: StateLayout, config: RlsConfig, vectorised: bool) -> s
     names = [*learned, "exw", *means, *vars_, "nseen", "nupd"]
     if len(names) != layout.size:
         raise AssertionError("kernel variables disagree with StateLayout")
-    lam = repr(float(config.forgetting))
-    cap = repr(float(config.trace_bound(n) * config.forgetting**TRACE_CHECK_EVERY))
-    floor = config.min_input_std
-    gated = floor is not None and m > 0
+    constants = kernel_constants(layout, config)
+    _, weighted, gated = kernel_structure(layout, config)
+
+    def const(name: str) -> str:
+        # A literal in Python; a variable read from `c` in the compiled kernel.
+        return f"c_{name}" if native else repr(constants[name])
+
+    lam, cap = const("lam"), const("cap")
 
     # Inline comparisons beat builtin calls on floats; same values for non-NaN.
     def lesser(a: str, b: str) -> str:
@@ -334,16 +425,23 @@ def kernel_source(layout: StateLayout, config: RlsConfig, vectorised: bool) -> s
                 expr = f"({expr} {op} {f'({operand})' if ' ' in operand else operand})"
             src.add(f"{name} = {expr}")
 
+    def unpack_sample() -> None:
+        # Unpacking checks the lengths; a try block costs nothing when it passes.
+        src.add("try:")
+        src.add(f"    {', '.join(f'p{j}' for j in range(n))}, = phi")
+        src.add(f"    {', '.join(f'x{i}' for i in range(m))}, = u" if m else "    () = u")
+        src.add("except ValueError:")
+        src.add(f"    raise _DimensionError(f'phi needs {n} and inputs {m} values, '")
+        src.add("                          f'got {len(phi)} and {len(u)}') from None")
+
+    non_finite = "f'non-finite sample: y={y!r}, phi={phi!r}, inputs={u!r}'"
     src = _Source()
+    if native:
+        src.add(f"{', '.join(f'c_{name}' for name in constants)}, = c")
     src.add(f"{', '.join(names)}, = s")
-    # Unpacking checks the lengths; a try block costs nothing when it passes.
-    src.add("try:")
-    src.add(f"    {', '.join(f'p{j}' for j in range(n))}, = phi")
-    src.add(f"    {', '.join(f'x{i}' for i in range(m))}, = u" if m else "    () = u")
-    src.add("except ValueError:")
-    src.add(f"    raise _DimensionError(f'phi needs {n} and inputs {m} values, '")
-    src.add("                          f'got {len(phi)} and {len(u)}') from None")
-    src.add(f"warm = nupd >= {float(config.warmup_updates)!r}")
+    if not native:
+        unpack_sample()
+    src.add(f"warm = nupd >= {const('warm')}")
     chain("nseen", ("+", "1.0"))
     # Excitation: weighted input moments over the memory (Finch 2009).
     chain("exw", ("*", lam), ("+", "1.0"))
@@ -376,7 +474,8 @@ def kernel_source(layout: StateLayout, config: RlsConfig, vectorised: bool) -> s
         probe = "e + info" + (f" + {vars_[0]}" if m else "")
         probe += "".join(f" + {v}" for v in vars_[1:])
         src.add(f"if not _isfinite({probe}):")
-        src.add("    raise ValueError(f'non-finite sample: y={y!r}, phi={phi!r}, inputs={u!r}')")
+        # Compiled code raises a bare marker; `step` words the message.
+        src.add("    raise _NonFinite" if native else f"    raise ValueError({non_finite})")
     if vectorised:
         src.add("sigma2 = _where(rss > 0.0, rss / _maximum(wsum, 1e-300), 1.0)")
     else:
@@ -385,29 +484,29 @@ def kernel_source(layout: StateLayout, config: RlsConfig, vectorised: bool) -> s
         src.add("sigma2 = rss / wsum if rss > 0.0 else 1.0")
     src.add(f"nrm = e / _sqrt(sigma2 * ({lam} + info) / {lam})")
     # Huber weight w: the sample counts as a measurement of variance 1 / w.
-    if config.huber_k is None:
+    if not weighted:
         src.add("w = 1.0")
         src.add(f"a0 = {lam}")
     elif vectorised:
-        k = repr(float(config.huber_k))
+        k = const("hk")
         src.add(f"big = _maximum(abs(nrm), {k})")
         src.add(f"w = _where(warm, {k} / big, 1.0)")
-        src.add(f"a0 = _where(warm, big * {float(config.forgetting / config.huber_k)!r}, {lam})")
+        src.add(f"a0 = _where(warm, big * {const('lam_hk')}, {lam})")
     else:
         # One branch for w and alpha_0, and max(|nrm|, k) without a call to
         # abs() (nrm is finite here).
-        k = repr(float(config.huber_k))
+        k = const("hk")
         src.add("if warm:")
         src.add(f"    big = nrm if nrm > {k} else -nrm if nrm < -{k} else {k}")
         src.add(f"    w = {k} / big")
-        src.add(f"    a0 = big * {float(config.forgetting / config.huber_k)!r}")
+        src.add(f"    a0 = big * {const('lam_hk')}")
         src.add("else:")
         src.add("    w = 1.0")
         src.add(f"    a0 = {lam}")
     # Freeze while the inputs do not excite the model.
-    if floor is not None and gated:
+    if gated:
         both = "&" if vectorised else "and"
-        src.add(f"frozen = warm {both} (excitation < {float(floor)!r})")
+        src.add(f"frozen = warm {both} (excitation < {const('floor')})")
         if vectorised:
             # The update below writes into the state arrays: keep what the
             # frozen assets must get back.
@@ -477,13 +576,34 @@ def kernel_source(layout: StateLayout, config: RlsConfig, vectorised: bool) -> s
     src.add(f"s[:] = ({', '.join(names)},)")
     updated = "~frozen" if vectorised and gated else "True"
     src.add(f"return y - e, e, nrm, w, {updated}, excitation")
-    args = "s, phi, y, u, check" if vectorised else "s, phi, y, u"
-    return f"def step({args}):\n" + "\n".join(src.lines) + "\n"
+    if not native:
+        args = "s, phi, y, u, check" if vectorised else "s, phi, y, u"
+        return f"def step({args}):\n" + "\n".join(src.lines) + "\n"
+    sample = [*(f"p{j}" for j in range(n)), "y", *(f"x{i}" for i in range(m))]
+    body = src.lines
+    src = _Source()
+    unpack_sample()
+    src.add("try:")
+    src.add(f"    return _native(s, _constants, {', '.join(sample)})")
+    src.add("except _NonFinite:")
+    src.add(f"    raise ValueError({non_finite}) from None")
+    return (
+        f"def native(s, c, {', '.join(sample)}):\n"
+        + "\n".join(body)
+        + "\n\n\ndef step(s, phi, y, u):\n"
+        + "\n".join(src.lines)
+        + "\n"
+    )
 
 
 @lru_cache(maxsize=64)
-def build_kernel(layout: StateLayout, config: RlsConfig, vectorised: bool = False) -> Kernel:
+def build_kernel(
+    layout: StateLayout, config: RlsConfig, target: Literal["floats", "arrays"] = "floats"
+) -> Kernel:
     """Compile (and cache) the step function described by :func:`kernel_source`.
+
+    The ``"native"`` target is built by
+    :func:`arxwatch.estimators.native.build_native_kernel` (it needs numba).
 
     Parameters
     ----------
@@ -491,16 +611,23 @@ def build_kernel(layout: StateLayout, config: RlsConfig, vectorised: bool = Fals
         Model size: parameters and tracked inputs.
     config : RlsConfig
         Settings, baked into the code as constants.
-    vectorised : bool
-        False for one asset (floats), True for a batch (arrays over assets).
+    target : {"floats", "arrays"}
+        One asset in plain Python, or a batch of assets as arrays.
 
     Returns
     -------
     callable
         ``step(s, phi, y, u[, check]) -> (prediction, e, eps, w, updated,
         excitation)``, mutating ``s``.
+
+    Raises
+    ------
+    ValueError
+        If ``target`` is neither ``"floats"`` nor ``"arrays"``.
     """
-    if vectorised:
+    if target not in ("floats", "arrays"):
+        raise ValueError(f"target must be 'floats' or 'arrays', got {target!r}")
+    if target == "arrays":
         namespace: dict[str, Any] = {
             "_where": np.where,
             "_minimum": np.minimum,
@@ -518,7 +645,7 @@ def build_kernel(layout: StateLayout, config: RlsConfig, vectorised: bool = Fals
             "_isfinite": math.isfinite,
             "_DimensionError": DimensionError,
         }
-    source = kernel_source(layout, config, vectorised)
+    source = kernel_source(layout, config, target)
     exec(compile(source, f"<arxwatch rls kernel n={layout.n_params}>", "exec"), namespace)
     kernel: Kernel = namespace["step"]
     return kernel

@@ -2,28 +2,38 @@
 
 import copy
 import dataclasses
+import functools
 import json
 from collections.abc import Callable
 
 import numpy as np
 import pytest
 
+from arxwatch.estimators import native
 from arxwatch.estimators.arx import ArxOrder
 from arxwatch.estimators.codec import decode_estimator, encode_estimator
 from arxwatch.estimators.estimator import ArxEstimator
 from arxwatch.estimators.rls import RlsConfig
 
-FACTORIES: dict[str, Callable[[], ArxEstimator]] = {
-    "default": lambda: ArxEstimator(ArxOrder(na=1, nb=(1,), nk=(1,))),
-    "plain-ls": lambda: ArxEstimator(
+NO_NUMBA = "numba is not installed (pip install '.[fast]'): the compiled back end is optional"
+
+MODELS: dict[str, tuple[ArxOrder, RlsConfig]] = {
+    "default": (ArxOrder(na=1, nb=(1,), nk=(1,)), RlsConfig()),
+    "plain-ls": (
         ArxOrder(na=2, nb=(2,), nk=(0,), constant=False),
         RlsConfig(forgetting=1.0, huber_k=None),
     ),
-    "gated-two-inputs": lambda: ArxEstimator(
+    "gated-two-inputs": (
         ArxOrder(na=2, nb=(1, 2), nk=(3, 1)),
         RlsConfig(forgetting=0.97, min_input_std=0.01, warmup_updates=5),
     ),
-    "no-inputs": lambda: ArxEstimator(ArxOrder(na=3, nb=(), nk=())),
+    "no-inputs": (ArxOrder(na=3, nb=(), nk=()), RlsConfig()),
+}
+# Each model on each back end; the compiled one is skipped without numba.
+FACTORIES: dict[str, Callable[[], ArxEstimator]] = {
+    f"{name}-{backend}": functools.partial(ArxEstimator, order, config, backend)
+    for name, (order, config) in MODELS.items()
+    for backend in ("python", "compiled")
 }
 
 
@@ -36,7 +46,17 @@ def stream(est: ArxEstimator, n: int = 120, seed: int = 0) -> list:
     return out
 
 
-@pytest.fixture(params=sorted(FACTORIES))
+@pytest.fixture(
+    params=[
+        pytest.param(
+            name,
+            marks=pytest.mark.skipif(
+                name.endswith("-compiled") and not native.available(), reason=NO_NUMBA
+            ),
+        )
+        for name in sorted(FACTORIES)
+    ]
+)
 def factory(request: pytest.FixtureRequest) -> Callable[[], ArxEstimator]:
     return FACTORIES[request.param]
 

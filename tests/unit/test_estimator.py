@@ -5,11 +5,25 @@ import json
 import numpy as np
 import pytest
 
+from arxwatch.estimators import native
 from arxwatch.estimators.arx import ArxOrder
 from arxwatch.estimators.codec import CodecError, decode_estimator, encode_estimator
 from arxwatch.estimators.errors import DimensionError
 from arxwatch.estimators.estimator import ArxEstimator
 from arxwatch.estimators.rls import RlsConfig
+
+NO_NUMBA = "numba is not installed (pip install '.[fast]'): the compiled back end is optional"
+
+
+@pytest.fixture(
+    params=[
+        "python",
+        pytest.param("compiled", marks=pytest.mark.skipif(not native.available(), reason=NO_NUMBA)),
+    ]
+)
+def backend(request: pytest.FixtureRequest) -> str:
+    """Run the test on each available back end."""
+    return request.param
 
 
 def _feed(est: ArxEstimator, n: int, seed: int) -> list:
@@ -25,34 +39,37 @@ def _feed(est: ArxEstimator, n: int, seed: int) -> list:
 ORDER = ArxOrder(na=1, nb=(1, 2), nk=(1, 0))
 
 
-def test_none_until_history_is_ready_then_results() -> None:
-    est = ArxEstimator(ORDER)
+def test_none_until_history_is_ready_then_results(backend: str) -> None:
+    est = ArxEstimator(ORDER, backend=backend)
     results = _feed(est, 5, 0)
     assert results[: ORDER.depth] == [None] * ORDER.depth
     assert all(r is not None for r in results[ORDER.depth :])
 
 
-def test_json_checkpoint_continues_bit_for_bit() -> None:
-    est = ArxEstimator(ORDER, RlsConfig(forgetting=0.99))
+def test_json_checkpoint_continues_bit_for_bit(backend: str) -> None:
+    est = ArxEstimator(ORDER, RlsConfig(forgetting=0.99), backend)
     _feed(est, 300, 1)
+    assert all(type(v) is float for v in est.to_state()["rls"])  # plain data on every back end
+    # The codec restores onto the default back end: checkpoints move between them.
     restored = decode_estimator(json.loads(json.dumps(encode_estimator(est))))
     assert restored.to_state() == est.to_state()
     a, b = _feed(est, 50, 2), _feed(restored, 50, 2)
     assert a == b
 
 
-def test_clone_is_untrained_twin_and_reset_forgets() -> None:
-    est = ArxEstimator(ORDER, RlsConfig(forgetting=0.97))
+def test_clone_is_untrained_twin_and_reset_forgets(backend: str) -> None:
+    est = ArxEstimator(ORDER, RlsConfig(forgetting=0.97), backend)
     _feed(est, 100, 3)
     twin = est.clone()
     assert twin.config == est.config and twin.order == est.order
+    assert twin.backend == est.backend == backend
     assert twin.n_updates == 0 and est.n_updates > 0
     est.reset()
     assert est.to_state() == twin.to_state()
 
 
-def test_restart_history_keeps_the_model() -> None:
-    est = ArxEstimator(ORDER)
+def test_restart_history_keeps_the_model(backend: str) -> None:
+    est = ArxEstimator(ORDER, backend=backend)
     _feed(est, 100, 4)
     theta = est.theta
     est.restart_history()
@@ -60,8 +77,8 @@ def test_restart_history_keeps_the_model() -> None:
     np.testing.assert_array_equal(est.theta, theta)
 
 
-def test_predict_matches_the_next_step_prediction() -> None:
-    est = ArxEstimator(ORDER)
+def test_predict_matches_the_next_step_prediction(backend: str) -> None:
+    est = ArxEstimator(ORDER, backend=backend)
     _feed(est, 100, 5)
     u = [1.0, 0.5]
     predicted = est.predict(u)
@@ -69,8 +86,8 @@ def test_predict_matches_the_next_step_prediction() -> None:
     assert result is not None and result.prediction == pytest.approx(predicted, rel=1e-12)
 
 
-def test_bad_checkpoints_are_refused_with_the_place() -> None:
-    est = ArxEstimator(ORDER)
+def test_bad_checkpoints_are_refused_with_the_place(backend: str) -> None:
+    est = ArxEstimator(ORDER, backend=backend)
     data = encode_estimator(est)
     with pytest.raises(CodecError, match="estimator.version"):
         decode_estimator({**data, "version": 99})
@@ -84,12 +101,12 @@ def test_bad_checkpoints_are_refused_with_the_place() -> None:
         decode_estimator({**data, "state": {**data["state"], "rls": bad}})
 
 
-def test_warm_start_sets_theta_and_p_exactly() -> None:
+def test_warm_start_sets_theta_and_p_exactly(backend: str) -> None:
     rng = np.random.default_rng(8)
     a = rng.normal(size=(5, 5))
     p = a @ a.T + 0.1 * np.eye(5)
     theta = rng.normal(size=5)
-    est = ArxEstimator(ORDER)
+    est = ArxEstimator(ORDER, backend=backend)
     est.warm_start(theta, p)
     np.testing.assert_allclose(est.covariance, p, rtol=1e-12)
     np.testing.assert_array_equal(est.theta, theta)
@@ -99,8 +116,8 @@ def test_warm_start_sets_theta_and_p_exactly() -> None:
         est.warm_start(theta[:2], p)
 
 
-def test_inflate_covariance_scales_p_under_the_cap() -> None:
-    est = ArxEstimator(ORDER, RlsConfig(p0=10.0))
+def test_inflate_covariance_scales_p_under_the_cap(backend: str) -> None:
+    est = ArxEstimator(ORDER, RlsConfig(p0=10.0), backend)
     _feed(est, 200, 6)
     before = est.covariance
     est.inflate_covariance(4.0)
