@@ -69,12 +69,7 @@ from arxwatch.estimators.detect._checks import (
 )
 from arxwatch.estimators.detect.evidence import Evidence
 from arxwatch.estimators.errors import DimensionError
-from arxwatch.estimators.readout import (
-    feature_names,
-    feature_vector,
-    read_out,
-    readout_jacobian,
-)
+from arxwatch.estimators.readout import feature_jacobians, feature_matrix, feature_names
 
 __all__ = [
     "FeatureDrift",
@@ -83,6 +78,7 @@ __all__ = [
     "ParameterDriftConfig",
     "calibrate",
     "wald_distance",
+    "wald_distances",
 ]
 
 _Vector = NDArray[np.float64]
@@ -138,16 +134,65 @@ def wald_distance(
         raise DimensionError(
             f"delta must have shape (n,) and covariance (n, n), got {d.shape} and {s.shape}"
         )
+    d2, rank = wald_distances(d[None, :], s[None, :, :], rcond=rcond)
+    if rank[0] == 0:
+        raise ValueError("covariance has rank 0: no direction can be tested")
+    return float(d2[0]), int(rank[0])
+
+
+def wald_distances(
+    delta: ArrayLike, covariance: ArrayLike, *, rcond: float = 1e-10
+) -> tuple[NDArray[np.float64], NDArray[np.intp]]:
+    """:func:`wald_distance` of many differences at once.
+
+    Each row is computed by the same operations in the same order whatever
+    the other rows are, so a row's result does not depend on the batch (the
+    per-asset and the fleet-wide monitors agree bit for bit).
+
+    Parameters
+    ----------
+    delta : array_like, shape (k, n)
+        Differences of the live and baseline vectors.
+    covariance : array_like, shape (k, n, n)
+        Their covariances, symmetric positive semi-definite.
+    rcond : float, optional
+        Relative eigenvalue cut-off, as :func:`wald_distance`.
+
+    Returns
+    -------
+    d2 : ndarray, shape (k,)
+        Squared distances; 0.0 where the rank is 0.
+    rank : ndarray of intp, shape (k,)
+        Eigenvalues kept; 0 where no direction can be tested.
+
+    Raises
+    ------
+    DimensionError
+        If the shapes do not match.
+    ValueError
+        If an entry is not finite.
+    """
+    d = np.asarray(delta, dtype=np.float64)
+    s = np.asarray(covariance, dtype=np.float64)
+    if d.ndim != 2 or s.shape != (d.shape[0], d.shape[1], d.shape[1]):
+        raise DimensionError(
+            f"delta must have shape (k, n) and covariance (k, n, n), got {d.shape} and {s.shape}"
+        )
     if not (np.isfinite(d).all() and np.isfinite(s).all()):
         raise ValueError("delta and covariance must be finite")
-    w, v = np.linalg.eigh(0.5 * (s + s.T))
-    largest = float(w[-1]) if w.shape[0] else 0.0
-    keep = w > rcond * largest
-    rank = int(keep.sum())
-    if largest <= 0.0 or rank == 0:
-        raise ValueError("covariance has rank 0: no direction can be tested")
-    proj = v[:, keep].T @ d
-    return float(np.sum(proj * proj / w[keep])), rank
+    n = d.shape[1]
+    w, v = np.linalg.eigh(0.5 * (s + s.transpose(0, 2, 1)))
+    largest = w[:, -1] if n else np.zeros(d.shape[0])
+    keep = (w > rcond * largest[:, None]) & (largest[:, None] > 0.0)
+    rank = keep.sum(axis=1).astype(np.intp)
+    d2 = np.zeros(d.shape[0])
+    with np.errstate(divide="ignore", invalid="ignore"):
+        for j in range(n):
+            proj = np.zeros(d.shape[0])
+            for i in range(n):
+                proj = proj + v[:, i, j] * d[:, i]
+            d2 = d2 + np.where(keep[:, j], proj * proj / w[:, j], 0.0)
+    return d2, rank
 
 
 def calibrate(d2_samples: ArrayLike, false_alarm_rate: float) -> float:
@@ -325,8 +370,11 @@ class _WaldDrift(ABC):
 
     # -- subclass hooks ------------------------------------------------------
     @abstractmethod
-    def _project(self, theta: _Vector, cov: _Vector) -> tuple[_Vector, _Vector]:
-        """Map theta and Cov(theta) to the tested vector and its covariance."""
+    def project(self, thetas: _Vector, covs: _Vector) -> tuple[_Vector, _Vector]:
+        """Map rows of theta (k, n) and Cov(theta) (k, n, n) to tested vectors and covariances.
+
+        Each row's result depends on that row alone (same bits in any batch).
+        """
 
     @abstractmethod
     def _labels(self) -> tuple[str, ...]:
@@ -380,8 +428,9 @@ class _WaldDrift(ABC):
             raise ValueError(f"threshold must be None or a finite number > 0, got {threshold!r}")
         n_given = int(np.shape(theta)[0]) if np.ndim(theta) == 1 else -1
         t, c = self._inputs(theta, covariance, self._baseline_params(n_given))
-        x0, c0 = self._project(t, c)
-        self._baseline = (x0, c0, t.shape[0], None if threshold is None else float(threshold))
+        x0, c0 = self.project(t[None, :], c[None, :, :])
+        empirical = None if threshold is None else float(threshold)
+        self._baseline = (x0[0], c0[0], t.shape[0], empirical)
         self._count = 0
 
     @property
@@ -434,18 +483,86 @@ class _WaldDrift(ABC):
             return None
         x0, c0, n_params, empirical = baseline
         t, c = self._inputs(theta, covariance, n_params)
-        x, cx = self._project(t, c)
+        x, cx = self.project(t[None, :], c[None, :, :])
         # Counted only once the inputs passed: a refused call is retried next time.
         self._count = count + 1
-        usable = np.isfinite(x0) & np.isfinite(x)
-        usable &= np.isfinite(np.diag(c0)) & np.isfinite(np.diag(cx))
-        idx = np.flatnonzero(usable)
+        return self.judge(x0[None, :], c0[None, :, :], x, cx, empirical)[0]
+
+    def judge(
+        self,
+        x0: _Vector,
+        c0: _Vector,
+        x: _Vector,
+        cx: _Vector,
+        empirical: float | None = None,
+    ) -> list[Evidence]:
+        """Test many live vectors against their baselines (no schedule, no stored baseline).
+
+        Parameters
+        ----------
+        x0, x : ndarray, shape (k, m)
+            Baseline and live tested vectors (from :meth:`project`).
+        c0, cx : ndarray, shape (k, m, m)
+            Their covariances.
+        empirical : float, optional
+            Empirical threshold used instead of the chi-square quantile.
+
+        Returns
+        -------
+        list of Evidence
+            One per row, as :meth:`update` reports an evaluation; a row's
+            evidence does not depend on the other rows.
+        """
+        k = x.shape[0]
+        diag0 = np.diagonal(c0, axis1=1, axis2=2)
+        diagx = np.diagonal(cx, axis1=1, axis2=2)
+        usable = np.isfinite(x0) & np.isfinite(x) & np.isfinite(diag0) & np.isfinite(diagx)
         labels = self._labels()
+        out: list[Evidence | None] = [None] * k
+        patterns: dict[bytes, list[int]] = {}
+        for r in range(k):
+            patterns.setdefault(usable[r].tobytes(), []).append(r)
+        for rows in patterns.values():
+            idx = np.flatnonzero(usable[rows[0]])
+            if idx.shape[0] == 0:
+                for r in rows:
+                    out[r] = self._evidence(x0[r], x[r], idx, labels, None, None, empirical)
+                continue
+            members = np.array(rows, dtype=np.intp)
+            sub = np.ix_(members, idx, idx)
+            pair = np.ix_(members, idx)
+            delta: _Vector = x[pair] - x0[pair]
+            d2, rank = wald_distances(delta, c0[sub] + cx[sub], rcond=self._rcond)
+            p_value = np.asarray(chi2.sf(d2, rank), dtype=np.float64)
+            for j, r in enumerate(rows):
+                out[r] = self._evidence(
+                    x0[r],
+                    x[r],
+                    idx,
+                    labels,
+                    (float(d2[j]), int(rank[j])),
+                    float(p_value[j]),
+                    empirical,
+                    n_full=x.shape[1],
+                )
+        return [ev for ev in out if ev is not None]
+
+    def _evidence(
+        self,
+        x0: _Vector,
+        x: _Vector,
+        idx: NDArray[np.intp],
+        labels: tuple[str, ...],
+        distance: tuple[float, int] | None,
+        p_value: float | None,
+        empirical: float | None,
+        n_full: int = 0,
+    ) -> Evidence:
         values: dict[str, float] = {}
-        for i in idx:
+        for i in idx.tolist():
             values[f"baseline_{labels[i]}"] = float(x0[i])
             values[f"current_{labels[i]}"] = float(x[i])
-        if idx.shape[0] == 0:
+        if distance is None or distance[1] == 0 or p_value is None:
             values["n_tested"] = 0.0
             return Evidence(
                 detector=self._name,
@@ -457,21 +574,15 @@ class _WaldDrift(ABC):
                 values=values,
                 detail="undefined",
             )
-        sub = np.ix_(idx, idx)
-        d2, rank = wald_distance(x[idx] - x0[idx], c0[sub] + cx[sub], rcond=self._rcond)
+        d2, rank = distance
         threshold = empirical if empirical is not None else self._chi2(rank)
         detail = ""
-        if idx.shape[0] < x.shape[0]:
+        if idx.shape[0] < n_full:
             detail = "partial"
         elif rank < idx.shape[0]:
             detail = "rank_deficient"
         values.update(
-            {
-                "d2": d2,
-                "df": float(rank),
-                "p_value": float(chi2.sf(d2, rank)),
-                "n_tested": float(idx.shape[0]),
-            }
+            {"d2": d2, "df": float(rank), "p_value": p_value, "n_tested": float(idx.shape[0])}
         )
         return Evidence(
             detector=self._name,
@@ -608,12 +719,13 @@ class ParameterDrift(_WaldDrift):
             raise DimensionError(f"indices {indices} reach beyond theta of length {n_given}")
         return n_given
 
-    def _project(self, theta: _Vector, cov: _Vector) -> tuple[_Vector, _Vector]:
+    def project(self, thetas: _Vector, covs: _Vector) -> tuple[_Vector, _Vector]:
+        """Select the tested entries of theta (k, n) and their covariances."""
         indices = self.config.indices
         if indices is None:
-            return theta, cov
+            return thetas, covs
         idx = list(indices)
-        return theta[idx], cov[np.ix_(idx, idx)]
+        return thetas[:, idx], covs[:, idx][:, :, idx]
 
     def _tested_size(self, n_params: int) -> int:
         indices = self.config.indices
@@ -679,17 +791,24 @@ class FeatureDrift(_WaldDrift):
     def _baseline_params(self, n_given: int) -> int:
         return self.config.order.n_params
 
-    def _project(self, theta: _Vector, cov: _Vector) -> tuple[_Vector, _Vector]:
+    def project(self, thetas: _Vector, covs: _Vector) -> tuple[_Vector, _Vector]:
+        """Features of theta rows (k, n) and their covariances ``J Cov J'`` (delta method)."""
         order, ts = self.config.order, self.config.sample_period_s
-        f = feature_vector(read_out(order, theta, ts))[self._rows]
-        jac = readout_jacobian(order, theta, ts)[self._rows]
+        f = feature_matrix(order, thetas, ts)[:, self._rows]
+        jac = feature_jacobians(order, thetas, ts)[:, self._rows, :]
         # nan rows of J (undefined features) would spread nan over the whole
         # product; zero them here and let the finiteness mask on f drop them.
-        bad = ~np.isfinite(jac).all(axis=1)
+        bad = np.asarray(~np.isfinite(jac).all(axis=2), dtype=np.bool_)
         jac[bad] = 0.0
-        cf = jac @ cov @ jac.T
-        cf[bad, :] = np.nan
-        cf[:, bad] = np.nan
+        # J Cov J' with sums in a fixed order, so a row does not depend on its batch
+        k, m, n = jac.shape
+        left = np.zeros((k, m, n))
+        for i in range(n):
+            left = left + jac[:, :, i, None] * covs[:, None, i, :]
+        cf = np.zeros((k, m, m))
+        for j in range(n):
+            cf = cf + left[:, :, None, j] * jac[:, None, :, j]
+        cf[bad[:, :, None] | bad[:, None, :]] = np.nan
         f[bad] = np.nan
         return f, cf
 
