@@ -383,6 +383,74 @@ class TrackerBank:
             for k in raised.tolist()
         }
 
+    def observe_one(
+        self,
+        row: int,
+        key: int,
+        statistic: float,
+        threshold: float,
+        alarm: bool,
+        time_s: float,
+    ) -> BankTransition | None:
+        """Account one evaluation of one pair (the scalar path of :meth:`observe`).
+
+        Returns
+        -------
+        BankTransition or None
+            The transition, with ``position`` 0, if there is one.
+        """
+        raised = bool(self.raised[row, key])
+        alarms = int(self.alarms[row, key])
+        if not alarm and not raised and not alarms:
+            # A quiet evaluation of a quiet episode changes nothing that
+            # matters: only the quiet run, which decides nothing before a
+            # raise, and a raise needs an alarm (which resets it).
+            return None
+        policy = self.policy
+        if threshold == 0.0:
+            ratio = math.inf if statistic > 0.0 else 0.0
+        else:
+            ratio = statistic / threshold
+        critical = alarm and ratio >= policy.critical_ratio
+        alarms = ((alarms << 1) | int(alarm)) & self._window
+        criticals = ((int(self.criticals[row, key]) << 1) | int(critical)) & self._window
+        first = float(self.first_seen_s[row, key])
+        if alarm and math.isnan(first):
+            first = time_s
+        quiet = statistic < policy.clear_ratio * threshold and not alarm
+        run = min(int(self.quiet_run[row, key]), policy.clear_n) + 1 if quiet else 0
+        severe = bool(self.critical[row, key])
+        state: State | None = None
+        if not raised:
+            if alarms.bit_count() >= policy.raise_m:
+                raised, state = True, "raised"
+                severe = criticals.bit_count() >= policy.critical_m
+            elif not alarms:
+                first = math.nan
+        elif not severe and criticals.bit_count() >= policy.critical_m:
+            severe, state = True, "raised"
+        elif run >= policy.clear_n:
+            state = "cleared"
+        out = None
+        if state is not None:
+            out = BankTransition(
+                position=0,
+                state=state,
+                severity="critical" if severe else "warning",
+                first_seen_s=first if not math.isnan(first) else time_s,
+            )
+        if state == "cleared":
+            alarms = criticals = run = 0
+            raised = severe = False
+            first = math.nan
+        self.alarms[row, key] = alarms
+        self.criticals[row, key] = criticals
+        self.quiet_run[row, key] = run
+        self.raised[row, key] = raised
+        self.critical[row, key] = severe
+        self.first_seen_s[row, key] = first
+        return out
+
     def observe(
         self,
         rows: NDArray[np.intp],
@@ -415,6 +483,20 @@ class TrackerBank:
         limit = np.broadcast_to(np.asarray(threshold, dtype=np.float64), stat.shape)
         alarm = np.asarray(alarm, dtype=np.bool_)
         when = np.broadcast_to(np.asarray(time_s, dtype=np.float64), stat.shape)
+        # A quiet evaluation of a quiet episode changes nothing that matters
+        # (see observe_one): work on the others only.
+        busy = alarm | self.raised[rows, key] | (self.alarms[rows, key] != 0)
+        if not busy.all():
+            if not busy.any():
+                return []
+            picked = np.flatnonzero(busy)
+            found = self.observe(
+                rows[picked], key, stat[picked], limit[picked], alarm[picked], when[picked]
+            )
+            return [
+                BankTransition(int(picked[t.position]), t.state, t.severity, t.first_seen_s)
+                for t in found
+            ]
         with np.errstate(divide="ignore", invalid="ignore"):
             ratio = np.where(limit == 0.0, np.where(stat > 0.0, np.inf, 0.0), stat / limit)
         critical = alarm & (ratio >= policy.critical_ratio)

@@ -32,7 +32,6 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -45,13 +44,12 @@ from arxwatch.estimators.arx import ArxOrder
 from arxwatch.estimators.baseline import Baseline, BaselineSet
 from arxwatch.estimators.codec import decode_order, encode_order
 from arxwatch.estimators.detect._sums import centred_sums
-from arxwatch.estimators.detect.bands import PhysicalBands
 from arxwatch.estimators.detect.evidence import Evidence
 from arxwatch.estimators.detect.parameter import FeatureDrift, FeatureDriftConfig
 from arxwatch.estimators.detect.prewhiten import fit_reference
 from arxwatch.estimators.detect.whiteness import block_evidence
 from arxwatch.estimators.estimator import ArxEstimator
-from arxwatch.estimators.readout import feature_names, read_out
+from arxwatch.estimators.readout import feature_matrix, feature_names, read_out
 from arxwatch.estimators.rls import TRACE_CHECK_EVERY, StateLayout, build_kernel
 
 __all__ = ["FleetMonitor"]
@@ -119,7 +117,6 @@ class _Group:
                 order=order, sample_period_s=sample_period_s, alpha=config.drift_alpha, every=1
             )
         )
-        self.bands = PhysicalBands(config.bands)
         self.tri_rows, self.tri_cols = np.triu_indices(n)
         # full (n, n) positions of the upper triangle, for rebuilding rows
         tri_index = np.zeros((n, n), dtype=np.intp)
@@ -387,8 +384,9 @@ class _Group:
         if ready.any():
             rp, rc = positions[ready], ch[ready]
             due_eval = a["samples"][rc] % config.evaluate_every == 0
-            for pos, c in zip(rp[due_eval].tolist(), rc[due_eval].tolist(), strict=True):
-                found += self._evaluate(pos, c, float(time_s[pos]), bool(changing[pos]))
+            if due_eval.any():
+                dp = rp[due_eval]
+                found += self._evaluate(dp, rc[due_eval], time_s[dp], changing[dp])
         return found
 
     def _innovations(
@@ -441,11 +439,15 @@ class _Group:
         sums[:, 0] += x
         sums[:, 1] += x * x
         lags = past.shape[1]
-        for lag in range(1, lags + 1):
-            has = count >= lag
-            sums[has, lag + 1] += x[has] * past[has, lag - 1]
-        starting = np.flatnonzero(count < lags)
-        head[starting, count[starting]] = x[starting]
+        if count.min() >= lags:  # the common case: every lag exists
+            for lag in range(1, lags + 1):
+                sums[:, lag + 1] += x * past[:, lag - 1]
+        else:
+            for lag in range(1, lags + 1):
+                has = count >= lag
+                sums[has, lag + 1] += x[has] * past[has, lag - 1]
+            starting = np.flatnonzero(count < lags)
+            head[starting, count[starting]] = x[starting]
         if lags:
             past[:, 1:] = past[:, :-1].copy()
             past[:, 0] = x
@@ -618,38 +620,127 @@ class _Group:
         return [(int(ep[t.position]), 2, evidence[t.position], t) for t in transitions]
 
     def _evaluate(
-        self, pos: int, c: int, time_s: float, changing: bool
+        self, dp: Index, dc: Index, time_s: Float, changing: NDArray[np.bool_]
     ) -> list[tuple[int, int, Evidence, BankTransition]]:
-        """Run the parameter-based step of _ModeMonitor for channel ``c``."""
-        a, config = self.arrays, self.config
-        if changing:
+        """Run the parameter-based step of _ModeMonitor for channels ``dc``, all at once."""
+        a, config, layout = self.arrays, self.config, self.layout
+        for c in dc[changing].tolist():
             # an innovation alert is up: keep the live estimate re-learning
             self.inflate(c, config.reset_factor)
-        if int(a["samples"][c]) < self.settle:
+        settled = a["samples"][dc] >= self.settle
+        if not settled.any():
             return []
-        column = self.rls_column(c)
-        layout = self.layout
-        theta = np.array(column[layout.theta], dtype=np.float64)
-        covariance = layout.sigma2(column) * layout.covariance(column)
-        theta0, cov0 = self.baseline_theta_cov(c)
-        self.drift.set_baseline(theta0, cov0)
-        evidence: list[tuple[int, Evidence]] = []
-        drift = self.drift.update(theta, covariance)
-        if drift is not None:
-            evidence.append((3, drift))
-        readout = read_out(self.order, theta, self.sample_period_s)
-        base_readout, _ = self.baseline_readout_values(c)
-        self.bands.set_baseline(base_readout, output_sigma=math.sqrt(float(a["sigma2"][c])))
-        for band in self.bands.update(readout):
-            evidence.append((4 + self.band_names.index(band.signal), band))
-        values = readout_values(readout, self.order, layout.sigma2(column))
-        a["current"][c] = list(values.values())
+        dp, dc, time_s = dp[settled], dc[settled], time_s[settled]
+        columns = [self.rls_column(c) for c in dc.tolist()]
+        thetas = a["rls"][dc][:, layout.theta]
+        covs = np.stack([layout.sigma2(col) * layout.covariance(col) for col in columns])
+        sigma2 = a["sigma2"][dc]
+        theta0 = a["theta0"][dc]
+        cov0 = a["cov0"][dc][:, self.tri_index]
         found: list[tuple[int, int, Evidence, BankTransition]] = []
-        for key, ev in evidence:
-            t = self.tracker.observe_one(c, key, ev.statistic, ev.threshold, ev.alarm, time_s)
-            if t is not None:
-                found.append((pos, key, ev, t))
+        # feature Wald test
+        x0, c0 = self.drift.project(theta0, cov0)
+        x, cx = self.drift.project(thetas, covs)
+        drift = self.drift.judge(x0, c0, x, cx)
+        found += self._observe(dp, dc, 3, drift, time_s)
+        # physical bands (PhysicalBands.update, element-wise)
+        live = feature_matrix(self.order, thetas, self.sample_period_s)
+        base = feature_matrix(self.order, theta0, self.sample_period_s)
+        found += self._bands(dp, dc, live, base, np.sqrt(sigma2), time_s)
+        # the live read-out the records show
+        rss = a["rls"][dc, layout.rss]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            live_sigma2 = np.where(rss > 0.0, rss / a["rls"][dc, layout.weight], 1.0)
+        a["current"][dc] = np.concatenate((live, np.sqrt(live_sigma2)[:, None]), axis=1)
         return found
+
+    def _observe(
+        self, dp: Index, dc: Index, key: int, evidence: list[Evidence], time_s: Float
+    ) -> list[tuple[int, int, Evidence, BankTransition]]:
+        statistic = np.array([ev.statistic for ev in evidence])
+        threshold = np.array([ev.threshold for ev in evidence])
+        alarm = np.array([ev.alarm for ev in evidence], dtype=np.bool_)
+        transitions = self.tracker.observe(dc, key, statistic, threshold, alarm, time_s)
+        return [(int(dp[t.position]), key, evidence[t.position], t) for t in transitions]
+
+    def _bands(
+        self, dp: Index, dc: Index, live: Float, base: Float, output_sigma: Float, time_s: Float
+    ) -> list[tuple[int, int, Evidence, BankTransition]]:
+        """PhysicalBands.set_baseline then update, for every channel of ``dc``."""
+        bands, order = self.config.bands, self.order
+        m, ts = order.n_inputs, self.sample_period_s
+        dead = [float(nk) * ts for nk in order.nk]
+        # (name, baseline column or constant, live column or constant, relative, tolerance)
+        spec: list[tuple[str, Float, Float, bool, Float]] = []
+        k = dc.shape[0]
+        for i in range(m):
+            tol = np.full(k, float(bands.gain_tolerance))
+            spec.append((f"gain_{i + 1}", base[:, i], live[:, i], True, tol))
+        tol = np.full(k, float(bands.time_constant_tolerance))
+        spec.append(("time_constant_s", base[:, m], live[:, m], True, tol))
+        for i in range(m):
+            value = np.full(k, dead[i])
+            tol = np.full(k, float(bands.dead_time_tolerance))
+            spec.append((f"dead_time_{i + 1}_s", value, value, True, tol))
+        if order.constant:
+            if bands.offset_tolerance is None:
+                tol = bands.offset_sigmas * output_sigma
+            else:
+                tol = np.full(k, float(bands.offset_tolerance))
+            spec.append(("offset", base[:, m + 1], live[:, m + 1], False, tol))
+        found: list[tuple[int, int, Evidence, BankTransition]] = []
+        for name, baseline, value, relative, tol in spec:
+            watched = np.isfinite(baseline) & ~(relative & (baseline == 0.0))
+            if not watched.any():
+                continue
+            defined = np.isfinite(value)
+            with np.errstate(divide="ignore", invalid="ignore"):
+                change = (value - baseline) / np.abs(baseline) if relative else value - baseline
+            statistic = np.where(defined, np.abs(change), np.inf)
+            alarm = ~defined | (statistic >= tol)
+            key = 4 + self.band_names.index(name)
+            w = np.flatnonzero(watched)
+            transitions = self.tracker.observe(
+                dc[w], key, statistic[w], tol[w], alarm[w], time_s[w]
+            )
+            for t in transitions:
+                r = int(w[t.position])
+                found.append(
+                    (
+                        int(dp[r]),
+                        key,
+                        self._band_evidence(name, baseline[r], value[r], change[r], tol[r]),
+                        t,
+                    )
+                )
+        return found
+
+    @staticmethod
+    def _band_evidence(name: str, base: float, value: float, change: float, tol: float) -> Evidence:
+        """Build the Evidence PhysicalBands.update returns for one feature."""
+        base, value, change, tol = float(base), float(value), float(change), float(tol)
+        if not math.isfinite(value):
+            return Evidence(
+                "physical_band",
+                "behaviour",
+                math.inf,
+                tol,
+                True,
+                name,
+                {"baseline": base},
+                "undefined",
+            )
+        statistic = abs(change)
+        return Evidence(
+            "physical_band",
+            "behaviour",
+            statistic,
+            tol,
+            statistic >= tol,
+            name,
+            {"baseline": base, "current": value, "change": change},
+            "high" if change >= 0.0 else "low",
+        )
 
     def inflate(self, c: int, factor: float) -> None:
         """ArxEstimator.inflate_covariance on channel ``c``."""
@@ -662,17 +753,13 @@ class _Group:
         self.arrays["rls"][c, layout.diag] = scaled
 
 
-@dataclass(frozen=True)
-class _Channel:
-    group: int
-    index: int
-
-
 class FleetMonitor:
     """Drift monitor of every asset of one asset class, in arrays.
 
     Equivalent to one :class:`~arxwatch.daemon.monitor.AssetMonitor` per
     asset (same records for the same calls), at a few kilobytes per asset.
+    Slot-by-mode tables route each row to its channel without a Python
+    loop over rows.
 
     Parameters
     ----------
@@ -713,9 +800,13 @@ class FleetMonitor:
         self._slots: dict[str, int] = {}
         self._free: list[int] = []
         self._mode_codes: dict[str | None, int] = {}
-        self._channels: list[list[_Channel]] = []  # per slot, in BaselineSet order
-        self._by_mode: list[dict[int, _Channel]] = []  # per slot: mode code -> channel
+        self._mode_labels: list[str | None] = []
+        # per slot: mode code -> (group, channel) of its baseline; -1 where none
+        self._chan_group = np.full((0, 0), -1, dtype=np.int16)
+        self._chan_index = np.full((0, 0), -1, dtype=np.int32)
+        self._first_mode = np.zeros(0, dtype=np.int16)  # first baseline of the set
         self._last_mode = np.zeros(0, dtype=np.int16)
+        self._used = np.zeros(0, dtype=np.bool_)
         self.quality_keys = tuple(
             f"{kind}/{signal}" for signal in quality_signals for kind in _QUALITY_KINDS
         )
@@ -742,6 +833,39 @@ class FleetMonitor:
         """
         return self._slots[asset_id]
 
+    def _resize_slots(self, size: int) -> None:
+        old = self._last_mode.shape[0]
+        modes = self._chan_group.shape[1]
+        group = np.full((size, modes), -1, dtype=np.int16)
+        index = np.full((size, modes), -1, dtype=np.int32)
+        group[:old], index[:old] = self._chan_group, self._chan_index
+        self._chan_group, self._chan_index = group, index
+        self._first_mode = np.resize(self._first_mode, size)
+        self._last_mode = np.resize(self._last_mode, size)
+        used = np.zeros(size, dtype=np.bool_)
+        used[:old] = self._used
+        self._used = used
+        if self._quality is not None:
+            self._quality.resize(size)
+
+    def _mode_code(self, label: str | None) -> int:
+        code = self._mode_codes.get(label)
+        if code is None:
+            code = self._mode_codes[label] = len(self._mode_labels)
+            self._mode_labels.append(label)
+            slots = self._chan_group.shape[0]
+            self._chan_group = np.hstack((self._chan_group, np.full((slots, 1), -1, np.int16)))
+            self._chan_index = np.hstack((self._chan_index, np.full((slots, 1), -1, np.int32)))
+        return code
+
+    def _channels(self, slot: int) -> list[tuple[int, int, int]]:
+        """(mode code, group, channel) of every baseline of ``slot``."""
+        codes = np.flatnonzero(self._chan_group[slot] >= 0).tolist()
+        return [
+            (code, int(self._chan_group[slot, code]), int(self._chan_index[slot, code]))
+            for code in codes
+        ]
+
     def add_asset(self, asset_id: str, baselines: BaselineSet) -> int:
         """Start monitoring ``asset_id`` against ``baselines``; return its slot.
 
@@ -763,35 +887,31 @@ class FleetMonitor:
                     f"asset {asset_id!r} mode {b.mode!r}: names give {len(self.names.inputs)} "
                     f"input(s), the baseline has {b.order.n_inputs}"
                 )
+        codes = [self._mode_code(b.mode) for b in baselines.baselines]
         if self._free:
             slot = self._free.pop()
             self._ids[slot] = asset_id
-            self._channels[slot] = []
-            self._by_mode[slot] = {}
         else:
             slot = len(self._ids)
             self._ids.append(asset_id)
-            self._channels.append([])
-            self._by_mode.append({})
             if slot >= self._last_mode.shape[0]:
-                size = _grown(slot + 1, self._last_mode.shape[0])
-                self._last_mode = np.resize(self._last_mode, size)
-                if self._quality is not None:
-                    self._quality.resize(size)
+                self._resize_slots(_grown(slot + 1, self._last_mode.shape[0]))
         self._slots[asset_id] = slot
+        self._used[slot] = True
+        self._chan_group[slot] = -1
+        self._chan_index[slot] = -1
+        self._first_mode[slot] = codes[0]
         self._last_mode[slot] = _NO_SAMPLE
         if self._quality is not None:
             self._quality.clear([slot])
-        for b in baselines.baselines:
+        for b, code in zip(baselines.baselines, codes, strict=True):
             key = (b.order, b.sample_period_s)
             g = self._group_of.get(key)
             if g is None:
                 g = self._group_of[key] = len(self._groups)
                 self._groups.append(_Group(b.order, b.sample_period_s, self.config))
-            code = self._mode_codes.setdefault(b.mode, len(self._mode_codes))
-            channel = _Channel(g, self._groups[g].add(slot, code, b))
-            self._channels[slot].append(channel)
-            self._by_mode[slot][code] = channel
+            self._chan_group[slot, code] = g
+            self._chan_index[slot, code] = self._groups[g].add(slot, code, b)
         return slot
 
     def remove_asset(self, asset_id: str) -> None:
@@ -803,17 +923,18 @@ class FleetMonitor:
             If the asset is not monitored.
         """
         slot = self._slots.pop(asset_id)
-        for channel in self._channels[slot]:
-            self._groups[channel.group].remove(channel.index)
+        for _, g, c in self._channels(slot):
+            self._groups[g].remove(c)
+        self._chan_group[slot] = -1
+        self._chan_index[slot] = -1
+        self._used[slot] = False
         self._ids[slot] = None
-        self._channels[slot] = []
-        self._by_mode[slot] = {}
         self._free.append(slot)
 
     def restart(self, slot: int) -> None:
         """Forget the past samples of every mode of ``slot`` (after a data gap)."""
-        for channel in self._channels[slot]:
-            self._groups[channel.group].restart(np.array([channel.index], dtype=np.intp))
+        for _, g, c in self._channels(slot):
+            self._groups[g].restart(np.array([c], dtype=np.intp))
 
     # -- rows ---------------------------------------------------------------
     def step(
@@ -848,25 +969,46 @@ class FleetMonitor:
         -------
         list of dict
             Alert records (schema ``arxwatch.alert/1``), in row order.
+
+        Raises
+        ------
+        ValueError
+            If the rows disagree in length, a slot holds no asset, or an
+            asset has two rows with the same sample time.
         """
         slot_a = np.asarray(slots, dtype=np.intp)
         time_a = np.asarray(time_s, dtype=np.float64)
         y_a = np.asarray(y, dtype=np.float64)
-        u_a = np.asarray(u, dtype=np.float64).reshape(slot_a.shape[0], len(self.names.inputs))
-        if not (time_a.shape == y_a.shape == slot_a.shape) or len(modes) != slot_a.shape[0]:
+        k = slot_a.shape[0]
+        u_a = np.asarray(u, dtype=np.float64).reshape(k, len(self.names.inputs))
+        if not (time_a.shape == y_a.shape == slot_a.shape) or len(modes) != k:
             raise ValueError(
                 f"rows disagree in length: slots {slot_a.shape}, time_s {time_a.shape}, "
                 f"y {y_a.shape}, u {u_a.shape}, modes {len(modes)}"
             )
-        records: list[tuple[int, int, dict[str, Any]]] = []
+        if k == 0:
+            return []
+        inside = (slot_a >= 0) & (slot_a < self._used.shape[0])
+        held = np.zeros(k, dtype=np.bool_)
+        held[inside] = self._used[slot_a[inside]]
+        if not held.all():
+            raise ValueError(f"slot {int(slot_a[~held][0])} holds no asset")
+        labels = set(modes)
+        if len(labels) == 1:
+            only = self._mode_codes.get(next(iter(labels)), _OTHER_MODE)
+            code_a = np.full(k, only, dtype=np.int16)
+        else:
+            get = self._mode_codes.get
+            code_a = np.array([get(m, _OTHER_MODE) for m in modes], dtype=np.int16)
         restart_a = np.asarray(restart, dtype=np.bool_)
+        records: list[tuple[int, int, dict[str, Any]]] = []
         # waves of rows with distinct sample times: each asset has one row per wave
         order = np.argsort(time_a, kind="stable")
         bounds = np.flatnonzero(np.diff(time_a[order])) + 1
         for wave in np.split(order, bounds):
-            if wave.shape[0] and np.unique(slot_a[wave]).shape[0] != wave.shape[0]:
+            if np.bincount(slot_a[wave]).max() > 1:
                 raise ValueError("an asset has two rows with the same sample time")
-            records += self._wave(wave, slot_a, time_a, y_a, u_a, modes, restart_a)
+            records += self._wave(wave, slot_a, time_a, y_a, u_a, code_a, restart_a)
         records.sort(key=lambda item: (item[0], item[1]))
         return [record for _, _, record in records]
 
@@ -877,40 +1019,44 @@ class FleetMonitor:
         time_s: Float,
         y: Float,
         u: Float,
-        modes: Sequence[str | None],
+        codes: NDArray[np.int16],
         restart: NDArray[np.bool_],
     ) -> list[tuple[int, int, dict[str, Any]]]:
-        per_group: dict[int, list[tuple[int, int]]] = {}
-        for row in rows.tolist():
-            slot = int(slots[row])
-            if self._ids[slot] is None:
-                raise ValueError(f"slot {slot} holds no asset")
-            if restart[row]:
-                self.restart(slot)
-            code = self._mode_codes.get(modes[row], _OTHER_MODE)
-            channel = self._by_mode[slot].get(code)
-            if code != self._last_mode[slot] and channel is not None:
-                self._groups[channel.group].restart(np.array([channel.index], dtype=np.intp))
-            self._last_mode[slot] = code
-            if channel is None:
-                self.skipped += 1
-                continue
-            per_group.setdefault(channel.group, []).append((row, channel.index))
+        s = slots[rows]
+        for slot in s[restart[rows]].tolist():
+            self.restart(slot)
+        code = codes[rows]
+        known = code >= 0
+        group = np.full(rows.shape[0], -1, dtype=np.intp)
+        index = np.full(rows.shape[0], -1, dtype=np.intp)
+        group[known] = self._chan_group[s[known], code[known]]
+        index[known] = self._chan_index[s[known], code[known]]
+        has = group >= 0
+        # a mode switch into a mode with a baseline restarts that mode's histories
+        switch = has & (code != self._last_mode[s])
+        self._last_mode[s] = code
+        self.skipped += int((~has).sum())
         out: list[tuple[int, int, dict[str, Any]]] = []
-        for g, members in per_group.items():
-            group = self._groups[g]
-            index = np.array([row for row, _ in members], dtype=np.intp)
-            ch = np.array([c for _, c in members], dtype=np.intp)
-            found = group.step(ch, time_s[index], y[index], u[index])
+        present = group[has]
+        if not present.shape[0]:
+            return []
+        low, high = int(present.min()), int(present.max())
+        for g in [low] if low == high else np.unique(present).tolist():
+            target = self._groups[g]
+            member = group == g
+            if (switch & member).any():
+                target.restart(index[switch & member])
+            ch, where = index[member], rows[member]
+            found = target.step(ch, time_s[where], y[where], u[where])
             inflate: set[int] = set()
             for pos, key, evidence, transition in found:
-                row, c = members[pos]
-                record = self._record(group, c, key, evidence, transition, float(time_s[row]))
+                c, row = int(ch[pos]), int(where[pos])
+                record = self._record(target, c, key, evidence, transition, float(time_s[row]))
                 out.append((row, key, record))
                 if transition.state == "raised" and evidence.detector in CHANGE_DETECTORS:
                     inflate.add(c)
             for c in inflate:
-                group.inflate(c, self.config.reset_factor)
+                target.inflate(c, self.config.reset_factor)
         return out
 
     def _record(
@@ -924,8 +1070,8 @@ class FleetMonitor:
         keys: Sequence[str] | None = None,
     ) -> dict[str, Any]:
         asset = self._ids[int(group.arrays["asset"][c])]
-        assert asset is not None  # a channel in use belongs to an asset
-        mode = self._mode_label(int(group.arrays["mode"][c]))
+        if asset is None:
+            raise AssertionError("a channel in use belongs to an asset")
         return build_record(
             asset,
             Transition(
@@ -940,14 +1086,8 @@ class FleetMonitor:
             math.sqrt(float(group.arrays["sigma2"][c])),
             group.baseline_values(c),
             group.current_values(c),
-            mode,
+            self._mode_labels[int(group.arrays["mode"][c])],
         )
-
-    def _mode_label(self, code: int) -> str | None:
-        for label, value in self._mode_codes.items():
-            if value == code:
-                return label
-        raise ValueError(f"unknown mode code {code}")
 
     # -- data quality -------------------------------------------------------
     def quality(
@@ -974,44 +1114,42 @@ class FleetMonitor:
             transition = bank.observe_one(slot, key, ev.statistic, ev.threshold, ev.alarm, time_s)
             if transition is None:
                 continue
-            channel = self._by_mode[slot].get(int(self._last_mode[slot]))
-            if channel is None:
-                channel = self._channels[slot][0]
-            group = self._groups[channel.group]
-            out.append(
-                self._record(group, channel.index, key, ev, transition, time_s, self.quality_keys)
-            )
+            # the records of the mode last seen, else of the first baseline (as AssetMonitor)
+            code = int(self._last_mode[slot])
+            if code < 0 or self._chan_group[slot, code] < 0:
+                code = int(self._first_mode[slot])
+            group = self._groups[int(self._chan_group[slot, code])]
+            channel = int(self._chan_index[slot, code])
+            out.append(self._record(group, channel, key, ev, transition, time_s, self.quality_keys))
         return out
 
-    def quality_watch(self, slot: int) -> dict[str, bool]:
-        """Return, per quality key, whether its episode is not quiet (alarms pending or raised).
+    def quality_busy(self, slot: int) -> NDArray[np.bool_]:
+        """Return, per quality key, whether its episode has alarms pending or is raised.
 
-        A caller that decodes samples in bulk only needs to build evidence
-        for evaluations that alarm or that belong to such an episode: a quiet
-        evaluation of a quiet episode changes nothing.
+        A quiet evaluation of a quiet episode changes nothing (see
+        :meth:`TrackerBank.observe_one`), so a caller only needs to build
+        evidence for evaluations that alarm or whose key is busy.
         """
         bank = self._quality
         if bank is None:
-            return {}
-        busy = bank.raised[slot] | (bank.alarms[slot] != 0)
-        return dict(zip(self.quality_keys, busy.tolist(), strict=True))
+            return np.zeros(0, dtype=np.bool_)
+        busy: NDArray[np.bool_] = bank.raised[slot] | (bank.alarms[slot] != 0)
+        return busy
 
     # -- read-out -----------------------------------------------------------
     def active(self, asset_id: str) -> dict[str, str]:
         """Return the raised alerts of ``asset_id`` (``mode:detector/signal`` -> severity)."""
         slot = self._slots[asset_id]
         active: dict[str, str] = {}
-        for channel in self._channels[slot]:
-            group = self._groups[channel.group]
-            mode = self._mode_label(int(group.arrays["mode"][channel.index]))
-            for key, severity in group.tracker.active(channel.index).items():
-                active[f"{mode}:{key}"] = severity
+        for code, g, c in self._channels(slot):
+            for key, severity in self._groups[g].tracker.active(c).items():
+                active[f"{self._mode_labels[code]}:{key}"] = severity
         if self._quality is not None:
             active.update({f"quality:{k}": v for k, v in self._quality.active(slot).items()})
         return active
 
     def readout(self, asset_id: str, mode: str | None = None) -> dict[str, float]:
-        """Latest live physical read-out of ``asset_id`` in ``mode``.
+        """Return the latest live physical read-out of ``asset_id`` in ``mode``.
 
         Raises
         ------
@@ -1020,12 +1158,21 @@ class FleetMonitor:
         """
         slot = self._slots[asset_id]
         code = self._mode_codes.get(mode)
-        channel = None if code is None else self._by_mode[slot].get(code)
-        if channel is None:
+        if code is None or self._chan_group[slot, code] < 0:
             raise KeyError(f"asset {asset_id!r} has no baseline for mode {mode!r}")
-        return self._groups[channel.group].current_values(channel.index)
+        group = self._groups[int(self._chan_group[slot, code])]
+        return group.current_values(int(self._chan_index[slot, code]))
 
     # -- checkpoints --------------------------------------------------------
+    def _slot_arrays(self) -> dict[str, NDArray[Any]]:
+        return {
+            "chan_group": self._chan_group,
+            "chan_index": self._chan_index,
+            "first_mode": self._first_mode,
+            "last_mode": self._last_mode,
+            "used": self._used,
+        }
+
     def to_state(self) -> dict[str, Any]:
         """Return the whole monitor as ``{"meta": JSON-safe dict, "arrays": {name: ndarray}}``.
 
@@ -1033,7 +1180,7 @@ class FleetMonitor:
         ``numpy.savez`` and read back with ``allow_pickle=False``.
         """
         groups = []
-        arrays: dict[str, NDArray[Any]] = {"last_mode": self._last_mode}
+        arrays: dict[str, NDArray[Any]] = dict(self._slot_arrays())
         for g, group in enumerate(self._groups):
             meta, group_arrays = group.to_state()
             groups.append(meta)
@@ -1044,11 +1191,10 @@ class FleetMonitor:
             "format": "arxwatch.fleet",
             "version": _STATE_VERSION,
             "quality_keys": list(self.quality_keys),
-            "modes": [[label, code] for label, code in self._mode_codes.items()],
+            "modes": list(self._mode_labels),
             "groups": groups,
             "ids": list(self._ids),
             "free": list(self._free),
-            "channels": [[[c.group, c.index] for c in chans] for chans in self._channels],
             "skipped": self.skipped,
         }
         return {"meta": meta, "arrays": arrays}
@@ -1090,31 +1236,35 @@ class FleetMonitor:
             )
             fresh._group_of[(order, period)] = g
             fresh._groups.append(group)
-        fresh._mode_codes = {label: int(code) for label, code in meta["modes"]}
+        fresh._mode_labels = [None if m is None else str(m) for m in meta["modes"]]
+        fresh._mode_codes = {label: code for code, label in enumerate(fresh._mode_labels)}
         fresh._ids = [None if i is None else str(i) for i in meta["ids"]]
         fresh._slots = {i: slot for slot, i in enumerate(fresh._ids) if i is not None}
         fresh._free = [int(v) for v in meta["free"]]
-        fresh._channels = [
-            [_Channel(int(g), int(c)) for g, c in chans] for chans in meta["channels"]
-        ]
-        fresh._by_mode = [
-            {int(fresh._groups[c.group].arrays["mode"][c.index]): c for c in chans}
-            for chans in fresh._channels
-        ]
-        fresh._last_mode = np.array(arrays["last_mode"], dtype=np.int16)
+        slots = np.asarray(arrays["last_mode"]).shape[0]
+        for name, array in self._slot_arrays().items():
+            saved = np.asarray(arrays[name])
+            expected = (slots, len(fresh._mode_labels)) if array.ndim == 2 else (slots,)
+            if saved.shape != expected or saved.dtype != array.dtype:
+                raise ValueError(
+                    f"saved monitor array {name!r} has shape {saved.shape} and dtype "
+                    f"{saved.dtype}; expected {expected} of {array.dtype}"
+                )
+            setattr(fresh, f"_{name}", saved.copy())
         if fresh._quality is not None:
             prefix = "quality."
             fresh._quality.load_arrays(
                 {k[len(prefix) :]: v for k, v in arrays.items() if k.startswith(prefix)}
             )
-            if fresh._quality.capacity != fresh._last_mode.shape[0]:
+            if fresh._quality.capacity != slots:
                 raise ValueError("saved quality state and slots disagree in size")
         fresh.skipped = int(meta["skipped"])
         self.__dict__.update(fresh.__dict__)
 
     def memory_bytes(self) -> int:
         """Bytes held by the arrays of every channel and slot."""
-        total = sum(g.memory_bytes() for g in self._groups) + self._last_mode.nbytes
+        total = sum(g.memory_bytes() for g in self._groups)
+        total += sum(a.nbytes for a in self._slot_arrays().values())
         if self._quality is not None:
             total += sum(a.nbytes for a in self._quality.arrays().values())
         return total
