@@ -1,0 +1,1048 @@
+"""Column-wise intake: alignment and data-quality checks of many assets of one class.
+
+Pure: samples, times and settings in, rows and evidence out; no clock, no I/O.
+:class:`IntakeBank` holds every asset of one asset class in numpy arrays
+indexed by an asset *slot*, so that one process carries thousands of assets
+(a site's VAV boxes) at a few hundred bytes each. It reproduces two readable
+reference implementations, which stay the statement of the rules:
+:class:`~arxwatch.daemon.align.Aligner` (one per asset) for the rows and
+:class:`~arxwatch.estimators.detect.quality.SignalQuality` (one per checked
+signal) for the data-quality evidence. The tests drive both with the same
+calls and compare.
+
+Grid cells
+----------
+The *cell* of a sample at time ``s`` is the index ``k`` of the first grid
+point at or after it, ``(k - 1) * T < s <= k * T`` for the period ``T``: the
+first grid point it can fill. Only the latest sample of a cell can ever fill
+a grid point. Proof: a grid point ``t_j`` takes the latest sample at or before
+it; every sample of cell ``k`` is at or before ``t_k``, so for ``j >= k`` an
+older sample of the cell is never the latest one, and for ``j < k`` no sample
+of the cell qualifies. Nor does an older sample of the cell decide whether
+``t_j`` has a value at all: if it is at most ``staleness_s`` old at ``t_j``,
+so is the newer one. So the bank keeps, per (asset, signal), at most ``cells``
+samples, the latest of distinct cells. Of the cells at or before the last
+closed grid point only the newest one matters (it *carries* the last value
+into the grid points still open), and only while it is fresh for the next
+grid point.
+
+The *open cells* of a signal are the cells it holds a sample for that can
+still fill a grid point not yet closed: every cell after the last closed grid
+point whose latest sample can fill some grid point, plus the carried cell
+while it is fresh for the next grid point. A signal sampled once a period,
+with :meth:`IntakeBank.advance` called at least once a period, holds at most
+three: the carried value, the cell of the grid point about to close and,
+when a sample just after that grid point comes before it is closed, the
+next cell. As long as no signal of an asset has more than
+``cells`` open cells at once, the bank emits exactly the rows of an
+``Aligner``. When a sample would open one more, the oldest of the open cells
+(possibly the new one) is dropped and counted as ``overflow``; the rows may
+then differ from the reference.
+
+Differences from the references
+-------------------------------
+* **Duplicates** are recognised with bounded memory: a sample whose time
+  equals a held sample of its signal, or the newest accepted one, is
+  ``"duplicate"``. A redelivered sample at or before the last closed grid
+  point is ``"late"`` (the reference remembers up to ``dedupe_keys`` times
+  and calls those duplicates; ``dedupe_keys`` is not used here). A sample
+  older than the held sample of its own cell is ``"superseded"``: it could
+  never fill a grid point, whether it is new (the reference says
+  ``"accepted"``) or redelivered (``"duplicate"``). With ``staleness_s``
+  shorter than the period, a sample that can fill no grid point at all is
+  accepted (and quality-checked) but not held; redelivered, it is accepted
+  again unless it is the newest of its signal. In every case rows, evidence
+  and all state but the counters are unchanged, so redelivery is idempotent.
+* **Mode labels** are stored as int16 codes of a per-bank table of at most
+  ``max_mode_labels`` labels (numbers formatted as the reference does); a
+  sample that would add one more is refused as ``"mode_label_limit"`` (the
+  reference would use it). Codes are never reused, also after
+  :meth:`IntakeBank.remove_asset`.
+* **Times** further than ``2**50`` sample periods from the epoch are refused
+  as ``"time_out_of_range"`` (beyond any real clock): grid indices stay
+  exact integers in float64.
+* **Counters**: ``unknown_signal`` stays 0 since signals are passed by index
+  (an index outside the class raises); ``duplicate`` is checkpointed with the
+  rest; ``superseded``, ``mode_label_limit``, ``time_out_of_range`` and
+  ``overflow`` are new.
+
+Data quality
+------------
+For each output or input signal with a :class:`QualityConfig`, every accepted
+sample whose time is not before that signal's previous quality sample is
+checked exactly as :meth:`SignalQuality.update` does (gap, flat run, range);
+out-of-order samples are aligned but not checked. Since every accepted sample
+at or after the previous quality sample is checked, the previous quality
+sample is the newest accepted one, so the bank keeps one time per signal for
+both uses. :meth:`IntakeBank.stale` is :meth:`SignalQuality.check` for every
+asset and checked signal at once.
+"""
+
+from __future__ import annotations
+
+import math
+import operator
+from array import array
+from collections.abc import Mapping
+from dataclasses import dataclass
+from typing import Any, Literal, get_args
+
+import numpy as np
+from numpy.typing import NDArray
+
+from arxwatch.daemon.align import AddOutcome, AlignConfig, _mode_label
+from arxwatch.estimators.detect.evidence import Evidence
+from arxwatch.estimators.detect.quality import QualityConfig
+
+__all__ = ["IntakeBank", "IntakeOutcome", "RowBatch"]
+
+IntakeOutcome = Literal[AddOutcome, "superseded", "mode_label_limit", "time_out_of_range"]
+"""What :meth:`IntakeBank.add` did with a sample (closed set).
+
+The values of :data:`~arxwatch.daemon.align.AddOutcome` keep their meaning
+(``"unknown_signal"`` is never returned: signals are indices), and:
+
+``"superseded"``
+    Older than the sample held for the same grid cell; it could never fill
+    a grid point. Dropped.
+``"mode_label_limit"``
+    A mode label beyond the bank's ``max_mode_labels`` distinct labels.
+    Dropped.
+``"time_out_of_range"``
+    A time more than ``2**50`` sample periods from the epoch. Dropped.
+"""
+
+_FORMAT = "arxwatch.intake"
+_STATE_VERSION = 1
+_OUTCOMES: tuple[IntakeOutcome, ...] = get_args(IntakeOutcome)
+#: Grid indices stay within +-2**50 (exact in float64, with room for corrections).
+_GRID_LIMIT = 2.0**50
+#: ``last_index`` before any grid point was closed.
+_OPEN = np.iinfo(np.int64).min
+#: ``first_index`` before any sample was accepted.
+_EMPTY = np.iinfo(np.int64).max
+_MAX_LABELS = int(np.iinfo(np.int16).max)
+
+# State arrays: name -> (dtype, axes after the slot axis, value of an empty slot).
+# Axes: "signal" (every signal), "cell", "quality" (checked signals), "count" (counters).
+_LAYOUT: dict[str, tuple[type[np.generic], tuple[str, ...], float | int | bool]] = {
+    "in_use": (np.bool_, (), False),
+    "last_index": (np.int64, (), int(_OPEN)),
+    "first_index": (np.int64, (), int(_EMPTY)),
+    "last_row_s": (np.float64, (), math.nan),
+    "time": (np.float64, ("signal", "cell"), math.nan),
+    "value": (np.float64, ("signal", "cell"), math.nan),
+    "newest": (np.float64, ("signal",), math.nan),
+    "counts": (np.int64, ("count",), 0),
+    "first_check_s": (np.float64, ("quality",), math.nan),
+    "run_start_s": (np.float64, ("quality",), 0.0),
+    "run_min": (np.float64, ("quality",), 0.0),
+    "run_max": (np.float64, ("quality",), 0.0),
+    "has_moved": (np.bool_, ("quality",), False),
+    "gap_count": (np.int64, ("quality",), 0),
+    "gap_total_s": (np.float64, ("quality",), 0.0),
+    "stale_alarm": (np.bool_, ("quality",), False),
+}
+
+
+@dataclass(frozen=True, eq=False)
+class RowBatch:
+    """Rows closed by one :meth:`IntakeBank.advance`, ordered by (time, slot).
+
+    Attributes
+    ----------
+    slots : ndarray of intp, shape (k,)
+        Asset slot of each row.
+    time_s : ndarray of float64, shape (k,)
+        Grid time ``index * sample_period_s``, epoch seconds.
+    y : ndarray of float64, shape (k,)
+        Output value held at the grid point.
+    u : ndarray of float64, shape (k, n_inputs)
+        Input values, in the configured order.
+    mode : ndarray of int16, shape (k,)
+        Mode label code (:meth:`IntakeBank.mode_label` gives the text), -1
+        when the class has no mode signal.
+    restart : ndarray of bool, shape (k,)
+        As :attr:`arxwatch.daemon.align.Row.restart`: more than
+        ``gap_restart_s`` since the asset's previous row.
+    """
+
+    slots: NDArray[np.intp]
+    time_s: NDArray[np.float64]
+    y: NDArray[np.float64]
+    u: NDArray[np.float64]
+    mode: NDArray[np.int16]
+    restart: NDArray[np.bool_]
+
+    def __len__(self) -> int:
+        return int(self.slots.shape[0])
+
+
+# A quality check waiting for take_quality() is _CHECK_FIELDS numbers in a flat array (no
+# Python object per sample): slot, checked-signal index, value, interval, interval in
+# periods, gap (0/1), flat-run length, flat-run range, has moved (0/1), gap count, gap total.
+_CHECK_FIELDS = 11
+
+
+def _first_index(time_s: float, period: float) -> int:
+    """Smallest k with ``k * period >= time_s`` (as ``Aligner``, exact in floating point)."""
+    k = math.ceil(time_s / period)
+    while (k - 1) * period >= time_s:
+        k -= 1
+    while k * period < time_s:
+        k += 1
+    return k
+
+
+def _last_index(time_s: float, period: float) -> int:
+    """Largest k with ``k * period <= time_s`` (as ``Aligner``, exact in floating point)."""
+    k = math.floor(time_s / period)
+    while (k + 1) * period <= time_s:
+        k += 1
+    while k * period > time_s:
+        k -= 1
+    return k
+
+
+def _first_indices(times: NDArray[np.float64], period: float) -> NDArray[np.int64]:
+    """:func:`_first_index` element-wise (finite times within the grid limit)."""
+    k = np.ceil(times / period)
+    while (down := (k - 1.0) * period >= times).any():
+        k -= down
+    while (up := k * period < times).any():
+        k += up
+    return k.astype(np.int64)
+
+
+def _last_indices(times: NDArray[np.float64], period: float) -> NDArray[np.int64]:
+    """:func:`_last_index` element-wise (finite times within the grid limit)."""
+    k = np.floor(times / period)
+    while (up := (k + 1.0) * period <= times).any():
+        k += up
+    while (down := k * period > times).any():
+        k -= down
+    return k.astype(np.int64)
+
+
+def _index_argument(name: str, value: object) -> int:
+    if isinstance(value, bool):
+        raise TypeError(f"{name} must be an integer index, got {value!r}")
+    try:
+        return operator.index(value)  # type: ignore[arg-type]
+    except TypeError:
+        raise TypeError(f"{name} must be an integer index, got {value!r}") from None
+
+
+class IntakeBank:
+    """Alignment and data-quality state of every asset of one class, in arrays.
+
+    Parameters
+    ----------
+    config : AlignConfig
+        Signals and timing shared by the assets (``dedupe_keys`` is not used;
+        see the module notes).
+    quality : mapping of str to QualityConfig
+        Data-quality settings per output or input signal name; signals not
+        named are not checked. May be empty. Checked signals keep the order
+        of ``config.signals``.
+    capacity : int, optional
+        Asset slots allocated at first; :meth:`add_asset` doubles them when
+        full. Default 64.
+    cells : int, optional
+        Samples held per (asset, signal): the latest of distinct grid cells,
+        see the module notes. Default 4; at least 2.
+    max_mode_labels : int, optional
+        Distinct mode labels the bank codes, 1 to 32767. Default 64.
+
+    Attributes
+    ----------
+    config : AlignConfig
+        As given.
+    signals : tuple of str
+        ``config.signals``: the meaning of the ``signal`` index of :meth:`add`.
+    quality_signals : tuple of str
+        The checked signals, in signal order.
+    cells, max_mode_labels : int
+        As given.
+
+    Raises
+    ------
+    ValueError
+        If a setting is out of range, a quality key is not an output or input
+        signal, or ``staleness_s`` or ``lateness_s`` exceed ``2**50`` periods.
+    TypeError
+        If a quality value is not a :class:`QualityConfig`.
+
+    Examples
+    --------
+    >>> bank = IntakeBank(AlignConfig(sample_period_s=60.0, output="sat", inputs=("valve",)), {})
+    >>> slot = bank.add_asset()
+    >>> bank.add(slot, 0, 1_767_225_610.0, 13.2), bank.add(slot, 1, 1_767_225_595.0, 40.0)
+    ('accepted', 'accepted')
+    >>> bank.add(slot, 0, 1_767_225_610.0, 13.2)
+    'duplicate'
+    >>> batch = bank.advance(1_767_225_700.0)
+    >>> batch.slots.tolist(), batch.time_s.tolist(), batch.y.tolist(), batch.u.tolist()
+    ([0], [1767225660.0], [13.2], [[40.0]])
+    >>> bank.add(slot, 1, 1_767_225_650.0, 41.0)
+    'late'
+    """
+
+    def __init__(
+        self,
+        config: AlignConfig,
+        quality: Mapping[str, QualityConfig],
+        *,
+        capacity: int = 64,
+        cells: int = 4,
+        max_mode_labels: int = 64,
+    ) -> None:
+        for name, value, low, high in (
+            ("capacity", capacity, 1, None),
+            ("cells", cells, 2, None),
+            ("max_mode_labels", max_mode_labels, 1, _MAX_LABELS),
+        ):
+            if (
+                isinstance(value, bool)
+                or not isinstance(value, int)
+                or value < low
+                or (high is not None and value > high)
+            ):
+                expected = f">= {low}" if high is None else f"from {low} to {high}"
+                raise ValueError(f"{name} must be an integer {expected}, got {value!r}")
+        period = config.sample_period_s
+        for name in ("staleness_s", "lateness_s"):
+            if getattr(config, name) > _GRID_LIMIT * period:
+                raise ValueError(
+                    f"config.{name} must be at most 2**50 sample periods, "
+                    f"got {getattr(config, name)!r}"
+                )
+        numeric = (config.output, *config.inputs)
+        for name, setting in quality.items():
+            if name not in numeric:
+                raise ValueError(
+                    f"quality key {name!r} is not an output or input signal; "
+                    f"expected one of {list(numeric)}"
+                )
+            if not isinstance(setting, QualityConfig):
+                raise TypeError(
+                    f"quality[{name!r}] must be a QualityConfig, got {type(setting).__name__}"
+                )
+        self.config = config
+        self.cells = cells
+        self.max_mode_labels = max_mode_labels
+        self.signals = config.signals
+        self.quality_signals = tuple(name for name in numeric if name in quality)
+        self._quality_configs = tuple(quality[name] for name in self.quality_signals)
+        self._quality_of = [
+            self.quality_signals.index(name) if name in quality else -1 for name in self.signals
+        ]
+        self._quality_columns = np.array(
+            [self.signals.index(name) for name in self.quality_signals], dtype=np.intp
+        )
+        self._stale_after = np.array(
+            [q.stale_after_s for q in self._quality_configs], dtype=np.float64
+        )
+        self._mode_index = len(self.signals) - 1 if config.mode is not None else -1
+        self._count_keys = (
+            *(o for o in _OUTCOMES if o != "unknown_signal"),
+            "rows",
+            "incomplete",
+            *(f"incomplete_{name}" for name in self.signals),
+            "overflow",
+        )
+        self._column = {key: i for i, key in enumerate(self._count_keys)}
+        self._n_counts = len(self._count_keys)
+        self._axes = {
+            "signal": len(self.signals),
+            "cell": cells,
+            "quality": len(self.quality_signals),
+            "count": len(self._count_keys),
+        }
+        self._labels: list[str] = []
+        self._codes: dict[str, int] = {}
+        self._pending = array("d")
+        self._arrays: dict[str, NDArray[Any]] = {}
+        # Any: typeshed types memoryview items as bytes or int only; these hold floats and bools.
+        self._flat: dict[str, Any] = {}
+        self._set_arrays(self._allocate(capacity))
+
+    # ---------------------------------------------------------------- slots
+
+    def _allocate(self, capacity: int) -> dict[str, NDArray[Any]]:
+        return {
+            name: np.full(self._shape(capacity, axes), fill, dtype=dtype)
+            for name, (dtype, axes, fill) in _LAYOUT.items()
+        }
+
+    def _shape(self, capacity: int, axes: tuple[str, ...]) -> tuple[int, ...]:
+        return (capacity, *(self._axes[axis] for axis in axes))
+
+    def _set_arrays(self, arrays: dict[str, NDArray[Any]]) -> None:
+        """Install state arrays, with flat memoryviews of them for :meth:`add`.
+
+        One sample touches a few scalars; a flat memoryview reads and writes
+        them as Python numbers several times faster than numpy indexing.
+        """
+        self._arrays = arrays
+        self._flat = {name: array.reshape(-1).data for name, array in arrays.items()}
+        self._capacity = int(arrays["in_use"].shape[0])
+
+    @property
+    def capacity(self) -> int:
+        """Asset slots allocated."""
+        return self._capacity
+
+    @property
+    def n_assets(self) -> int:
+        """Slots in use."""
+        return int(np.count_nonzero(self._arrays["in_use"]))
+
+    def add_asset(self) -> int:
+        """Take the lowest free slot, doubling the arrays when none is free.
+
+        Returns
+        -------
+        int
+            The slot, with a fresh state (as a new ``Aligner`` and new
+            ``SignalQuality`` checkers).
+        """
+        in_use = self._arrays["in_use"]
+        slot = int(np.argmin(in_use))
+        if in_use[slot]:
+            old = self.capacity
+            grown = self._allocate(2 * old)
+            for name, array in self._arrays.items():
+                grown[name][:old] = array
+            self._set_arrays(grown)
+            slot = old
+        self._arrays["in_use"][slot] = True
+        return slot
+
+    def remove_asset(self, slot: int) -> None:
+        """Free ``slot`` for reuse; its state and untaken evidence are cleared.
+
+        Mode labels stay coded.
+
+        Raises
+        ------
+        IndexError, ValueError, TypeError
+            As :meth:`add` for a bad slot.
+        """
+        slot = self._slot(slot)
+        for name, (_, _, fill) in _LAYOUT.items():
+            self._arrays[name][slot] = fill
+        pending = self._pending.tolist()
+        self._pending = array("d")
+        for i in range(0, len(pending), _CHECK_FIELDS):
+            if pending[i] != slot:
+                self._pending.extend(pending[i : i + _CHECK_FIELDS])
+
+    def _slot(self, slot: int) -> int:
+        index = _index_argument("slot", slot)
+        if not 0 <= index < self.capacity:
+            raise IndexError(f"slot {index} is out of range: the bank has {self.capacity} slots")
+        if not self._arrays["in_use"][index]:
+            raise ValueError(f"slot {index} is not in use (never added, or removed)")
+        return index
+
+    # ------------------------------------------------------------------ add
+
+    def add(self, slot: int, signal: int, time_s: float, value: float | str) -> IntakeOutcome:
+        """Take one sample of one asset; never raises for bad data, says what it did.
+
+        Parameters
+        ----------
+        slot : int
+            Asset slot from :meth:`add_asset`.
+        signal : int
+            Index into ``config.signals`` (output, inputs, then mode).
+        time_s : float
+            Sample time, epoch seconds.
+        value : float or str
+            Number for the output and inputs; number or text label for the
+            mode signal.
+
+        Returns
+        -------
+        IntakeOutcome
+            What happened to the sample; each outcome is counted, see
+            :meth:`counts`. An accepted sample of a checked signal at or after
+            its previous quality sample leaves evidence for
+            :meth:`take_quality`.
+
+        Raises
+        ------
+        IndexError
+            If ``slot`` or ``signal`` is out of range.
+        ValueError
+            If ``slot`` is not in use.
+        TypeError
+            If ``slot`` or ``signal`` is not an integer.
+        """
+        if (
+            type(slot) is not int
+            or not 0 <= slot < self._capacity
+            or not self._flat["in_use"][slot]
+        ):
+            slot = self._slot(slot)  # raises, or takes a numpy integer
+        if type(signal) is not int or not 0 <= signal < len(self.signals):
+            signal = self._signal(signal)
+        outcome = self._take(slot, signal, time_s, value)
+        self._flat["counts"][slot * self._n_counts + self._column[outcome]] += 1
+        return outcome
+
+    def _signal(self, signal: int) -> int:
+        index = _index_argument("signal", signal)
+        if not 0 <= index < len(self.signals):
+            raise IndexError(
+                f"signal {index} is out of range: the class has {len(self.signals)} signals "
+                f"{list(self.signals)}"
+            )
+        return index
+
+    def _take(self, slot: int, signal: int, time_s: float, value: float | str) -> IntakeOutcome:
+        label: str | None = None
+        number = math.nan
+        if signal == self._mode_index:
+            if not isinstance(value, str) and not math.isfinite(value):
+                return "non_finite"
+            label = _mode_label(value)
+        else:
+            if isinstance(value, str):
+                return "not_numeric"
+            if not math.isfinite(value):
+                return "non_finite"
+            number = float(value)
+        if not math.isfinite(time_s):
+            return "non_finite"
+        time_s = float(time_s)
+        period = self.config.sample_period_s
+        if abs(time_s) > _GRID_LIMIT * period:
+            return "time_out_of_range"
+        flat = self._flat
+        pair = slot * len(self.signals) + signal  # flat index of (slot, signal)
+        newest: float = flat["newest"][pair]
+        first_cell = pair * self.cells
+        held: list[float] = flat["time"][first_cell : first_cell + self.cells].tolist()
+        if time_s == newest or time_s in held:
+            return "duplicate"
+        cell = _first_index(time_s, period)
+        last: int = flat["last_index"][slot]
+        if last != _OPEN and cell <= last:
+            return "late"
+        top = cell * period
+        # Held only if it can fill a grid point: its own (t_cell) within staleness.
+        if top <= time_s + self.config.staleness_s:
+            bottom = (cell - 1) * period
+            same = free = -1  # held sample of the same cell; a free (NaN) entry
+            for j, t in enumerate(held):
+                if bottom < t <= top:
+                    same = j
+                elif t != t:
+                    free = j
+            if same >= 0 and held[same] > time_s:
+                return "superseded"
+            if label is not None:
+                code = self._codes.get(label)
+                if code is None:
+                    if len(self._labels) >= self.max_mode_labels:
+                        return "mode_label_limit"
+                    code = self._codes[label] = len(self._labels)
+                    self._labels.append(label)
+                number = float(code)
+            target = same if same >= 0 else free
+            if target < 0:
+                # More open cells than ``cells``: the oldest goes, possibly the new one.
+                flat["counts"][slot * self._n_counts + self._column["overflow"]] += 1
+                oldest = min(range(self.cells), key=held.__getitem__)
+                target = oldest if held[oldest] < time_s else -1
+            if target >= 0:
+                flat["time"][first_cell + target] = time_s
+                flat["value"][first_cell + target] = number
+        if last == _OPEN and cell < flat["first_index"][slot]:
+            flat["first_index"][slot] = cell
+        if not time_s < newest:  # the newest accepted time (NaN before the first)
+            flat["newest"][pair] = time_s
+            check = self._quality_of[signal]
+            if check >= 0:
+                self._check_quality(
+                    slot * len(self.quality_signals) + check, time_s, number, newest
+                )
+        return "accepted"
+
+    def _check_quality(self, pair: int, time_s: float, value: float, last: float) -> None:
+        """:meth:`SignalQuality.update` on the arrays: same operations, same order.
+
+        ``pair`` is the flat index of (slot, checked signal).
+        """
+        slot, q = divmod(pair, len(self.quality_signals))
+        config = self._quality_configs[q]
+        flat = self._flat
+        first = last != last  # NaN: no sample before
+        interval = 0.0 if first else time_s - last
+        periods = interval / config.expected_period_s
+        gap = periods > config.gap_factor
+        gap_count: int = flat["gap_count"][pair]
+        gap_total: float = flat["gap_total_s"][pair]
+        if gap:
+            gap_count += 1
+            gap_total += interval
+            flat["gap_count"][pair] = gap_count
+            flat["gap_total_s"][pair] = gap_total
+        moved: bool = flat["has_moved"][pair]
+        if first:
+            run_start, low, high = time_s, value, value
+        else:
+            run_start = flat["run_start_s"][pair]
+            low = min(flat["run_min"][pair], value)
+            high = max(flat["run_max"][pair], value)
+            if high - low > config.stuck_epsilon:
+                moved = flat["has_moved"][pair] = True
+                run_start, low, high = time_s, value, value
+        flat["run_start_s"][pair] = run_start
+        flat["run_min"][pair] = low
+        flat["run_max"][pair] = high
+        self._pending.extend(
+            (slot, q, value, interval, periods, gap, time_s - run_start, high - low, moved)
+        )
+        self._pending.extend((gap_count, gap_total))
+
+    def take_quality(self) -> list[tuple[int, Evidence]]:
+        """Return the data-quality evidence of the samples added since the last take.
+
+        Returns
+        -------
+        list of (int, Evidence)
+            Slot and evidence, in the order of the :meth:`add` calls; for each
+            checked sample the three :class:`Evidence` of
+            :meth:`SignalQuality.update` (``out_of_range``, ``stuck``,
+            ``gap``), with the same fields and values. Untaken evidence is not
+            part of :meth:`to_state`: take it before a checkpoint.
+        """
+        out: list[tuple[int, Evidence]] = []
+        pending = self._pending.tolist()
+        for i in range(0, len(pending), _CHECK_FIELDS):
+            slot_f, q_f, value, interval, periods, gap_f, flat_s, spread, moved_f, count, total = (
+                pending[i : i + _CHECK_FIELDS]
+            )
+            slot, q, gap, moved = int(slot_f), int(q_f), gap_f == 1.0, moved_f == 1.0
+            config = self._quality_configs[q]
+            signal = self.quality_signals[q]
+            if value < config.minimum:
+                side, limit, outside = "low", config.minimum, True
+            elif value > config.maximum:
+                side, limit, outside = "high", config.maximum, True
+            else:
+                side, limit, outside = "", config.maximum, False
+            range_values = {"value": value}
+            if math.isfinite(config.minimum):
+                range_values["minimum"] = config.minimum
+            if math.isfinite(config.maximum):
+                range_values["maximum"] = config.maximum
+            out += [
+                (
+                    slot,
+                    Evidence(
+                        detector="out_of_range",
+                        family="data_quality",
+                        statistic=value,
+                        threshold=limit,
+                        alarm=outside,
+                        signal=signal,
+                        values=range_values,
+                        detail=side,
+                    ),
+                ),
+                (
+                    slot,
+                    Evidence(
+                        detector="stuck",
+                        family="data_quality",
+                        statistic=flat_s,
+                        threshold=config.stuck_window_s,
+                        alarm=moved and flat_s >= config.stuck_window_s,
+                        signal=signal,
+                        values={"flat_s": flat_s, "range": spread},
+                        detail="stuck",
+                    ),
+                ),
+                (
+                    slot,
+                    Evidence(
+                        detector="gap",
+                        family="data_quality",
+                        statistic=periods,
+                        threshold=config.gap_factor,
+                        alarm=gap,
+                        signal=signal,
+                        values={
+                            "interval_s": interval,
+                            "gap_count": count,
+                            "gap_total_s": total,
+                        },
+                        detail="gap",
+                    ),
+                ),
+            ]
+        self._pending = array("d")
+        return out
+
+    # -------------------------------------------------------------- advance
+
+    def advance(self, now_s: float) -> RowBatch:
+        """Close every grid point up to ``now_s - lateness_s`` for every asset at once.
+
+        Per asset exactly as :meth:`Aligner.advance`: the first grid point
+        considered is the one after the last closed point or, before any was
+        closed, the first at or after the earliest accepted sample; an asset
+        without either is left alone.
+
+        Parameters
+        ----------
+        now_s : float
+            Current time, epoch seconds.
+
+        Returns
+        -------
+        RowBatch
+            The rows of the newly closed complete grid points, ordered by
+            (time, slot).
+
+        Raises
+        ------
+        ValueError
+            If ``now_s`` is not finite or more than ``2**50`` sample periods
+            from the epoch.
+        """
+        period = self.config.sample_period_s
+        if not math.isfinite(now_s) or abs(now_s) > _GRID_LIMIT * period:
+            raise ValueError(
+                f"now_s must be a finite time within 2**50 sample periods of the epoch, "
+                f"got {now_s!r}"
+            )
+        end = _last_index(now_s - self.config.lateness_s, period)
+        arrays = self._arrays
+        last = arrays["last_index"]
+        start_all = np.where(last != _OPEN, last + 1, arrays["first_index"])
+        due = np.flatnonzero(arrays["in_use"] & (start_all <= end))
+        if due.size == 0:
+            return self._rows(
+                np.empty(0, np.intp), np.empty(0, np.float64), np.empty((0, len(self.signals)))
+            )
+        start = start_all[due]
+        n_signals = len(self.signals)
+
+        # Held samples per (asset, signal) in time order; empty cells (NaN) last.
+        times = arrays["time"][due]
+        order = np.argsort(times, axis=2)
+        times = np.take_along_axis(times, order, axis=2)
+        values = np.take_along_axis(arrays["value"][due], order, axis=2)
+        held = ~np.isnan(times)
+        cell = np.full(times.shape, _EMPTY, dtype=np.int64)
+        fresh_to = np.full(times.shape, _OPEN, dtype=np.int64)
+        cell[held] = _first_indices(times[held], period)
+        fresh_to[held] = _last_indices(times[held] + self.config.staleness_s, period)
+
+        # Sample j of a signal is the latest at grid points cell[j] .. cell[j+1]-1 and
+        # fills them up to fresh_to[j]: a piece [lo, hi] of that signal's available points.
+        next_cell = np.full(times.shape, _EMPTY, dtype=np.int64)
+        next_cell[..., :-1] = cell[..., 1:]
+        lo = np.maximum(cell, start[:, None, None])
+        hi = np.minimum(np.minimum(fresh_to, next_cell - 1), end)
+        piece = held & (lo <= hi)
+        lo, hi = np.where(piece, lo, 0), np.where(piece, hi, -1)  # no piece: empty, no overflow
+        covered = (hi - lo + 1).sum(axis=2)
+        span = end - start + 1
+
+        # Complete grid points: where the pieces of all signals overlap. Sweep the
+        # piece bounds of each asset; between bounds, coverage == n_signals means complete.
+        n = due.size
+        bounds = np.concatenate([lo.reshape(n, -1), (hi + 1).reshape(n, -1)], axis=1)
+        flat = piece.reshape(n, -1)
+        step = np.concatenate([flat, flat], axis=1).astype(np.int64)
+        step[:, flat.shape[1] :] *= -1
+        bounds = np.where(step != 0, bounds, end + 2)
+        sweep = np.argsort(bounds, axis=1, kind="stable")
+        bounds = np.take_along_axis(bounds, sweep, axis=1)
+        coverage = np.cumsum(np.take_along_axis(step, sweep, axis=1), axis=1)
+        length = np.diff(bounds, axis=1)
+        asset, at = np.nonzero((coverage[:, :-1] == n_signals) & (length > 0))
+        first = bounds[asset, at]
+        count = length[asset, at]
+
+        # Values of each complete stretch: per signal, the latest held sample at its start.
+        latest = (held[asset] & (cell[asset] <= first[:, None, None])).sum(axis=2) - 1
+        stretch_values = np.take_along_axis(values[asset], latest[..., None], axis=2)[..., 0]
+        total = int(count.sum())
+        offset = np.arange(total) - np.repeat(np.cumsum(count) - count, count)
+        index = np.repeat(first, count) + offset
+        row_asset = np.repeat(asset, count)
+        slots = due[row_asset]
+        time_s = index.astype(np.float64) * period
+        batch = self._rows(slots, time_s, np.repeat(stretch_values, count, axis=0))
+
+        rows = np.zeros(n, dtype=np.int64)
+        np.add.at(rows, asset, count)
+        counts = arrays["counts"]
+        counts[due, self._column["rows"]] += rows
+        counts[due, self._column["incomplete"]] += span - rows
+        missing = [self._column[f"incomplete_{name}"] for name in self.signals]
+        counts[due[:, None], missing] += span[:, None] - covered
+        last[due] = end
+
+        # Drop what no grid point after ``end`` can use: of the cells at or before it,
+        # all but the newest, and that one too once stale.
+        closed = held & (cell <= end)
+        newest_closed = np.where(closed, times, -np.inf).max(axis=2, keepdims=True)
+        keep = held & (~closed | ((times == newest_closed) & (fresh_to > end)))
+        arrays["time"][due] = np.where(keep, times, np.nan)
+        arrays["value"][due] = np.where(keep, values, np.nan)
+        return batch
+
+    def _rows(
+        self,
+        slots: NDArray[np.intp],
+        time_s: NDArray[np.float64],
+        values: NDArray[np.float64],
+    ) -> RowBatch:
+        """Flag restarts, update each asset's last row time and order rows by (time, slot).
+
+        ``slots``/``time_s``/``values`` come grouped by asset, each in time order.
+        """
+        last_row = self._arrays["last_row_s"]
+        previous = np.empty_like(time_s)
+        previous[1:] = time_s[:-1]
+        first_of_asset = np.ones(slots.shape, dtype=np.bool_)
+        first_of_asset[1:] = slots[1:] != slots[:-1]
+        previous[first_of_asset] = last_row[slots[first_of_asset]]
+        restart = time_s - previous > self.config.gap_restart_s  # False after NaN
+        last_of_asset = np.ones(slots.shape, dtype=np.bool_)
+        last_of_asset[:-1] = first_of_asset[1:]
+        last_row[slots[last_of_asset]] = time_s[last_of_asset]
+        order = np.lexsort((slots, time_s))
+        n_inputs = len(self.config.inputs)
+        if self._mode_index >= 0:
+            mode = values[order, self._mode_index].astype(np.int16)
+        else:
+            mode = np.full(order.shape, -1, dtype=np.int16)
+        return RowBatch(
+            slots=slots[order].astype(np.intp),
+            time_s=time_s[order],
+            y=values[order, 0],
+            u=values[order, 1 : 1 + n_inputs],
+            mode=mode,
+            restart=restart[order],
+        )
+
+    # ---------------------------------------------------------------- stale
+
+    def stale(self, now_s: float) -> list[tuple[int, Evidence]]:
+        """Stale check (:meth:`SignalQuality.check`) of every asset and checked signal.
+
+        All pairs are evaluated (and, before their first sample, start their
+        age count here), but :class:`Evidence` is built only for the pairs
+        that alarm now and for those whose previous evaluation alarmed, so
+        that the caller sees the evaluation that ends an alarm. A pair quiet
+        now and at its previous evaluation gives nothing.
+
+        Parameters
+        ----------
+        now_s : float
+            Current time, epoch seconds.
+
+        Returns
+        -------
+        list of (int, Evidence)
+            Slot and ``stale`` evidence, by slot then signal order.
+
+        Raises
+        ------
+        ValueError
+            If ``now_s`` is not finite.
+        """
+        if not math.isfinite(now_s):
+            raise ValueError(f"now_s must be finite, got {now_s!r}")
+        arrays = self._arrays
+        slots = np.flatnonzero(arrays["in_use"])
+        if slots.size == 0 or not self.quality_signals:
+            return []
+        last = arrays["newest"][slots][:, self._quality_columns]
+        no_sample = np.isnan(last)
+        first_check = arrays["first_check_s"][slots]
+        first_check = np.where(no_sample & np.isnan(first_check), now_s, first_check)
+        arrays["first_check_s"][slots] = first_check
+        reference = np.where(no_sample, first_check, last)
+        age = np.maximum(0.0, now_s - reference)
+        alarm = age > self._stale_after
+        report = alarm | arrays["stale_alarm"][slots]
+        arrays["stale_alarm"][slots] = alarm
+        out: list[tuple[int, Evidence]] = []
+        for row, q in zip(*np.nonzero(report), strict=True):
+            values: dict[str, float] = {}
+            if not no_sample[row, q]:
+                values["last_sample_s"] = float(reference[row, q])
+            values["age_s"] = float(age[row, q])
+            evidence = Evidence(
+                detector="stale",
+                family="data_quality",
+                statistic=float(age[row, q]),
+                threshold=self._quality_configs[q].stale_after_s,
+                alarm=bool(alarm[row, q]),
+                signal=self.quality_signals[q],
+                values=values,
+                detail="stale",
+            )
+            out.append((int(slots[row]), evidence))
+        return out
+
+    # ------------------------------------------------------ labels, counts
+
+    def mode_label(self, code: int) -> str:
+        """Return the text of mode label ``code`` (as in :attr:`RowBatch.mode`).
+
+        Raises
+        ------
+        IndexError
+            If no label has that code.
+        """
+        index = _index_argument("code", code)
+        if not 0 <= index < len(self._labels):
+            raise IndexError(f"mode label code {index} is unknown: {len(self._labels)} are coded")
+        return self._labels[index]
+
+    def _tally(self, counts: NDArray[np.int64]) -> dict[str, int]:
+        values = dict(zip(self._count_keys, counts.tolist(), strict=True))
+        # Signals come as indices, checked on entry: nothing is ever an unknown signal.
+        return {"unknown_signal": 0, **values}
+
+    def counts(self) -> dict[str, int]:
+        """Return the tallies summed over the assets in use.
+
+        Returns
+        -------
+        dict of str to int
+            The keys of :meth:`Aligner.counts` (``unknown_signal`` always 0),
+            one per :data:`IntakeOutcome`, and ``overflow``: open cells
+            dropped because a signal had more than ``cells``.
+        """
+        arrays = self._arrays
+        return self._tally(arrays["counts"][arrays["in_use"]].sum(axis=0))
+
+    def asset_counts(self, slot: int) -> dict[str, int]:
+        """Return the tallies of one asset, keys as :meth:`counts`.
+
+        Raises
+        ------
+        IndexError, ValueError, TypeError
+            As :meth:`add` for a bad slot.
+        """
+        return self._tally(self._arrays["counts"][self._slot(slot)])
+
+    def memory_bytes(self) -> int:
+        """Return the bytes held by the state arrays (all allocated slots)."""
+        return sum(array.nbytes for array in self._arrays.values())
+
+    # ----------------------------------------------------------- checkpoint
+
+    def _meta(self) -> dict[str, Any]:
+        return {
+            "format": _FORMAT,
+            "version": _STATE_VERSION,
+            "sample_period_s": self.config.sample_period_s,
+            "signals": list(self.signals),
+            "quality_signals": list(self.quality_signals),
+            "cells": self.cells,
+            "count_keys": list(self._count_keys),
+        }
+
+    def to_state(self) -> dict[str, Any]:
+        """Return the bank's state for a checkpoint.
+
+        Returns
+        -------
+        dict
+            ``"arrays"``: name -> numeric ndarray (copies, no object dtype),
+            ready for :func:`numpy.savez`; ``"meta"``: JSON-safe dict with the
+            format, version, structure and the mode label table. Untaken
+            quality evidence is not included.
+        """
+        meta = self._meta()
+        meta["mode_labels"] = list(self._labels)
+        return {
+            "arrays": {name: array.copy() for name, array in self._arrays.items()},
+            "meta": meta,
+        }
+
+    def load_state(self, state: Mapping[str, Any]) -> None:
+        """Restore a state saved by :meth:`to_state` under the same structure.
+
+        Timing and quality thresholds may differ from the saving bank's (as
+        for the references); the version, sample period, signals, checked
+        signals, cells and counters must match. Untaken evidence is dropped.
+
+        Parameters
+        ----------
+        state : mapping
+            ``{"arrays": ..., "meta": ...}`` as :meth:`to_state` returns,
+            possibly through :func:`numpy.savez` and JSON.
+
+        Raises
+        ------
+        ValueError
+            If the state is malformed or saved under another structure; the
+            message names the entry, the value found and what was expected.
+            The bank is unchanged.
+        """
+        if not isinstance(state, Mapping) or set(state) != {"arrays", "meta"}:
+            found = sorted(state) if isinstance(state, Mapping) else type(state).__name__
+            raise ValueError(f"intake state must have keys ['arrays', 'meta'], got {found}")
+        meta, saved = state["meta"], state["arrays"]
+        if not isinstance(meta, Mapping) or not isinstance(saved, Mapping):
+            raise ValueError("intake state 'meta' and 'arrays' must be mappings")
+        expected = self._meta()
+        for key in expected:
+            if meta.get(key) != expected[key]:
+                raise ValueError(
+                    f"intake state {key} is {meta.get(key)!r}, the bank has {expected[key]!r}"
+                )
+        labels = meta.get("mode_labels")
+        if (
+            not isinstance(labels, list)
+            or not all(isinstance(label, str) for label in labels)
+            or len(set(labels)) != len(labels)
+            or len(labels) > self.max_mode_labels
+        ):
+            raise ValueError(
+                f"intake state mode_labels must be at most {self.max_mode_labels} distinct "
+                f"strings, got {labels!r}"
+            )
+        if set(saved) != set(_LAYOUT):
+            raise ValueError(f"intake state arrays must be {sorted(_LAYOUT)}, got {sorted(saved)}")
+        in_use = np.asarray(saved["in_use"])
+        capacity = int(in_use.shape[0]) if in_use.ndim == 1 else 0
+        if capacity < 1:
+            raise ValueError(
+                f"intake state in_use must have shape (slots >= 1,), got {in_use.shape}"
+            )
+        arrays: dict[str, NDArray[Any]] = {}
+        for name, (dtype, axes, _) in _LAYOUT.items():
+            loaded = np.asarray(saved[name])
+            shape = self._shape(capacity, axes)
+            if loaded.shape != shape or loaded.dtype != np.dtype(dtype):
+                raise ValueError(
+                    f"intake state array {name!r} has shape {loaded.shape} and dtype "
+                    f"{loaded.dtype}; expected {shape} of {np.dtype(dtype)}"
+                )
+            arrays[name] = loaded.copy()
+        if self._mode_index >= 0:
+            mode = self._mode_index
+            codes = arrays["value"][:, mode][~np.isnan(arrays["time"][:, mode])]
+            if not np.all((codes >= 0) & (codes < len(labels)) & (codes == np.round(codes))):
+                raise ValueError(
+                    f"intake state holds mode codes outside the {len(labels)} saved labels"
+                )
+        self._set_arrays(arrays)
+        self._labels = list(labels)
+        self._codes = {label: code for code, label in enumerate(labels)}
+        self._pending = array("d")
