@@ -44,6 +44,8 @@ from typing import Any
 import paho.mqtt.client as mqtt
 import pytest
 from paho.mqtt.enums import CallbackAPIVersion, MQTTProtocolVersion
+from paho.mqtt.packettypes import PacketTypes
+from paho.mqtt.properties import Properties
 
 from arxwatch.daemon.config import BrokerConfig, TlsConfig
 from arxwatch.daemon.ingest import Incoming, MqttLink
@@ -439,13 +441,16 @@ def make_link() -> Iterator[MakeLink]:
 
 
 class Probe:
-    """A plain paho client (MQTT 5, clean session) for publishing and watching.
+    """A plain paho client (MQTT 5) for publishing and watching.
 
     Messages on its subscriptions land in :attr:`received` as paho
-    ``MQTTMessage`` objects.
+    ``MQTTMessage`` objects. With ``persistent=True`` it keeps its session
+    (clean_start=0, Session Expiry Interval 300 s), so a broker with
+    persistence queues its messages across a broker restart; paho
+    reconnects by itself.
     """
 
-    def __init__(self, broker: Broker, client_id: str) -> None:
+    def __init__(self, broker: Broker, client_id: str, *, persistent: bool = False) -> None:
         self.received: queue.Queue[mqtt.MQTTMessage] = queue.Queue()
         self._subscribed: queue.Queue[int] = queue.Queue()
         self.client = mqtt.Client(
@@ -455,7 +460,15 @@ class Probe:
         )
         self.client.on_message = lambda _c, _u, message: self.received.put(message)
         self.client.on_subscribe = lambda _c, _u, mid, _codes, _p: self._subscribed.put(mid)
-        self.client.connect(broker.host, broker.port, keepalive=10)
+        if persistent:
+            properties = Properties(PacketTypes.CONNECT)
+            properties.SessionExpiryInterval = 300
+            self.client.connect(
+                broker.host, broker.port, keepalive=10, clean_start=False, properties=properties
+            )
+        else:
+            self.client.connect(broker.host, broker.port, keepalive=10)
+        self.client.reconnect_delay_set(1, 1)
         self.client.loop_start()
 
     def subscribe(self, topic_filter: str, qos: int = 1, timeout_s: float = 5.0) -> None:
@@ -480,12 +493,15 @@ class Probe:
 
 
 @pytest.fixture
-def make_probe() -> Iterator[Callable[[Broker], Probe]]:
-    """Make :class:`Probe` clients on a given broker; close them in teardown."""
+def make_probe() -> Iterator[Callable[..., Probe]]:
+    """Make :class:`Probe` clients on a given broker; close them in teardown.
+
+    ``make_probe(broker, persistent=False)``.
+    """
     probes: list[Probe] = []
 
-    def make(on: Broker) -> Probe:
-        client = Probe(on, f"probe-{uuid.uuid4().hex[:12]}")
+    def make(on: Broker, *, persistent: bool = False) -> Probe:
+        client = Probe(on, f"probe-{uuid.uuid4().hex[:12]}", persistent=persistent)
         probes.append(client)
         return client
 
