@@ -91,7 +91,7 @@ import time
 from collections import deque
 from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass
-from typing import Any, Final
+from typing import Any, Final, cast
 
 import paho.mqtt.client as mqtt
 from paho.mqtt.enums import CallbackAPIVersion, MQTTErrorCode, MQTTProtocolVersion
@@ -388,6 +388,19 @@ def describe_connect_error(error: BaseException | None, endpoint: str) -> str:
 # ------------------------------------------------------------------- the link
 
 
+class _PahoDebugLog(logging.LoggerAdapter[logging.Logger]):
+    """Pass paho's own log lines on at debug level, whatever level paho gave.
+
+    paho logs from its point of view (an ERROR for a socket already closed by
+    a normal stop); the link reports connections, refusals and losses itself,
+    so paho's lines are detail for debugging.
+    """
+
+    def log(self, level: int, msg: object, *args: object, **kwargs: Any) -> None:
+        """Log ``msg % args`` at debug level."""
+        self.logger.debug(msg, *args, **kwargs)
+
+
 class _Throttle:
     """Allow one warning per key and interval; callers log the rest at debug."""
 
@@ -562,7 +575,8 @@ class MqttLink:
         # The callbacks catch everything themselves; this keeps paho's thread
         # alive should one ever slip through (paho re-raises by default).
         client.suppress_exceptions = True
-        client.enable_logger(logger.getChild("paho"))
+        # paho's duck-typed logger: only .log() is called (paho client.py _easy_log).
+        client.enable_logger(cast(logging.Logger, _PahoDebugLog(logger.getChild("paho"))))
         client.max_queued_messages_set(self._max_outgoing)
         client.reconnect_delay_set(RECONNECT_MIN_DELAY_S, RECONNECT_MAX_DELAY_S)
         client.will_set(self._status_topic, offline_payload("connection lost"), qos=1, retain=True)
