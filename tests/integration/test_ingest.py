@@ -566,7 +566,8 @@ def test_receive_maximum_bounds_unacked_messages(
     sender = make_probe(broker)
     for index in range(6):
         sender.publish(f"{topic_prefix}/data/v", str(index).encode(), qos=1)
-    time.sleep(1.0)  # observation window: nothing is acknowledged yet
+    assert wait_for(lambda: inbox.qsize() == 2, 5.0)
+    time.sleep(1.0)  # observation window: nothing is acknowledged, nothing more comes
     assert inbox.qsize() == 2
     assert link.status().held_back == 0
     received = take_and_ack(link, inbox, 6)
