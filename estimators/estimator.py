@@ -18,11 +18,13 @@ last bit (the same generated statements, :func:`arxwatch.estimators.rls.
 kernel_source`): ``"python"``, plain Python on a list of floats, always
 available; and ``"compiled"``, the same statements compiled by numba
 (:mod:`arxwatch.estimators.native`, the optional ``fast`` extra) on a float64
-array, about three times faster per update but costing a compilation per
-model structure (seconds for the first in a process). ``"auto"`` picks
-``"compiled"`` when numba can be imported. The default is ``"python"`` so
-that short-lived processes and tests pay no compilation; a service that
-keeps estimators for long opts in with ``backend="auto"``.
+array. The compiled step is three to four times faster
+(``tests/benchmarks/bench_core.py``) but costs a compilation per model
+structure (about 3 s for the first in a process, then about 1 s each) and
+about 140 MB of memory for numba and LLVM. ``"auto"`` picks ``"compiled"``
+when numba can be imported. The default is ``"python"`` so that short-lived
+processes and tests pay no compilation; a service that keeps estimators for
+long opts in with ``backend="auto"``.
 """
 
 from __future__ import annotations
@@ -170,7 +172,7 @@ class ArxEstimator:
         ValueError
             If ``y`` or ``u`` is not finite; nothing is changed.
         """
-        if not math.isfinite(y) or not all(math.isfinite(v) for v in u):
+        if not (math.isfinite(y) and all(map(math.isfinite, u))):  # map: no generator frames
             raise ValueError(f"non-finite sample: y={y!r}, u={list(u)!r}")
         history = self._history
         result = None
