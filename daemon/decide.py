@@ -453,7 +453,7 @@ class TrackerBank:
 
     def observe(
         self,
-        rows: NDArray[np.intp],
+        rows: NDArray[np.intp] | slice,
         key: int,
         statistic: NDArray[np.float64],
         threshold: NDArray[np.float64] | float,
@@ -464,8 +464,9 @@ class TrackerBank:
 
         Parameters
         ----------
-        rows : ndarray of intp, shape (k,)
-            Rows evaluated, each at most once.
+        rows : ndarray of intp, shape (k,), or slice
+            Rows evaluated, each at most once (a slice of consecutive rows
+            works on views).
         key : int
             Index into :attr:`keys`.
         statistic, threshold, alarm : arrays of shape (k,) (threshold may be a scalar)
@@ -489,6 +490,8 @@ class TrackerBank:
         if not busy.all():
             if not busy.any():
                 return []
+            if isinstance(rows, slice):
+                rows = np.arange(rows.start, rows.stop, dtype=np.intp)
             picked = np.flatnonzero(busy)
             found = self.observe(
                 rows[picked], key, stat[picked], limit[picked], alarm[picked], when[picked]

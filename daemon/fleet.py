@@ -39,7 +39,12 @@ from numpy.typing import NDArray
 
 from arxwatch.daemon.alert import SignalNames, build_record
 from arxwatch.daemon.decide import BankTransition, TrackerBank, Transition
-from arxwatch.daemon.monitor import CHANGE_DETECTORS, MonitorConfig, readout_values
+from arxwatch.daemon.monitor import (
+    CHANGE_DETECTORS,
+    MonitorConfig,
+    parameter_covariances,
+    readout_values,
+)
 from arxwatch.estimators.arx import ArxOrder
 from arxwatch.estimators.baseline import Baseline, BaselineSet
 from arxwatch.estimators.codec import decode_order, encode_order
@@ -47,7 +52,7 @@ from arxwatch.estimators.detect._sums import centred_sums
 from arxwatch.estimators.detect.evidence import Evidence
 from arxwatch.estimators.detect.parameter import FeatureDrift, FeatureDriftConfig
 from arxwatch.estimators.detect.prewhiten import fit_reference
-from arxwatch.estimators.detect.whiteness import block_evidence
+from arxwatch.estimators.detect.whiteness import block_statistics, evidence_of_block
 from arxwatch.estimators.estimator import ArxEstimator
 from arxwatch.estimators.readout import feature_matrix, feature_names, read_out
 from arxwatch.estimators.rls import TRACE_CHECK_EVERY, StateLayout, build_kernel
@@ -70,6 +75,28 @@ _QUALITY_KINDS = ("out_of_range", "stuck", "gap", "stale")
 
 Float = NDArray[np.float64]
 Index = NDArray[np.intp]
+#: Channels or positions: a slice when they form a contiguous range (views, no copies).
+Sel = Index | slice
+
+
+def _as_slice(ch: Index) -> Sel:
+    """Return ``ch`` as a slice when it is a contiguous increasing range, else unchanged."""
+    if ch.shape[0] and int(ch[-1]) - int(ch[0]) == ch.shape[0] - 1:
+        if ch.shape[0] == 1 or bool((np.diff(ch) == 1).all()):
+            return slice(int(ch[0]), int(ch[-1]) + 1)
+    return ch
+
+
+def _indices(sel: Sel) -> Index:
+    """Return ``sel`` as an index array."""
+    if isinstance(sel, slice):
+        return np.arange(sel.start, sel.stop, dtype=np.intp)
+    return sel
+
+
+def _narrow(sel: Sel, mask: NDArray[np.bool_]) -> Sel:
+    """Return the members of ``sel`` where ``mask`` holds (``sel`` itself when all do)."""
+    return sel if mask.all() else _indices(sel)[mask]
 
 
 def _band_features(order: ArxOrder) -> tuple[str, ...]:
@@ -173,11 +200,15 @@ class _Group:
         }
 
     def _allocate(self, capacity: int) -> None:
+        # The channel axis is last: each component is one contiguous row over
+        # channels, so a wave over a contiguous range of channels works on
+        # views (the RLS kernel updates the state in place).
         old = self.capacity
+        keep = min(old, capacity)
         for name, (tail, dtype, initial) in self._shapes().items():
-            grown = np.full((capacity, *tail), initial, dtype=dtype)
-            if name in self.arrays and old:
-                grown[: min(old, capacity)] = self.arrays[name][:capacity]
+            grown = np.full((*tail, capacity), initial, dtype=dtype)
+            if name in self.arrays and keep:
+                grown[..., :keep] = self.arrays[name][..., :keep]
             self.arrays[name] = grown
         self.tracker.resize(capacity)
 
@@ -199,13 +230,13 @@ class _Group:
         c = self.free.pop()
         a = self.arrays
         for name, (_, _, initial) in self._shapes().items():
-            a[name][c] = initial
+            a[name][..., c] = initial
         self.tracker.clear([c])
         a["used"][c] = True
         a["asset"][c] = asset
         a["mode"][c] = mode
-        a["theta0"][c] = baseline.theta
-        a["cov0"][c] = baseline.covariance[self.tri_rows, self.tri_cols]
+        a["theta0"][:, c] = baseline.theta
+        a["cov0"][:, c] = baseline.covariance[self.tri_rows, self.tri_cols]
         a["sigma2"][c] = baseline.sigma2
         estimator = ArxEstimator(self.order, self.config.rls)
         estimator.warm_start(
@@ -213,8 +244,8 @@ class _Group:
             np.asarray(baseline.covariance) / baseline.sigma2,
             baseline.sigma2,
         )
-        a["rls"][c] = estimator.to_state()["rls"]
-        a["current"][c] = list(self.baseline_values(c).values())
+        a["rls"][:, c] = estimator.to_state()["rls"]
+        a["current"][:, c] = list(self.baseline_values(c).values())
         return c
 
     def remove(self, c: int) -> None:
@@ -226,8 +257,8 @@ class _Group:
         """Forget past samples of ``channels`` (RegressorHistory.clear, twice)."""
         a = self.arrays
         for prefix in ("base", "rls"):
-            a[f"{prefix}_y"][channels] = 0.0
-            a[f"{prefix}_u"][channels] = 0.0
+            a[f"{prefix}_y"][..., channels] = 0.0
+            a[f"{prefix}_u"][..., channels] = 0.0
             a[f"{prefix}_count"][channels] = 0
 
     def to_state(self) -> tuple[dict[str, Any], dict[str, NDArray[Any]]]:
@@ -256,10 +287,11 @@ class _Group:
             saved = arrays.get(name)
             if saved is None:
                 raise ValueError(f"saved monitor state lacks {name!r}")
-            if saved.shape != (capacity, *tail) or saved.dtype != np.dtype(dtype):
+            shape = (*tail, capacity)
+            if saved.shape != shape or saved.dtype != np.dtype(dtype):
                 raise ValueError(
                     f"saved monitor array {name!r} has shape {saved.shape} and dtype "
-                    f"{saved.dtype}; these settings need {(capacity, *tail)} of {np.dtype(dtype)}"
+                    f"{saved.dtype}; these settings need {shape} of {np.dtype(dtype)}"
                 )
             self.arrays[name] = np.array(saved, copy=True)
         prefix = "tracker."
@@ -269,12 +301,8 @@ class _Group:
         self.free = [int(c) for c in meta["free"]]
 
     # -- read-outs ----------------------------------------------------------
-    def baseline_theta_cov(self, c: int) -> tuple[Float, Float]:
-        cov = self.arrays["cov0"][c][self.tri_index]
-        return self.arrays["theta0"][c].copy(), cov
-
     def baseline_readout_values(self, c: int) -> tuple[Any, dict[str, float]]:
-        theta0 = self.arrays["theta0"][c]
+        theta0 = self.arrays["theta0"][:, c]
         readout = read_out(self.order, theta0, self.sample_period_s)
         return readout, readout_values(readout, self.order, float(self.arrays["sigma2"][c]))
 
@@ -283,40 +311,40 @@ class _Group:
 
     def current_values(self, c: int) -> dict[str, float]:
         names = (*self.features, "sigma")
-        return dict(zip(names, self.arrays["current"][c].tolist(), strict=True))
+        return dict(zip(names, self.arrays["current"][:, c].tolist(), strict=True))
 
     def rls_column(self, c: int) -> list[float]:
-        column: list[float] = self.arrays["rls"][c].tolist()
+        column: list[float] = self.arrays["rls"][:, c].tolist()
         return column
 
     # -- the vectorised step ------------------------------------------------
-    def _regressor(self, prefix: str, ch: Index, u: Float) -> Float:
-        """phi(k) of ``ch`` from their histories and current inputs (RegressorHistory.regressor)."""
+    def _regressor(self, prefix: str, ch: Sel, u: list[Float]) -> list[Float]:
+        """phi(k) of ``ch``, one array per entry (RegressorHistory.regressor)."""
         order, a = self.order, self.arrays
-        hist_y, hist_u = a[f"{prefix}_y"][ch], a[f"{prefix}_u"][ch]
-        columns = [-hist_y[:, j] for j in range(order.na)]
+        hist_y, hist_u = a[f"{prefix}_y"][:, ch], a[f"{prefix}_u"][:, :, ch]
+        columns = [-hist_y[j] for j in range(order.na)]
         for i, (nb_i, nk_i) in enumerate(zip(order.nb, order.nk, strict=True)):
             for lag in range(nk_i, nk_i + nb_i):
-                columns.append(u[:, i] if lag == 0 else hist_u[:, i, lag - 1])
+                columns.append(u[i] if lag == 0 else hist_u[i, lag - 1])
         if order.constant:
-            columns.append(np.ones(ch.shape[0]))
-        return np.stack(columns, axis=1)
+            columns.append(np.ones(u[0].shape[0]))
+        return columns
 
-    def _push(self, prefix: str, ch: Index, y: Float, u: Float) -> None:
+    def _push(self, prefix: str, ch: Sel, y: Float, u: Float) -> None:
         """Shift y(k) and u(k) into the histories of ``ch`` (RegressorHistory.push)."""
         a = self.arrays
         hist_y = a[f"{prefix}_y"]
-        if hist_y.shape[1]:
-            rows = hist_y[ch]
-            rows[:, 1:] = rows[:, :-1].copy()
-            rows[:, 0] = y
-            hist_y[ch] = rows
+        if hist_y.shape[0]:
+            rows = hist_y[:, ch]
+            rows[1:] = rows[:-1].copy()
+            rows[0] = y
+            hist_y[:, ch] = rows
         hist_u = a[f"{prefix}_u"]
-        if hist_u.shape[2]:
-            rows_u = hist_u[ch]
-            rows_u[:, :, 1:] = rows_u[:, :, :-1].copy()
-            rows_u[:, :, 0] = u
-            hist_u[ch] = rows_u
+        if hist_u.shape[1]:
+            rows_u = hist_u[:, :, ch]
+            rows_u[:, 1:] = rows_u[:, :-1].copy()
+            rows_u[:, 0] = u.T
+            hist_u[:, :, ch] = rows_u
         count = a[f"{prefix}_count"]
         count[ch] = np.minimum(count[ch] + 1, self.depth)
 
@@ -333,64 +361,68 @@ class _Group:
         """
         a, config = self.arrays, self.config
         found: list[tuple[int, int, Evidence, BankTransition]] = []
-        positions = np.arange(ch.shape[0])
+        k = ch.shape[0]
+        sel = _as_slice(ch)
+        every: Sel = slice(0, k)
         # _ModeMonitor.step reads the tracker before this row's evidence is observed
-        changing = self.tracker.raised[ch, 0] | self.tracker.raised[ch, 1]
+        changing = self.tracker.raised[sel, 0] | self.tracker.raised[sel, 1]
         # 1. the baseline model's normalised residual, winsorised
-        ready = a["base_count"][ch] >= self.depth
+        ready = a["base_count"][sel] >= self.depth
         y_past = y.copy()
         if ready.any():
-            rp = positions[ready]
-            rc = ch[ready]
-            phi = self._regressor("base", rc, u[ready])
-            theta = a["theta0"][rc]
-            cov = a["cov0"][rc]
-            prediction = np.zeros(rc.shape[0])
-            spread = np.zeros(rc.shape[0])
+            rp, rc = _narrow(every, ready), _narrow(sel, ready)
+            y_r = y[rp]
+            u_r = u[rp]
+            phi = self._regressor("base", rc, [u_r[:, i] for i in range(u.shape[1])])
+            theta = a["theta0"][:, rc]
+            cov = a["cov0"][:, rc]
+            prediction = np.zeros(y_r.shape[0])
+            spread = np.zeros(y_r.shape[0])
             n = self.order.n_params
             for j in range(n):
-                prediction += phi[:, j] * theta[:, j]
-                inner = np.zeros(rc.shape[0])
+                prediction += phi[j] * theta[j]
+                inner = np.zeros(y_r.shape[0])
                 for i in range(n):
-                    inner += cov[:, self.tri_index[j, i]] * phi[:, i]
-                spread += phi[:, j] * inner
-            e = y[ready] - prediction
+                    inner += cov[self.tri_index[j, i]] * phi[i]
+                spread += phi[j] * inner
+            e = y_r - prediction
             z = e / np.sqrt(a["sigma2"][rc] + spread)
             clip = config.clip_sigma
             big = np.abs(z) > clip
-            with np.errstate(divide="ignore", invalid="ignore"):
-                cleaned = y[ready] - e + e * clip / np.abs(z)
-            y_past[ready] = np.where(big, cleaned, y[ready])
-            z = np.where(big, np.copysign(clip, z), z)
-            found += self._innovations(rp, rc, time_s[ready], z)
-        self._push("base", ch, y_past, u)
+            if big.any():
+                with np.errstate(divide="ignore", invalid="ignore"):
+                    cleaned = y_r - e + e * clip / np.abs(z)
+                y_past[rp] = np.where(big, cleaned, y_r)
+                z = np.where(big, np.copysign(clip, z), z)
+            found += self._innovations(rp, rc, time_s[rp], z)
+        self._push("base", sel, y_past, u)
         # 2. the live estimate (ArxEstimator.update)
-        ready = a["rls_count"][ch] >= self.depth
+        ready = a["rls_count"][sel] >= self.depth
         y_hist = y.copy()
         if ready.any():
-            rc = ch[ready]
-            phi = self._regressor("rls", rc, u[ready])
-            state = a["rls"][rc].T.copy()
+            rp, rc = _narrow(every, ready), _narrow(sel, ready)
+            u_t = np.ascontiguousarray(u[rp].T)
+            phi = self._regressor("rls", rc, list(u_t))
+            state = a["rls"][:, rc]  # a view for a slice: the kernel updates it in place
             due = state[self.layout.n_updates] / TRACE_CHECK_EVERY
             check = due == np.floor(due)
-            prediction, e, _, w, _, _ = self.kernel(
-                list(state), list(phi.T.copy()), y[ready], list(u[ready].T.copy()), check
-            )
-            a["rls"][rc] = state.T
-            y_hist[ready] = prediction + w * e
+            prediction, e, _, w, _, _ = self.kernel(list(state), phi, y[rp], list(u_t), check)
+            if not isinstance(rc, slice):
+                a["rls"][:, rc] = state
+            y_hist[rp] = prediction + w * e
             a["samples"][rc] += 1
-        self._push("rls", ch, y_hist, u)
+        self._push("rls", sel, y_hist, u)
         # 3. parameter-based evaluations, every evaluate_every samples per channel
         if ready.any():
-            rp, rc = positions[ready], ch[ready]
+            rp, rc = _narrow(every, ready), _narrow(sel, ready)
             due_eval = a["samples"][rc] % config.evaluate_every == 0
             if due_eval.any():
-                dp = rp[due_eval]
-                found += self._evaluate(dp, rc[due_eval], time_s[dp], changing[dp])
+                dp = _indices(rp)[due_eval]
+                found += self._evaluate(dp, _indices(rc)[due_eval], time_s[dp], changing[dp])
         return found
 
     def _innovations(
-        self, rp: Index, rc: Index, time_s: Float, z: Float
+        self, rp: Sel, rc: Sel, time_s: Float, z: Float
     ) -> list[tuple[int, int, Evidence, BankTransition]]:
         """Prewhiten ``z``, then run CUSUM, variance and whiteness element-wise."""
         a, config = self.arrays, self.config
@@ -398,31 +430,33 @@ class _Group:
         found: list[tuple[int, int, Evidence, BankTransition]] = []
         fitted = a["pw_count"][rc] >= config.prewhiten.reference_samples
         # collecting the reference: add_value, element-wise
-        if (~fitted).any():
-            cc, zz = rc[~fitted], z[~fitted]
+        if not fitted.all():
+            cc, zz = _indices(rc)[~fitted], z[~fitted]
             self._add_values(cc, zz, "pw")
             count = a["pw_count"][cc] + 1
             a["pw_count"][cc] = count
             for c in cc[count >= config.prewhiten.reference_samples].tolist():
                 phi, scale = fit_reference(
-                    a["pw_sums"][c].tolist(),
-                    a["pw_head"][c].tolist(),
-                    a["pw_past"][c].tolist(),
+                    a["pw_sums"][:, c].tolist(),
+                    a["pw_head"][:, c].tolist(),
+                    a["pw_past"][:, c].tolist(),
                     int(a["pw_count"][c]),
                 )
-                a["pw_phi"][c] = phi
+                a["pw_phi"][:, c] = phi
                 a["pw_scale"][c] = scale
         if not fitted.any():
             return found
-        rp, rc, z, time_s = rp[fitted], rc[fitted], z[fitted], time_s[fitted]
-        predicted = np.zeros(rc.shape[0])
+        if not fitted.all():
+            rp, rc = _indices(rp)[fitted], _indices(rc)[fitted]
+            z, time_s = z[fitted], time_s[fitted]
+        predicted = np.zeros(z.shape[0])
         if p:
-            coefficients, past = a["pw_phi"][rc], a["pw_past"][rc]
+            coefficients, past = a["pw_phi"][:, rc], a["pw_past"][:, rc]
             for i in range(p):
-                predicted += coefficients[:, i] * past[:, i]
-            past[:, 1:] = past[:, :-1].copy()
-            past[:, 0] = z
-            a["pw_past"][rc] = past
+                predicted += coefficients[i] * past[i]
+            past[1:] = past[:-1].copy()
+            past[0] = z
+            a["pw_past"][:, rc] = past
         eps = (z - predicted) / a["pw_scale"][rc]
         clip = config.clip_sigma
         eps = np.maximum(-clip, np.minimum(clip, eps))
@@ -431,32 +465,35 @@ class _Group:
         found += self._whiteness(rp, rc, time_s, eps)
         return found
 
-    def _add_values(self, cc: Index, x: Float, prefix: str) -> None:
+    def _add_values(self, cc: Sel, x: Float, prefix: str) -> None:
         """:func:`arxwatch.estimators.detect._sums.add_value` for each channel of ``cc``."""
         a = self.arrays
-        sums, head, past = a[f"{prefix}_sums"][cc], a[f"{prefix}_head"][cc], a[f"{prefix}_past"][cc]
+        sums = a[f"{prefix}_sums"][:, cc]
+        head = a[f"{prefix}_head"][:, cc]
+        past = a[f"{prefix}_past"][:, cc]
         count = a[f"{prefix}_count"][cc]
-        sums[:, 0] += x
-        sums[:, 1] += x * x
-        lags = past.shape[1]
+        sums[0] += x
+        sums[1] += x * x
+        lags = past.shape[0]
         if count.min() >= lags:  # the common case: every lag exists
             for lag in range(1, lags + 1):
-                sums[:, lag + 1] += x * past[:, lag - 1]
+                sums[lag + 1] += x * past[lag - 1]
         else:
             for lag in range(1, lags + 1):
                 has = count >= lag
-                sums[has, lag + 1] += x[has] * past[has, lag - 1]
+                sums[lag + 1, has] += x[has] * past[lag - 1, has]
             starting = np.flatnonzero(count < lags)
-            head[starting, count[starting]] = x[starting]
+            head[count[starting], starting] = x[starting]
         if lags:
-            past[:, 1:] = past[:, :-1].copy()
-            past[:, 0] = x
-        a[f"{prefix}_sums"][cc] = sums
-        a[f"{prefix}_head"][cc] = head
-        a[f"{prefix}_past"][cc] = past
+            past[1:] = past[:-1].copy()
+            past[0] = x
+        if not isinstance(cc, slice):  # a gathered copy: write it back
+            a[f"{prefix}_sums"][:, cc] = sums
+            a[f"{prefix}_head"][:, cc] = head
+            a[f"{prefix}_past"][:, cc] = past
 
     def _cusum(
-        self, rp: Index, rc: Index, time_s: Float, eps: Float
+        self, rp: Sel, rc: Sel, time_s: Float, eps: Float
     ) -> list[tuple[int, int, Evidence, BankTransition]]:
         """Cusum.update, element-wise."""
         a, cusum = self.arrays, self.config.cusum
@@ -481,7 +518,7 @@ class _Group:
         transitions = self.tracker.observe(rc, 0, statistic, float(cusum.h), alarm, time_s)
         found = [
             (
-                int(rp[t.position]),
+                int(_indices(rp)[t.position]),
                 0,
                 self._cusum_evidence(c_high, c_low, n_high, n_low, t.position),
                 t,
@@ -489,7 +526,7 @@ class _Group:
             for t in transitions
         ]
         if cusum.after_alarm == "restart":
-            reset = rc[alarm]
+            reset = _indices(rc)[alarm]
             a["c_high"][reset] = 0.0
             a["c_low"][reset] = 0.0
             a["n_high"][reset] = 0
@@ -525,7 +562,7 @@ class _Group:
         )
 
     def _variance(
-        self, rp: Index, rc: Index, time_s: Float, eps: Float
+        self, rp: Sel, rc: Sel, time_s: Float, eps: Float
     ) -> list[tuple[int, int, Evidence, BankTransition]]:
         """VarianceChange.update, element-wise."""
         a, variance = self.arrays, self.config.variance
@@ -544,7 +581,7 @@ class _Group:
         alarm = statistic >= threshold
         transitions = self.tracker.observe(rc, 1, statistic, threshold, alarm, time_s)
         return [
-            (int(rp[t.position]), 1, self._variance_evidence(float(s[t.position])), t)
+            (int(_indices(rp)[t.position]), 1, self._variance_evidence(float(s[t.position])), t)
             for t in transitions
         ]
 
@@ -583,9 +620,9 @@ class _Group:
         )
 
     def _whiteness(
-        self, rp: Index, rc: Index, time_s: Float, eps: Float
+        self, rp: Sel, rc: Sel, time_s: Float, eps: Float
     ) -> list[tuple[int, int, Evidence, BankTransition]]:
-        """Whiteness.update, element-wise; block ends evaluated one channel at a time."""
+        """Whiteness.update, element-wise, block ends included."""
         a = self.arrays
         self._add_values(rc, eps, "wh")
         count = a["wh_count"][rc] + 1
@@ -593,31 +630,36 @@ class _Group:
         ended = count >= self.config.whiteness.window
         if not ended.any():
             return []
-        ep, ec, et = rp[ended], rc[ended], time_s[ended]
-        evidence = [
-            block_evidence(
-                self.config.whiteness,
-                self.whiteness_threshold,
-                centred_sums(
-                    a["wh_sums"][c].tolist(),
-                    a["wh_head"][c].tolist(),
-                    a["wh_past"][c].tolist(),
-                    int(a["wh_count"][c]),
-                ),
-            )
-            for c in ec.tolist()
-        ]
+        ep, ec, et = _indices(rp)[ended], _indices(rc)[ended], time_s[ended]
+        config = self.config.whiteness
+        centred = centred_sums(
+            a["wh_sums"][:, ec], a["wh_head"][:, ec], a["wh_past"][:, ec], a["wh_count"][ec]
+        )
+        q, p_value, r = block_statistics(config, centred)
         for name, initial in (
             ("wh_count", 0),
             ("wh_sums", 0.0),
             ("wh_head", 0.0),
             ("wh_past", 0.0),
         ):
-            a[name][ec] = initial
-        statistic = np.array([ev.statistic for ev in evidence])
-        alarm = np.array([ev.alarm for ev in evidence], dtype=np.bool_)
-        transitions = self.tracker.observe(ec, 2, statistic, self.whiteness_threshold, alarm, et)
-        return [(int(ep[t.position]), 2, evidence[t.position], t) for t in transitions]
+            a[name][..., ec] = initial
+        alarm = p_value < config.alpha
+        transitions = self.tracker.observe(ec, 2, q, self.whiteness_threshold, alarm, et)
+        return [
+            (
+                int(ep[t.position]),
+                2,
+                evidence_of_block(
+                    config,
+                    self.whiteness_threshold,
+                    float(q[t.position]),
+                    float(p_value[t.position]),
+                    r[:, t.position],
+                ),
+                t,
+            )
+            for t in transitions
+        ]
 
     def _evaluate(
         self, dp: Index, dc: Index, time_s: Float, changing: NDArray[np.bool_]
@@ -631,37 +673,33 @@ class _Group:
         if not settled.any():
             return []
         dp, dc, time_s = dp[settled], dc[settled], time_s[settled]
-        columns = [self.rls_column(c) for c in dc.tolist()]
-        thetas = a["rls"][dc][:, layout.theta]
-        covs = np.stack([layout.sigma2(col) * layout.covariance(col) for col in columns])
+        states = a["rls"][:, dc]
+        thetas = states[layout.theta].T
+        covs = parameter_covariances(layout, states)
         sigma2 = a["sigma2"][dc]
-        theta0 = a["theta0"][dc]
-        cov0 = a["cov0"][dc][:, self.tri_index]
+        theta0 = a["theta0"][:, dc].T
+        cov0 = a["cov0"][:, dc].T[:, self.tri_index]
         found: list[tuple[int, int, Evidence, BankTransition]] = []
         # feature Wald test
         x0, c0 = self.drift.project(theta0, cov0)
         x, cx = self.drift.project(thetas, covs)
-        drift = self.drift.judge(x0, c0, x, cx)
-        found += self._observe(dp, dc, 3, drift, time_s)
+        wald = self.drift.distances(x0, c0, x, cx)
+        transitions = self.tracker.observe(
+            dc, 3, wald.statistic, wald.threshold, wald.alarm, time_s
+        )
+        for t in transitions:
+            ev = self.drift.evidence(wald, x0, x, t.position)
+            found.append((int(dp[t.position]), 3, ev, t))
         # physical bands (PhysicalBands.update, element-wise)
         live = feature_matrix(self.order, thetas, self.sample_period_s)
         base = feature_matrix(self.order, theta0, self.sample_period_s)
         found += self._bands(dp, dc, live, base, np.sqrt(sigma2), time_s)
         # the live read-out the records show
-        rss = a["rls"][dc, layout.rss]
+        rss = a["rls"][layout.rss, dc]
         with np.errstate(divide="ignore", invalid="ignore"):
-            live_sigma2 = np.where(rss > 0.0, rss / a["rls"][dc, layout.weight], 1.0)
-        a["current"][dc] = np.concatenate((live, np.sqrt(live_sigma2)[:, None]), axis=1)
+            live_sigma2 = np.where(rss > 0.0, rss / a["rls"][layout.weight, dc], 1.0)
+        a["current"][:, dc] = np.concatenate((live, np.sqrt(live_sigma2)[:, None]), axis=1).T
         return found
-
-    def _observe(
-        self, dp: Index, dc: Index, key: int, evidence: list[Evidence], time_s: Float
-    ) -> list[tuple[int, int, Evidence, BankTransition]]:
-        statistic = np.array([ev.statistic for ev in evidence])
-        threshold = np.array([ev.threshold for ev in evidence])
-        alarm = np.array([ev.alarm for ev in evidence], dtype=np.bool_)
-        transitions = self.tracker.observe(dc, key, statistic, threshold, alarm, time_s)
-        return [(int(dp[t.position]), key, evidence[t.position], t) for t in transitions]
 
     def _bands(
         self, dp: Index, dc: Index, live: Float, base: Float, output_sigma: Float, time_s: Float
@@ -750,7 +788,7 @@ class _Group:
         trace = layout.trace(column) * factor
         if trace > bound:
             scaled = [d * bound / trace for d in scaled]
-        self.arrays["rls"][c, layout.diag] = scaled
+        self.arrays["rls"][layout.diag, c] = scaled
 
 
 class FleetMonitor:

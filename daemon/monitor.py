@@ -36,6 +36,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
+from numpy.typing import NDArray
 
 from arxwatch.daemon.alert import SignalNames, build_record
 from arxwatch.daemon.decide import AlertPolicy, AlertTracker
@@ -51,7 +52,7 @@ from arxwatch.estimators.detect.variance import VarianceChange, VarianceConfig
 from arxwatch.estimators.detect.whiteness import Whiteness, WhitenessConfig
 from arxwatch.estimators.estimator import ArxEstimator
 from arxwatch.estimators.readout import PhysicalReadout, feature_names, feature_vector, read_out
-from arxwatch.estimators.rls import RlsConfig
+from arxwatch.estimators.rls import RlsConfig, StateLayout
 
 
 @dataclass(frozen=True)
@@ -129,6 +130,48 @@ class MonitorConfig:
         lam = self.rls.forgetting
         memory = 1.0 / (1.0 - lam) if lam < 1.0 else 0.0
         return int(math.ceil(self.settle_memories * memory))
+
+
+def parameter_covariances(layout: StateLayout, states: NDArray[np.float64]) -> NDArray[np.float64]:
+    """Estimated ``Cov(theta) = sigma2 U D U'`` of each RLS state, in one pass.
+
+    The sums run in a fixed order, so a state's covariance has the same bits
+    alone or in a batch: the per-asset and the fleet-wide monitors both call
+    this (``ArxEstimator.parameter_covariance`` would multiply with BLAS,
+    whose order of operations is its own).
+
+    Parameters
+    ----------
+    layout : StateLayout
+        Where each quantity sits in a state.
+    states : ndarray, shape (layout.size, k)
+        Flat RLS states, one per column.
+
+    Returns
+    -------
+    ndarray, shape (k, n_params, n_params)
+        Symmetric covariances.
+    """
+    n, k = layout.n_params, states.shape[1]
+    upper = states[layout.upper]
+    diag = states[layout.diag]
+    one = np.ones(k)
+
+    def u(i: int, j: int) -> NDArray[np.float64]:
+        # U[i, j] for i <= j: upper holds column j's entries from j(j-1)/2
+        return one if i == j else upper[j * (j - 1) // 2 + i]
+
+    rss = states[layout.rss]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        sigma2 = np.where(rss > 0.0, rss / states[layout.weight], 1.0)
+    out = np.empty((k, n, n))
+    for i in range(n):
+        for j in range(i, n):
+            acc = np.zeros(k)
+            for m in range(j, n):
+                acc = acc + u(i, m) * diag[m] * u(j, m)
+            out[:, i, j] = out[:, j, i] = sigma2 * acc
+    return out
 
 
 def readout_values(readout: PhysicalReadout, order: ArxOrder, sigma2: float) -> dict[str, float]:
@@ -209,7 +252,8 @@ class _ModeMonitor:
             self.estimator.inflate_covariance(config.reset_factor)
         if self.samples >= config.settle_samples():
             theta = self.estimator.theta
-            drift = self.drift.update(theta, self.estimator.parameter_covariance)
+            state = np.array(self.estimator.to_state()["rls"])[:, None]
+            drift = self.drift.update(theta, parameter_covariances(self.estimator.layout, state)[0])
             if drift is not None:
                 evidence.append(drift)
             readout = read_out(self.baseline.order, theta, self.baseline.sample_period_s)

@@ -19,7 +19,8 @@ floating-point operations.
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+import numpy as np
+from numpy.typing import NDArray
 
 
 def add_value(
@@ -52,31 +53,39 @@ def add_value(
 
 
 def centred_sums(
-    sums: Sequence[float], head: Sequence[float], past: Sequence[float], count: int
-) -> list[float]:
-    """Return ``C_0 .. C_p`` (see the module docstring) of the stretch so far.
+    sums: NDArray[np.float64],
+    head: NDArray[np.float64],
+    past: NDArray[np.float64],
+    count: NDArray[np.int64] | int,
+) -> NDArray[np.float64]:
+    """Return ``C_0 .. C_p`` (see the module docstring) of one or many stretches.
 
     Parameters
     ----------
-    sums, head, past : sequences of float
-        As kept by :func:`add_value`.
-    count : int
-        Length n of the stretch, > p.
+    sums : ndarray, shape (p + 2,) or (p + 2, k)
+        ``[S, P_0, .., P_p]`` as kept by :func:`add_value`, one column per stretch.
+    head, past : ndarray, shape (p,) or (p, k)
+        First and last p values, as kept by :func:`add_value`.
+    count : int or ndarray of shape (k,)
+        Length n of each stretch, > p.
 
     Returns
     -------
-    list of float, length p + 1
+    ndarray, shape (p + 1,) or (p + 1, k)
         Centred lag-k product sums; ``C_k / n`` is the biased autocovariance.
+        Element-wise arithmetic only, so a column's result does not depend
+        on the other columns.
     """
-    n = float(count)
+    n = np.asarray(count, dtype=np.float64)
     total = sums[0]
     mean = total / n
     out = []
-    head_sum = tail_sum = 0.0
-    for lag in range(len(head) + 1):
+    head_sum = np.zeros_like(total)
+    tail_sum = np.zeros_like(total)
+    for lag in range(head.shape[0] + 1):
         if lag:
-            head_sum += head[lag - 1]
-            tail_sum += past[lag - 1]
+            head_sum = head_sum + head[lag - 1]
+            tail_sum = tail_sum + past[lag - 1]
         centred = sums[lag + 1] - mean * (total - tail_sum) - mean * (total - head_sum)
         out.append(centred + (n - lag) * mean * mean)
-    return out
+    return np.array(out)

@@ -76,6 +76,7 @@ __all__ = [
     "FeatureDriftConfig",
     "ParameterDrift",
     "ParameterDriftConfig",
+    "WaldResult",
     "calibrate",
     "wald_distance",
     "wald_distances",
@@ -352,6 +353,30 @@ class FeatureDriftConfig:
             )
 
 
+@dataclass(frozen=True)
+class WaldResult:
+    """Wald tests of many rows, as arrays (see :meth:`FeatureDrift.distances`).
+
+    Attributes
+    ----------
+    statistic, threshold : ndarray, shape (k,)
+        d2 (0 where nothing could be tested) and the threshold it is
+        compared with (inf where nothing could be tested).
+    alarm : ndarray of bool, shape (k,)
+        ``statistic >= threshold`` where something was tested.
+    rank : ndarray of intp, shape (k,)
+        Degrees of freedom used (0: nothing tested).
+    usable : ndarray of bool, shape (k, m)
+        Entries defined in both the baseline and the live vector.
+    """
+
+    statistic: NDArray[np.float64]
+    threshold: NDArray[np.float64]
+    alarm: NDArray[np.bool_]
+    rank: NDArray[np.intp]
+    usable: NDArray[np.bool_]
+
+
 class _WaldDrift(ABC):
     """Evaluation schedule, baseline and Wald test shared by both detectors."""
 
@@ -513,56 +538,60 @@ class _WaldDrift(ABC):
             One per row, as :meth:`update` reports an evaluation; a row's
             evidence does not depend on the other rows.
         """
-        k = x.shape[0]
+        result = self.distances(x0, c0, x, cx, empirical)
+        return [self.evidence(result, x0, x, r) for r in range(x.shape[0])]
+
+    def distances(
+        self,
+        x0: _Vector,
+        c0: _Vector,
+        x: _Vector,
+        cx: _Vector,
+        empirical: float | None = None,
+    ) -> WaldResult:
+        """Return the numbers of :meth:`judge` as arrays; :meth:`evidence` builds a row's Evidence.
+
+        Lets a caller judging thousands of rows build Evidence only for the
+        few rows it reports.
+        """
+        k, m = x.shape
         diag0 = np.diagonal(c0, axis1=1, axis2=2)
         diagx = np.diagonal(cx, axis1=1, axis2=2)
         usable = np.isfinite(x0) & np.isfinite(x) & np.isfinite(diag0) & np.isfinite(diagx)
-        labels = self._labels()
-        out: list[Evidence | None] = [None] * k
-        patterns: dict[bytes, list[int]] = {}
-        for r in range(k):
-            patterns.setdefault(usable[r].tobytes(), []).append(r)
-        for rows in patterns.values():
-            idx = np.flatnonzero(usable[rows[0]])
+        d2 = np.zeros(k)
+        rank = np.zeros(k, dtype=np.intp)
+        if usable.all():  # the common case: one pattern, every row
+            patterns, groups = np.ones((1, m), dtype=np.bool_), np.zeros(k, dtype=np.intp)
+        else:
+            patterns, groups = np.unique(usable, axis=0, return_inverse=True)
+        for g, pattern in enumerate(patterns):
+            idx = np.flatnonzero(pattern)
             if idx.shape[0] == 0:
-                for r in rows:
-                    out[r] = self._evidence(x0[r], x[r], idx, labels, None, None, empirical)
                 continue
-            members = np.array(rows, dtype=np.intp)
+            members = np.flatnonzero(groups.reshape(-1) == g)
             sub = np.ix_(members, idx, idx)
             pair = np.ix_(members, idx)
             delta: _Vector = x[pair] - x0[pair]
-            d2, rank = wald_distances(delta, c0[sub] + cx[sub], rcond=self._rcond)
-            p_value = np.asarray(chi2.sf(d2, rank), dtype=np.float64)
-            for j, r in enumerate(rows):
-                out[r] = self._evidence(
-                    x0[r],
-                    x[r],
-                    idx,
-                    labels,
-                    (float(d2[j]), int(rank[j])),
-                    float(p_value[j]),
-                    empirical,
-                    n_full=x.shape[1],
-                )
-        return [ev for ev in out if ev is not None]
+            d2[members], rank[members] = wald_distances(delta, c0[sub] + cx[sub], rcond=self._rcond)
+        if empirical is not None:
+            threshold = np.where(rank > 0, float(empirical), math.inf)
+        else:
+            table = np.array([math.inf] + [self._chi2(df) for df in range(1, m + 1)])
+            threshold = table[rank]
+        alarm = (rank > 0) & (d2 >= threshold)
+        statistic = np.where(rank > 0, d2, 0.0)
+        return WaldResult(statistic, threshold, alarm, rank, usable)
 
-    def _evidence(
-        self,
-        x0: _Vector,
-        x: _Vector,
-        idx: NDArray[np.intp],
-        labels: tuple[str, ...],
-        distance: tuple[float, int] | None,
-        p_value: float | None,
-        empirical: float | None,
-        n_full: int = 0,
-    ) -> Evidence:
+    def evidence(self, result: WaldResult, x0: _Vector, x: _Vector, r: int) -> Evidence:
+        """Build the Evidence of row ``r`` of :meth:`distances`, as :meth:`judge` reports it."""
+        idx = np.flatnonzero(result.usable[r])
+        rank = int(result.rank[r])
         values: dict[str, float] = {}
+        labels = self._labels()
         for i in idx.tolist():
-            values[f"baseline_{labels[i]}"] = float(x0[i])
-            values[f"current_{labels[i]}"] = float(x[i])
-        if distance is None or distance[1] == 0 or p_value is None:
+            values[f"baseline_{labels[i]}"] = float(x0[r, i])
+            values[f"current_{labels[i]}"] = float(x[r, i])
+        if rank == 0:
             values["n_tested"] = 0.0
             return Evidence(
                 detector=self._name,
@@ -574,22 +603,26 @@ class _WaldDrift(ABC):
                 values=values,
                 detail="undefined",
             )
-        d2, rank = distance
-        threshold = empirical if empirical is not None else self._chi2(rank)
+        d2 = float(result.statistic[r])
         detail = ""
-        if idx.shape[0] < n_full:
+        if idx.shape[0] < x.shape[1]:
             detail = "partial"
         elif rank < idx.shape[0]:
             detail = "rank_deficient"
         values.update(
-            {"d2": d2, "df": float(rank), "p_value": p_value, "n_tested": float(idx.shape[0])}
+            {
+                "d2": d2,
+                "df": float(rank),
+                "p_value": float(chi2.sf(d2, rank)),
+                "n_tested": float(idx.shape[0]),
+            }
         )
         return Evidence(
             detector=self._name,
             family="behaviour",
             statistic=d2,
-            threshold=threshold,
-            alarm=d2 >= threshold,
+            threshold=float(result.threshold[r]),
+            alarm=bool(result.alarm[r]),
             signal=self._signal,
             values=values,
             detail=detail,

@@ -102,7 +102,7 @@ def fit_reference(
         reference; 1.0 when that is not positive.
     """
     p = len(head)
-    gamma = np.array(centred_sums(sums, head, past, count)) / float(count)
+    gamma = centred_sums(np.array(sums), np.array(head), np.array(past), count) / float(count)
     if p == 0 or gamma[0] <= 0.0:
         phi = np.zeros(p)
     else:

@@ -54,7 +54,14 @@ from arxwatch.estimators.detect._sums import add_value, centred_sums
 from arxwatch.estimators.detect.evidence import Evidence
 from arxwatch.estimators.errors import DimensionError
 
-__all__ = ["Whiteness", "WhitenessConfig", "block_evidence", "ljung_box"]
+__all__ = [
+    "Whiteness",
+    "WhitenessConfig",
+    "block_evidence",
+    "block_statistics",
+    "evidence_of_block",
+    "ljung_box",
+]
 
 _NAME = "innovation_whiteness"
 
@@ -215,11 +222,10 @@ class Whiteness:
         self._count += 1
         if self._count < self.config.window:
             return None
-        evidence = block_evidence(
-            self.config,
-            self.threshold,
-            centred_sums(self._sums, self._head, self._past, self._count),
+        centred = centred_sums(
+            np.array(self._sums), np.array(self._head), np.array(self._past), self._count
         )
+        evidence = block_evidence(self.config, self.threshold, centred.tolist())
         self.reset()
         return evidence
 
@@ -268,6 +274,44 @@ class Whiteness:
         self._count = count
 
 
+def block_statistics(
+    config: WhitenessConfig, centred: NDArray[np.float64]
+) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]]:
+    """Ljung–Box Q, its p-value and the autocorrelations of complete blocks.
+
+    Parameters
+    ----------
+    config : WhitenessConfig
+        Settings (W, L).
+    centred : ndarray, shape (L + 1, k)
+        Centred lag sums ``C_0 .. C_L`` of k blocks, from
+        :func:`arxwatch.estimators.detect._sums.centred_sums`.
+
+    Returns
+    -------
+    q, p_value : ndarray, shape (k,)
+        The statistic (0 for a constant block) and ``chi2.sf(q, L)``.
+    r : ndarray, shape (L, k)
+        Autocorrelations r_1 .. r_L.
+
+    Notes
+    -----
+    Element-wise arithmetic with the sum over lags in a fixed order, so a
+    block's numbers do not depend on the other blocks.
+    """
+    lags, n = config.lags, float(config.window)
+    denom = centred[0]
+    constant = denom <= 0.0
+    with np.errstate(divide="ignore", invalid="ignore"):
+        r = np.where(constant, 0.0, centred[1:] / np.where(constant, 1.0, denom))
+    total = np.zeros(centred.shape[1])
+    for j in range(1, lags + 1):
+        total = total + r[j - 1] * r[j - 1] / (n - j)
+    q = n * (n + 2.0) * total
+    p_value = np.asarray(chi2.sf(q, lags), dtype=np.float64)
+    return q, p_value, r
+
+
 def block_evidence(config: WhitenessConfig, threshold: float, centred: Sequence[float]) -> Evidence:
     """Evidence of one complete block from its centred lag sums ``C_0 .. C_L``.
 
@@ -285,11 +329,18 @@ def block_evidence(config: WhitenessConfig, threshold: float, centred: Sequence[
     Evidence
         As :meth:`Whiteness.update` at a block end.
     """
-    denom = centred[0]
-    lags = config.lags
-    r = [0.0] * lags if denom <= 0.0 else [c / denom for c in centred[1:]]
-    q = _q_from(r, config.window)
-    p_value = float(chi2.sf(q, lags))
+    q, p_value, r = block_statistics(config, np.asarray(centred, dtype=np.float64)[:, None])
+    return evidence_of_block(config, threshold, float(q[0]), float(p_value[0]), r[:, 0])
+
+
+def evidence_of_block(
+    config: WhitenessConfig,
+    threshold: float,
+    q: float,
+    p_value: float,
+    r: NDArray[np.float64],
+) -> Evidence:
+    """Evidence of one block from :func:`block_statistics`' numbers for it."""
     return Evidence(
         detector=_NAME,
         family="behaviour",
@@ -300,8 +351,8 @@ def block_evidence(config: WhitenessConfig, threshold: float, centred: Sequence[
         values={
             "q": q,
             "p_value": p_value,
-            "lags": float(lags),
+            "lags": float(config.lags),
             "window": float(config.window),
-            "max_abs_autocorrelation": max(abs(rj) for rj in r),
+            "max_abs_autocorrelation": float(np.max(np.abs(r))),
         },
     )

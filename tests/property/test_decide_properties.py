@@ -43,6 +43,7 @@ def test_bank_transitions_equal_per_asset_tracker(
     trackers = [AlertTracker(policy) for _ in range(rows)]
     bank = TrackerBank(policy, KEYS, capacity=2)
     bank.resize(rows)
+    scalar = TrackerBank(policy, KEYS, capacity=rows)
     for t, step in enumerate(steps):
         for key_index in (0, 1):
             chosen = {row: ev for row, (k, ev) in enumerate(step) if k == key_index}
@@ -68,5 +69,21 @@ def test_bank_transitions_equal_per_asset_tracker(
                 if tr is not None:
                     expected.append((pos, tr.state, tr.severity, tr.first_seen_s))
             assert [(b.position, b.state, b.severity, b.first_seen_s) for b in got] == expected
+            one = [
+                (pos, b.state, b.severity, b.first_seen_s)
+                for pos, row in enumerate(idx.tolist())
+                if (
+                    b := scalar.observe_one(
+                        row,
+                        key_index,
+                        float(stat[pos]),
+                        float(limit[pos]),
+                        bool(alarm[pos]),
+                        float(t),
+                    )
+                )
+                is not None
+            ]
+            assert one == expected
         for row in range(rows):
-            assert bank.active(row) == trackers[row].active()
+            assert bank.active(row) == trackers[row].active() == scalar.active(row)

@@ -91,3 +91,25 @@ def test_data_quality_alerts_form_their_own_family(baseline: Baseline, plant) ->
     assert again.active() == monitor.active()
     with pytest.raises(KeyError):
         monitor.signal_sample("unknown", 0.0, 1.0)
+
+
+def test_parameter_covariances_equal_the_estimators_own() -> None:
+    # Reference: ArxEstimator.parameter_covariance, sigma2 * U D U' by numpy matmul.
+    import numpy as np
+
+    from arxwatch.daemon.monitor import parameter_covariances
+    from arxwatch.estimators.arx import ArxOrder
+    from arxwatch.estimators.estimator import ArxEstimator
+
+    rng = np.random.default_rng(7)
+    order = ArxOrder(na=2, nb=(2, 1), nk=(1, 0))
+    states, expected = [], []
+    for _ in range(4):
+        est = ArxEstimator(order)
+        for _ in range(300):
+            est.update(float(rng.normal()), rng.normal(size=2).tolist())
+        states.append(est.to_state()["rls"])
+        expected.append(est.parameter_covariance)
+    got = parameter_covariances(est.layout, np.array(states).T)
+    np.testing.assert_allclose(got, np.array(expected), rtol=1e-12, atol=1e-300)
+    np.testing.assert_array_equal(got, got.transpose(0, 2, 1))
