@@ -122,6 +122,8 @@ _SCHEMA = (
     " topic TEXT NOT NULL, payload BLOB NOT NULL, arrival_s REAL NOT NULL)",
     "CREATE TABLE outbox (position INTEGER PRIMARY KEY, id TEXT NOT NULL UNIQUE,"
     " topic TEXT NOT NULL, payload BLOB NOT NULL, qos INTEGER NOT NULL, retain INTEGER NOT NULL)",
+    "CREATE TABLE series (position INTEGER PRIMARY KEY, key TEXT NOT NULL, chunk BLOB NOT NULL)",
+    "CREATE INDEX series_key ON series (key, position)",
 )
 
 
@@ -310,12 +312,15 @@ class StateStore:
         now_s: float,
         removed: Iterable[str] = (),
         journal_upto: int = 0,
+        appended: Mapping[str, bytes] | None = None,
+        dropped: Iterable[str] = (),
     ) -> None:
         """Save a checkpoint in one transaction: all of it or none of it.
 
-        Upserts ``entries``, deletes the ``removed`` keys, records
-        ``journal_upto`` and ``now_s``, and deletes the journal rows with
-        ``seq <= journal_upto``.
+        Upserts ``entries``, deletes the ``removed`` keys, deletes the series
+        named in ``dropped``, appends the ``appended`` chunks to their series,
+        records ``journal_upto`` and ``now_s``, and deletes the journal rows
+        with ``seq <= journal_upto``.
 
         Parameters
         ----------
@@ -326,6 +331,13 @@ class StateStore:
             :attr:`Checkpoint.saved_at_s`.
         removed : Iterable of str
             Keys to delete (unknown keys are ignored).
+        appended : Mapping of str to bytes, optional
+            A chunk to add at the end of each named series (a series grows
+            by a chunk per checkpoint: a baseline window being collected,
+            say, saved without rewriting what was saved before).
+        dropped : Iterable of str
+            Series to delete, before ``appended`` is applied (so a series can
+            be dropped and started afresh in one save).
         journal_upto : int
             Last journal sequence number the saved state includes; at least
             the one recorded by the previous save and at most the last one
@@ -345,6 +357,11 @@ class StateStore:
         for key, value in entries.items():
             _check_str(key, "every key of entries")
             _check_bytes(value, f"entries[{key!r}]")
+        chunks = dict(appended or {})
+        for key, value in chunks.items():
+            _check_str(key, "every key of appended")
+            _check_bytes(value, f"appended[{key!r}]")
+        cut = _keys(dropped, "dropped")
         gone = _keys(removed, "removed")
         both = sorted(gone.intersection(entries))
         if both:
@@ -370,6 +387,39 @@ class StateStore:
                 [(journal_upto, "journal_upto"), (float(now_s), "saved_at_s")],
             )
             conn.execute("DELETE FROM journal WHERE seq <= ?", (journal_upto,))
+            conn.executemany("DELETE FROM series WHERE key = ?", [(key,) for key in cut])
+            conn.executemany("INSERT INTO series (key, chunk) VALUES (?, ?)", chunks.items())
+
+    def series(self, key: str) -> bytes:
+        """Return the chunks of series ``key`` joined in the order they were appended.
+
+        Returns
+        -------
+        bytes
+            Empty for an unknown series.
+
+        Raises
+        ------
+        StoreError
+            If reading fails.
+        """
+        _check_str(key, "key")
+        with self._atomic("reading a series") as conn:
+            rows = conn.execute(
+                "SELECT chunk FROM series WHERE key = ? ORDER BY position", (key,)
+            ).fetchall()
+        return b"".join(bytes(chunk) for (chunk,) in rows)
+
+    def series_keys(self) -> list[str]:
+        """Return the names of the saved series, sorted.
+
+        Raises
+        ------
+        StoreError
+            If reading fails.
+        """
+        with self._atomic("listing the series") as conn:
+            return [key for (key,) in conn.execute("SELECT DISTINCT key FROM series ORDER BY key")]
 
     def load_checkpoint(self) -> Checkpoint:
         """Return the saved checkpoint (empty, ``journal_upto`` 0, if never saved).

@@ -546,3 +546,22 @@ def test_write_atomically_checks_its_arguments(tmp_path: Path) -> None:
     with pytest.raises(StoreError, match="nowhere/x.json: cannot create a temporary file"):
         write_atomically(tmp_path / "nowhere" / "x.json", b"{}")
     assert list(tmp_path.iterdir()) == []
+
+
+def test_series_grow_by_chunks_within_checkpoints_and_drop(tmp_path: Path) -> None:
+    path = tmp_path / "state.db"
+    with StateStore(path) as store:
+        store.save_checkpoint({}, now_s=1.0, appended={"learn/a": b"ab", "learn/b": b"x"})
+        store.save_checkpoint({}, now_s=2.0, appended={"learn/a": b"cd"})
+        assert store.series("learn/a") == b"abcd"
+        assert store.series_keys() == ["learn/a", "learn/b"]
+        # dropped first, then the new chunk: a series restarted in one save
+        store.save_checkpoint(
+            {}, now_s=3.0, dropped=["learn/a", "nothing"], appended={"learn/a": b"z"}
+        )
+    with StateStore(path) as store:
+        assert store.series("learn/a") == b"z"
+        assert store.series("learn/b") == b"x"
+        assert store.series("unknown") == b""
+        with pytest.raises(TypeError):
+            store.save_checkpoint({}, now_s=4.0, dropped="learn/a")
