@@ -943,14 +943,46 @@ class FleetMonitor:
         if self._quality is not None:
             self._quality.clear([slot])
         for b, code in zip(baselines.baselines, codes, strict=True):
-            key = (b.order, b.sample_period_s)
-            g = self._group_of.get(key)
-            if g is None:
-                g = self._group_of[key] = len(self._groups)
-                self._groups.append(_Group(b.order, b.sample_period_s, self.config))
-            self._chan_group[slot, code] = g
-            self._chan_index[slot, code] = self._groups[g].add(slot, code, b)
+            self._add_channel(slot, code, b)
         return slot
+
+    def _add_channel(self, slot: int, code: int, baseline: Baseline) -> None:
+        key = (baseline.order, baseline.sample_period_s)
+        g = self._group_of.get(key)
+        if g is None:
+            g = self._group_of[key] = len(self._groups)
+            self._groups.append(_Group(baseline.order, baseline.sample_period_s, self.config))
+        self._chan_group[slot, code] = g
+        self._chan_index[slot, code] = self._groups[g].add(slot, code, baseline)
+
+    def add_baseline(self, asset_id: str, baseline: Baseline) -> None:
+        """Start judging one more operating mode of a monitored asset.
+
+        For baselines learned one mode at a time: the asset's other modes
+        keep their state.
+
+        Raises
+        ------
+        KeyError
+            If the asset is not monitored.
+        ValueError
+            If the mode already has a baseline, or mixing it with the
+            asset's modes would break :class:`BaselineSet`'s rules (a
+            baseline without a mode must be the asset's only one).
+        """
+        slot = self._slots[asset_id]
+        modes = [self._mode_labels[code] for code, _, _ in self._channels(slot)]
+        if baseline.order.n_inputs != len(self.names.inputs):
+            raise ValueError(
+                f"asset {asset_id!r} mode {baseline.mode!r}: names give "
+                f"{len(self.names.inputs)} input(s), the baseline has {baseline.order.n_inputs}"
+            )
+        if baseline.mode in modes or (None in modes) or (baseline.mode is None and modes):
+            raise ValueError(
+                f"asset {asset_id!r} has baselines for modes {modes}; cannot add mode "
+                f"{baseline.mode!r}"
+            )
+        self._add_channel(slot, self._mode_code(baseline.mode), baseline)
 
     def remove_asset(self, asset_id: str) -> None:
         """Stop monitoring ``asset_id`` and free its arrays for reuse.

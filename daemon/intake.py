@@ -83,7 +83,7 @@ from __future__ import annotations
 import math
 import operator
 from array import array
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from typing import Any, Literal, get_args
 
@@ -608,8 +608,19 @@ class IntakeBank:
         )
         self._pending.extend((gap_count, gap_total))
 
-    def take_quality(self) -> list[tuple[int, Evidence]]:
+    def take_quality(
+        self, needed: Callable[[int, int], bool] | None = None
+    ) -> list[tuple[int, Evidence]]:
         """Return the data-quality evidence of the samples added since the last take.
+
+        Parameters
+        ----------
+        needed : callable, optional
+            ``needed(slot, q)`` for a check of quality signal ``q`` in which
+            nothing alarms: whether its evidence is wanted anyway (its alert
+            is raised or has alarms pending). Returning False skips building
+            the three Evidence objects, the bulk of the cost; a quiet
+            evaluation of a quiet alert changes nothing. None builds all.
 
         Returns
         -------
@@ -628,6 +639,14 @@ class IntakeBank:
             )
             slot, q, gap, moved = int(slot_f), int(q_f), gap_f == 1.0, moved_f == 1.0
             config = self._quality_configs[q]
+            if (
+                needed is not None
+                and not gap
+                and config.minimum <= value <= config.maximum
+                and not (moved and flat_s >= config.stuck_window_s)
+                and not needed(slot, q)
+            ):
+                continue
             signal = self.quality_signals[q]
             if value < config.minimum:
                 side, limit, outside = "low", config.minimum, True

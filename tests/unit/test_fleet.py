@@ -268,3 +268,23 @@ def test_memory_per_asset_is_a_few_hundred_floats(assets: dict) -> None:
         fleet.add_asset(f"block-a/vav-{k}", baselines)
     per_asset = fleet.memory_bytes() / len(fleet)
     assert per_asset < 2048, per_asset
+
+
+def test_a_mode_added_later_judges_as_if_given_at_start(assets: dict) -> None:
+    asset = "block-d/ahu-9"
+    both, y, u, modes = assets[asset]
+    occupied, unoccupied = both.baselines
+    fleet = FleetMonitor(NAMES)
+    slot = fleet.add_asset(asset, BaselineSet((occupied,)))
+    fleet.add_baseline(asset, unoccupied)
+    scalar = AssetMonitor(asset, both, NAMES)
+    expected, got = [], []
+    for k in range(int(1.5 * PER_DAY)):
+        t = START_S + k * SAMPLE_PERIOD_S
+        expected += scalar.step(t, float(y[k]), [float(u[k])], modes[k])
+        got += fleet.step([slot], [t], [float(y[k])], [[float(u[k])]], [modes[k]], [False])
+    assert got == expected
+    with pytest.raises(ValueError, match="cannot add mode 'occupied'"):
+        fleet.add_baseline(asset, occupied)
+    with pytest.raises(KeyError):
+        fleet.add_baseline("block-z/none", occupied)

@@ -515,3 +515,25 @@ def test_mode_codes_outside_the_saved_labels_are_refused() -> None:
     state["meta"]["mode_labels"] = []
     with pytest.raises(ValueError, match="mode codes outside the 0 saved labels"):
         bank().load_state(state)
+
+
+def test_take_quality_skips_quiet_checks_the_caller_does_not_need() -> None:
+    # A check in which nothing alarms is built only if needed(slot, q) says so;
+    # one that alarms (out of range here) is always built.
+    bank = IntakeBank(
+        AlignConfig(sample_period_s=60.0, output="sat", inputs=("valve",)),
+        {"sat": QualityConfig(expected_period_s=60.0, minimum=0.0, maximum=40.0)},
+    )
+    slot = bank.add_asset()
+    asked: list[tuple[int, int]] = []
+
+    def needed(s: int, q: int) -> bool:
+        asked.append((s, q))
+        return False
+
+    bank.add(slot, 0, 1.7e9, 20.0)
+    bank.add(slot, 0, 1.7e9 + 60.0, 55.0)  # out of range: always built
+    taken = bank.take_quality(needed)
+    assert asked == [(slot, 0)]
+    assert [ev.detector for _, ev in taken] == ["out_of_range", "stuck", "gap"]
+    assert taken[0][1].alarm
