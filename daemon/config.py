@@ -50,6 +50,7 @@ from arxwatch.daemon.route import (
     validate_topic,
 )
 from arxwatch.estimators.arx import ArxOrder
+from arxwatch.estimators.baseline import LearnerConfig
 from arxwatch.estimators.detect.quality import QualityConfig
 from arxwatch.estimators.errors import OrderError
 
@@ -1074,6 +1075,7 @@ class AssetClassConfig:
             scale=own.scale if own and own.scale is not None else p.scale,
             offset=own.offset if own and own.offset is not None else p.offset,
             max_payload_bytes=self.max_payload_bytes,
+            labels=self.mode is not None and signal == self.mode.signal,
         )
 
     def align_config(self) -> AlignConfig:
@@ -1116,6 +1118,35 @@ class AssetClassConfig:
                 ),
             ),
             evaluate_every=base.evaluate_every if d.evaluate_every is None else d.evaluate_every,
+        )
+
+    def learner_config(self) -> LearnerConfig:
+        """Return the settings of a live baseline learner for one asset of the class.
+
+        Raises
+        ------
+        ValueError
+            If the class does not learn live, or its span is too short for
+            the model orders and the acceptance rule.
+        """
+        span = self.baseline.learn_for_s
+        if span is None:
+            raise ValueError(f"asset class {self.name!r} loads its baselines from a file")
+        modes: tuple[str | None, ...] = (None,)
+        if self.mode is not None:
+            if self.mode.values is None:
+                raise ValueError(
+                    "learning a baseline per operating mode needs the mode labels: "
+                    "list them under mode.values"
+                )
+            modes = self.mode.values
+        return LearnerConfig(
+            sample_period_s=self.sample_period_s,
+            span_s=span,
+            max_samples=int(span // self.sample_period_s) + 1,
+            modes=modes,
+            n_inputs=len(self.inputs),
+            order=self.model.order,
         )
 
     def signal_names(self) -> SignalNames:
@@ -1197,6 +1228,10 @@ def _asset_class(r: _Reader, value: object, path: str, limits: LimitsConfig) -> 
     ):
         r.build(where, partial(config.payload_format, item.signal))
     r.build(_key(path, "forgetting"), replace(config, detectors=DetectorsConfig()).monitor_config)
+    if config.baseline.learn_for_s is not None:
+        needs_labels = config.mode is not None and config.mode.values is None
+        where = "mode.values" if needs_labels else "baseline.learn_for_s"
+        r.build(_key(path, where), config.learner_config)
     for key in (*_DETECTOR_NUMBERS, "evaluate_every"):
         if getattr(config.detectors, key) is not None:
             alone = DetectorsConfig(**{key: getattr(config.detectors, key)})

@@ -48,6 +48,14 @@ Checks, in order (the first failure decides the reason):
     ``quality_field`` configured but absent, or not a string, integer or
     boolean. A well-formed quality outside ``good_quality`` is not a
     rejection: the sample is kept with ``quality_ok=False``.
+``bad_label``
+    A format for labels (an operating-mode signal, ``labels=True``) got an
+    empty label, one longer than :data:`MAX_LABEL_CHARS` characters, or one
+    with control characters.
+
+With ``labels=True`` the value may be text (a JSON string, or for bare
+payloads any text that is not a decimal number): the sample's value is then
+the stripped label, unscaled. Numbers are still numbers.
 
 Examples
 --------
@@ -68,7 +76,7 @@ from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from typing import Any, Final, Literal
 
-__all__ = ["REJECT_REASONS", "PayloadFormat", "Rejected", "Sample", "decode"]
+__all__ = ["MAX_LABEL_CHARS", "REJECT_REASONS", "PayloadFormat", "Rejected", "Sample", "decode"]
 
 #: Every reason :func:`decode` can return, in check order (for pre-created metric labels).
 REJECT_REASONS: Final[tuple[str, ...]] = (
@@ -86,7 +94,11 @@ REJECT_REASONS: Final[tuple[str, ...]] = (
     "time_in_future",
     "time_too_old",
     "bad_quality",
+    "bad_label",
 )
+
+#: Longest operating-mode label accepted, in characters.
+MAX_LABEL_CHARS: Final = 64
 
 PayloadKind = Literal["json", "number"]
 TimeFormat = Literal["epoch_s", "epoch_ms", "iso8601"]
@@ -110,8 +122,9 @@ class Sample:
     time_s : float
         Measurement time, Unix epoch seconds (the payload's timestamp, or the
         arrival time when the format has no time field).
-    value : float
-        Measurement after ``value * scale + offset``; always finite.
+    value : float or str
+        Measurement after ``value * scale + offset``; always finite. A label
+        (str, unscaled) for a format with ``labels=True``.
     arrival_s : float
         Arrival time passed to :func:`decode`, Unix epoch seconds.
     quality_ok : bool
@@ -120,7 +133,7 @@ class Sample:
     """
 
     time_s: float
-    value: float
+    value: float | str
     arrival_s: float
     quality_ok: bool
 
@@ -183,6 +196,8 @@ class PayloadFormat:
     max_age_s : float
         Accept timestamps at most this far behind arrival; ``math.inf``
         disables the check (default 7 days).
+    labels : bool
+        Accept text values as labels (an operating-mode signal).
 
     Raises
     ------
@@ -202,6 +217,7 @@ class PayloadFormat:
     max_payload_bytes: int = 4096
     max_future_s: float = 300.0
     max_age_s: float = 7 * 86400.0
+    labels: bool = False
     _value_path: tuple[str, ...] = field(init=False, repr=False, compare=False)
     _time_path: tuple[str, ...] | None = field(init=False, repr=False, compare=False)
     _quality_path: tuple[str, ...] | None = field(init=False, repr=False, compare=False)
@@ -344,12 +360,22 @@ def _decode_json(text: str, arrival_s: float, fmt: PayloadFormat) -> Sample | Re
     raw = _lookup(doc, fmt._value_path)
     if raw is _MISSING:
         return Rejected("missing_value", f"no {fmt.value_field!r} in payload")
-    number = _as_float(raw)
-    if number is None:
-        return Rejected("bad_value", f"{fmt.value_field}: expected a number, got {_json_type(raw)}")
-    value = number * fmt.scale + fmt.offset
-    if not math.isfinite(value):
-        return Rejected("non_finite", f"{fmt.value_field}: {value!r} after scaling")
+    value: float | str
+    if fmt.labels and type(raw) is str:
+        label = _label(raw)
+        if isinstance(label, Rejected):
+            return label
+        value = label
+    else:
+        number = _as_float(raw)
+        if number is None:
+            expected = "a number or a label" if fmt.labels else "a number"
+            return Rejected(
+                "bad_value", f"{fmt.value_field}: expected {expected}, got {_json_type(raw)}"
+            )
+        value = number * fmt.scale + fmt.offset
+        if not math.isfinite(value):
+            return Rejected("non_finite", f"{fmt.value_field}: {value!r} after scaling")
 
     if fmt._time_path is None:
         time_s = arrival_s
@@ -393,6 +419,11 @@ def _decode_number(text: str, arrival_s: float, fmt: PayloadFormat) -> Sample | 
     # Stripping the allowed characters leaves nothing only if every character
     # is one of them; this keeps float() away from "nan", "inf", "1_0", "١".
     if not stripped or stripped.strip(_DECIMAL_CHARS):
+        if fmt.labels:
+            label = _label(stripped)
+            if isinstance(label, Rejected):
+                return label
+            return Sample(arrival_s, label, arrival_s, True)
         return Rejected("not_a_number", f"not a decimal number: {_preview(stripped)}")
     try:
         number = float(stripped)
@@ -402,6 +433,18 @@ def _decode_number(text: str, arrival_s: float, fmt: PayloadFormat) -> Sample | 
     if not math.isfinite(value):
         return Rejected("non_finite", f"{value!r} after scaling")
     return Sample(arrival_s, value, arrival_s, True)
+
+
+def _label(text: str) -> str | Rejected:
+    """Check a mode label: stripped, non-empty, short, printable."""
+    label = text.strip()
+    if not label:
+        return Rejected("bad_label", "empty label")
+    if len(label) > MAX_LABEL_CHARS:
+        return Rejected("bad_label", f"label longer than {MAX_LABEL_CHARS} characters")
+    if not label.isprintable():
+        return Rejected("bad_label", f"label with control characters: {_preview(label)}")
+    return label
 
 
 def _lookup(doc: dict[str, Any], path: tuple[str, ...]) -> Any:

@@ -306,3 +306,16 @@ def test_check_command_on_a_bad_file(tmp_path: Path, capsys: pytest.CaptureFixtu
     captured = capsys.readouterr()
     assert captured.out == ""
     assert "bad.yaml: broker.keepalive: unknown key; did you mean 'keepalive_s'?" in captured.err
+
+
+def test_learning_per_mode_needs_the_mode_labels() -> None:
+    text = (
+        Path(EXAMPLE)
+        .read_text()
+        .replace(
+            "      values: [occupied, unoccupied, economiser]   # optional list of known labels\n",
+            "",
+        )
+    )
+    with pytest.raises(ConfigError, match=r"asset_classes\[0\]\.mode\.values: learning a baseline"):
+        parse_config(text, "site.yaml")

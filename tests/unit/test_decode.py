@@ -310,6 +310,7 @@ def test_every_reason_is_reachable_and_listed() -> None:
         reason(payload(value=1, ts=ARRIVAL_S + 1e6)),
         reason(payload(value=1, ts=ARRIVAL_S - 1e7)),
         reason(payload(value=1, ts=ARRIVAL_S), quality),
+        reason(payload(value="  ", ts=ARRIVAL_S), PayloadFormat(labels=True)),
     }
     assert seen == set(REJECT_REASONS)
     assert len(REJECT_REASONS) == len(set(REJECT_REASONS))
@@ -382,3 +383,20 @@ def test_format_is_frozen_and_comparable() -> None:
         fmt.scale = 2.0  # type: ignore[misc]
     assert fmt == PayloadFormat(value_field="data.temp")
     assert "_value_path" not in repr(fmt)
+
+
+def test_labels_for_a_mode_signal() -> None:
+    labels = PayloadFormat(labels=True)
+    sample = decode(payload(value=" occupied ", ts=ARRIVAL_S), ARRIVAL_S, labels)
+    assert isinstance(sample, Sample) and sample.value == "occupied"
+    # numbers stay numbers (the aligner turns 2.0 into the label "2")
+    sample = decode(payload(value=2, ts=ARRIVAL_S), ARRIVAL_S, labels)
+    assert isinstance(sample, Sample) and sample.value == 2.0
+    bare = PayloadFormat(kind="number", labels=True)
+    sample = decode(b"economiser\n", ARRIVAL_S, bare)
+    assert isinstance(sample, Sample) and sample.value == "economiser"
+    assert reason(payload(value="x" * 65, ts=ARRIVAL_S), labels) == "bad_label"
+    assert reason(payload(value="a\tb", ts=ARRIVAL_S), labels) == "bad_label"
+    assert reason(payload(value=True, ts=ARRIVAL_S), labels) == "bad_value"
+    # without labels=True text stays refused
+    assert reason(payload(value="occupied", ts=ARRIVAL_S)) == "bad_value"
