@@ -612,6 +612,24 @@ class Router:
         """Discovered asset ids -> asset class (read-only live view)."""
         return MappingProxyType(self._assets)
 
+    def admit(self, asset_id: str, asset_class: str) -> None:
+        """Register an asset known from a checkpoint, as if its topic had been routed.
+
+        Raises
+        ------
+        ValueError
+            If ``asset_class`` names no rule, the id is known under another
+            class, or the asset limit is reached.
+        """
+        if asset_class not in {rule.asset_class for rule in self.rules}:
+            raise ValueError(f"no asset class {asset_class!r} among the rules")
+        known = self._assets.get(asset_id)
+        if known is not None and known != asset_class:
+            raise ValueError(f"asset {asset_id!r} is known as a {known!r}, not a {asset_class!r}")
+        if known is None and len(self._assets) >= self.max_assets:
+            raise ValueError(f"asset limit {self.max_assets} reached; cannot admit {asset_id!r}")
+        self._assets[asset_id] = asset_class
+
     def subscriptions(self) -> tuple[str, ...]:
         """Return the filters to subscribe to, deduplicated, in rule order.
 

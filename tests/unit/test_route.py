@@ -389,3 +389,15 @@ def test_bad_replica_lists(replica: str, replicas: list[str], message: str) -> N
         owns("s1", replica, replicas)
     with pytest.raises(ValueError, match=message):
         share(["s1"], replica, replicas)
+
+
+def test_admit_registers_known_assets_within_the_limit() -> None:
+    rule = RouteRule("vav", TopicPattern.parse("s/{asset}/t"), asset_id="{asset}", signal="t")
+    router = Router([rule], max_assets=1)
+    router.admit("v-1", "vav")
+    router.admit("v-1", "vav")  # again: fine
+    assert router.route("s/v-1/t") == Route("vav", "v-1", "t")
+    with pytest.raises(ValueError, match="asset limit 1 reached"):
+        router.admit("v-2", "vav")
+    with pytest.raises(ValueError, match="no asset class 'ahu'"):
+        router.admit("v-1", "ahu")

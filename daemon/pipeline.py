@@ -1,0 +1,604 @@
+"""The daemon's processing, shared by the live service and replay.
+
+::
+
+    feed(topic, payload, arrival_s)   route -> decode -> align (IntakeBank)
+                                      -> data-quality lifecycle
+    advance(now_s)                    close grid points -> rows
+                                      -> live baseline learners, until a mode is accepted
+                                      -> FleetMonitor: drift detectors and alert lifecycle
+                                      -> alert records (schema arxwatch.alert/1)
+
+Pure: no clock, no MQTT, no SQLite, no threads. ``arxwatch run`` feeds it
+from MQTT with the wall clock as ``now_s``; ``arxwatch replay`` feeds it from
+files with the recorded times; so the same samples give the same alerts.
+Every message that cannot be used is counted by reason in :class:`Counts`
+and dropped; nothing raises for bad input.
+
+State for checkpoints comes out of :meth:`Pipeline.checkpoint` as named
+blobs (numeric arrays in ``npz`` form, no pickle, plus JSON) and goes back
+in with :meth:`Pipeline.restore`. A baseline window being learned live
+grows by a chunk per checkpoint (a store series), so a week of samples is
+not rewritten every minute.
+
+Where the baselines come from, per asset class:
+
+* ``baseline.file``: a baseline file (:mod:`arxwatch.daemon.library`);
+  an asset found there is judged from its first row, an asset missing from
+  it is counted as ``no_baseline`` and not judged.
+* ``baseline.learn_for_s``: a :class:`~arxwatch.estimators.baseline.LiveBaselineLearner`
+  per asset collects an uninterrupted window per operating mode, fits it
+  (order chosen by BIC, acceptance rule), and an accepted mode starts being
+  judged at once. Fits are spread over calls (:data:`FITS_PER_ADVANCE`) so
+  that a fleet commissioned together does not stall the service.
+"""
+
+from __future__ import annotations
+
+import io
+import json
+from collections import Counter, deque
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from arxwatch.daemon.config import AssetClassConfig, Config
+from arxwatch.daemon.decode import PayloadFormat, Rejected, decode
+from arxwatch.daemon.fleet import FleetMonitor
+from arxwatch.daemon.intake import IntakeBank
+from arxwatch.daemon.route import Refused, Router
+from arxwatch.estimators.baseline import BaselineSet, LiveBaselineLearner
+
+__all__ = ["FITS_PER_ADVANCE", "BaselineEvent", "Checkpoint", "Counts", "Pipeline"]
+
+#: Live baseline fits done per :meth:`Pipeline.advance` call at most (each
+#: takes tens to hundreds of milliseconds); more wait for the next call.
+FITS_PER_ADVANCE = 2
+
+_STATE_VERSION = 1
+_META = "__meta__"
+
+
+def pack(meta: Mapping[str, Any], arrays: Mapping[str, NDArray[Any]]) -> bytes:
+    """Numeric arrays and a JSON description in one ``npz`` blob (no pickle)."""
+    buffer = io.BytesIO()
+    text = np.frombuffer(json.dumps(meta, allow_nan=False).encode("utf-8"), dtype=np.uint8)
+    named: dict[str, Any] = {_META: text, **arrays}
+    np.savez(buffer, **named)
+    return buffer.getvalue()
+
+
+def unpack(blob: bytes) -> tuple[dict[str, Any], dict[str, NDArray[Any]]]:
+    """Read a blob written by :func:`pack`.
+
+    Raises
+    ------
+    ValueError
+        If the blob is not such a file.
+    """
+    try:
+        with np.load(io.BytesIO(blob), allow_pickle=False) as saved:
+            arrays = {name: saved[name] for name in saved.files}
+    except (OSError, ValueError, EOFError) as err:
+        raise ValueError(f"not a saved state blob: {err}") from None
+    raw = arrays.pop(_META, None)
+    if raw is None:
+        raise ValueError("saved state blob lacks its description")
+    meta: dict[str, Any] = json.loads(raw.tobytes().decode("utf-8"))
+    return meta, arrays
+
+
+@dataclass
+class Counts:
+    """Running tallies for metrics (the service turns differences into counters).
+
+    Attributes
+    ----------
+    messages : int
+        Messages fed.
+    refused : Counter
+        Topics routing refused, by reason.
+    rejected : Counter
+        Payloads the decoder rejected, by reason.
+    samples : Counter
+        Decoded samples by alignment outcome, plus ``bad_quality_flag`` for
+        samples whose quality flag said not good (dropped).
+    rows : int
+        Aligned rows produced.
+    grid_points_skipped : int
+        Grid points without a complete row.
+    rows_judged : int
+        Rows that reached a detector.
+    rows_not_judged : Counter
+        Rows by reason: ``learning``, ``no_baseline``, ``mode_without_baseline``.
+    transitions : Counter
+        Alert transitions by (detector, state).
+    baselines : Counter
+        Live fits by outcome: ``accepted``, ``refused``.
+    """
+
+    messages: int = 0
+    refused: Counter[str] = field(default_factory=Counter)
+    rejected: Counter[str] = field(default_factory=Counter)
+    samples: Counter[str] = field(default_factory=Counter)
+    rows: int = 0
+    grid_points_skipped: int = 0
+    rows_judged: int = 0
+    rows_not_judged: Counter[str] = field(default_factory=Counter)
+    transitions: Counter[tuple[str, str]] = field(default_factory=Counter)
+    baselines: Counter[str] = field(default_factory=Counter)
+
+
+@dataclass(frozen=True)
+class BaselineEvent:
+    """A live baseline fit: what the service logs.
+
+    Attributes
+    ----------
+    asset, asset_class : str
+        The asset.
+    mode : str or None
+        Operating mode of the window.
+    accepted : bool
+        Whether the baseline was accepted (and is now judged against).
+    fit_percent : float or None
+        Fit on held-back data, when a model was fitted.
+    reasons : tuple of str
+        Why the window was refused; empty when accepted.
+    """
+
+    asset: str
+    asset_class: str
+    mode: str | None
+    accepted: bool
+    fit_percent: float | None
+    reasons: tuple[str, ...]
+
+
+@dataclass(frozen=True)
+class Checkpoint:
+    """What one checkpoint writes (see :meth:`StateStore.save_checkpoint`).
+
+    Attributes
+    ----------
+    entries : dict of str to bytes
+        Named blobs to write.
+    appended : dict of str to bytes
+        Chunks to append to series (baseline windows being learned).
+    dropped : list of str
+        Series to delete first (windows fitted or restarted).
+    """
+
+    entries: dict[str, bytes]
+    appended: dict[str, bytes]
+    dropped: list[str]
+
+
+class _Class:
+    """Everything of one asset class: alignment, learners, the fleet."""
+
+    def __init__(self, config: AssetClassConfig, library: Mapping[str, BaselineSet] | None) -> None:
+        self.config = config
+        self.signals = config.signals
+        self.signal_index = {signal: i for i, signal in enumerate(self.signals)}
+        self.formats: dict[str, PayloadFormat] = {s: config.payload_format(s) for s in self.signals}
+        quality = config.quality_configs()
+        self.intake = IntakeBank(config.align_config(), quality)
+        self.fleet = FleetMonitor(
+            config.signal_names(), config.monitor_config(), quality_signals=tuple(quality)
+        )
+        self.n_checked = len(quality)
+        self.library = library
+        self.learner_config = (
+            config.learner_config() if config.baseline.learn_for_s is not None else None
+        )
+        self.assets: list[str | None] = []  # intake slot -> asset id
+        self.slot_of: dict[str, int] = {}
+        self.fleet_slot = np.zeros(0, dtype=np.int32)  # intake slot -> fleet slot, -1: none
+        self.learners: dict[int, LiveBaselineLearner] = {}
+        self.window_rows: dict[int, list[float]] = {}  # new window rows since the checkpoint
+        self.windows_dropped: set[int] = set()
+        self.accepted: dict[int, list[dict[str, Any]]] = {}  # accepted baselines, as dicts
+
+    def window_key(self, slot: int) -> str:
+        return f"window/{self.config.name}/{self.assets[slot]}"
+
+    def add(self, asset_id: str) -> int:
+        slot = self.intake.add_asset()
+        while len(self.assets) <= slot:
+            self.assets.append(None)
+        self.assets[slot] = asset_id
+        self.slot_of[asset_id] = slot
+        if slot >= self.fleet_slot.shape[0]:
+            grown = np.full(max(slot + 1, 2 * self.fleet_slot.shape[0]), -1, dtype=np.int32)
+            grown[: self.fleet_slot.shape[0]] = self.fleet_slot
+            self.fleet_slot = grown
+        self.fleet_slot[slot] = -1
+        if self.library is not None:
+            known = self.library.get(asset_id)
+            if known is not None:
+                self.fleet_slot[slot] = self.fleet.add_asset(asset_id, known)
+        elif self.learner_config is not None:
+            self.learners[slot] = LiveBaselineLearner(self.learner_config)
+        return slot
+
+    def needed(self, slot: int, q: int) -> bool:
+        fleet_slot = int(self.fleet_slot[slot])
+        if fleet_slot < 0:
+            return False
+        busy = self.fleet.quality_busy(fleet_slot)
+        return bool(busy[4 * q : 4 * q + 4].any())
+
+
+class Pipeline:
+    """Messages in, alert records out, for every asset class of a configuration.
+
+    Parameters
+    ----------
+    config : Config
+        The validated site configuration.
+    libraries : mapping of str to mapping of str to BaselineSet, optional
+        Per asset class that loads baselines from a file, the file's
+        content (asset id -> baselines); read by the caller.
+
+    Raises
+    ------
+    ValueError
+        If a class that loads baselines from a file has no library.
+    """
+
+    def __init__(
+        self,
+        config: Config,
+        libraries: Mapping[str, Mapping[str, BaselineSet]] | None = None,
+    ) -> None:
+        self.config = config
+        self.router: Router = config.router()
+        libraries = libraries or {}
+        self._classes: dict[str, _Class] = {}
+        for asset_class in config.asset_classes:
+            library = None
+            if asset_class.baseline.file is not None:
+                library = libraries.get(asset_class.name)
+                if library is None:
+                    raise ValueError(
+                        f"asset class {asset_class.name!r} loads its baselines from "
+                        f"{asset_class.baseline.file}, but no baselines were given for it"
+                    )
+            self._classes[asset_class.name] = _Class(asset_class, library)
+        self.counts = Counts()
+        self.events: list[BaselineEvent] = []
+        self._to_fit: deque[tuple[str, int, str | None]] = deque()
+        self.last_sample_s: float | None = None
+
+    # -- messages -------------------------------------------------------------
+    def feed(self, topic: str, payload: bytes, arrival_s: float) -> list[dict[str, Any]]:
+        """Take one MQTT message; return the data-quality alert records it causes.
+
+        Never raises for bad input: a topic no class claims, an unreadable
+        payload or an unusable sample is counted (see :class:`Counts`).
+        """
+        counts = self.counts
+        counts.messages += 1
+        route = self.router.route(topic)
+        if isinstance(route, Refused):
+            counts.refused[route.reason] += 1
+            return []
+        state = self._classes[route.asset_class]
+        slot = state.slot_of.get(route.asset_id)
+        if slot is None:
+            slot = state.add(route.asset_id)
+        sample = decode(payload, arrival_s, state.formats[route.signal])
+        if isinstance(sample, Rejected):
+            counts.rejected[sample.reason] += 1
+            return []
+        if not sample.quality_ok:
+            counts.samples["bad_quality_flag"] += 1
+            return []
+        outcome = state.intake.add(
+            slot, state.signal_index[route.signal], sample.time_s, sample.value
+        )
+        counts.samples[outcome] += 1
+        if outcome != "accepted":
+            return []
+        if self.last_sample_s is None or sample.time_s > self.last_sample_s:
+            self.last_sample_s = sample.time_s
+        taken = state.intake.take_quality(state.needed)
+        if not taken:
+            return []
+        fleet_slot = int(state.fleet_slot[slot])
+        if fleet_slot < 0:
+            return []
+        records = state.fleet.quality(fleet_slot, [ev for _, ev in taken], sample.time_s)
+        self._count_transitions(records)
+        return records
+
+    # -- the grid -------------------------------------------------------------
+    def advance(self, now_s: float) -> list[dict[str, Any]]:
+        """Close every grid point up to ``now_s`` (less each class's lateness); judge the rows.
+
+        Returns
+        -------
+        list of dict
+            Alert records caused by the rows (and by baselines accepted now).
+        """
+        records: list[dict[str, Any]] = []
+        for state in self._classes.values():
+            skipped_before = state.intake.counts()["incomplete"]
+            batch = state.intake.advance(now_s)
+            self.counts.grid_points_skipped += state.intake.counts()["incomplete"] - skipped_before
+            if not len(batch):
+                continue
+            self.counts.rows += len(batch)
+            labels = [
+                None if code < 0 else state.intake.mode_label(int(code))
+                for code in batch.mode.tolist()
+            ]
+            fleet_slots = state.fleet_slot[batch.slots]
+            judged = fleet_slots >= 0
+            if judged.any():
+                idx = np.flatnonzero(judged)
+                skipped = state.fleet.skipped
+                found = state.fleet.step(
+                    fleet_slots[idx].astype(np.intp),
+                    batch.time_s[idx],
+                    batch.y[idx],
+                    batch.u[idx],
+                    [labels[i] for i in idx.tolist()],
+                    batch.restart[idx],
+                )
+                without = state.fleet.skipped - skipped
+                self.counts.rows_judged += idx.shape[0] - without
+                if without:
+                    self.counts.rows_not_judged["mode_without_baseline"] += without
+                self._count_transitions(found)
+                records += found
+            if state.learners:
+                self._learn(state, batch.slots, batch.time_s, batch.y, batch.u, labels, judged)
+            not_judged = int((~judged).sum())
+            learning = sum(1 for s in batch.slots[~judged].tolist() if s in state.learners)
+            if learning:
+                self.counts.rows_not_judged["learning"] += learning
+            if not_judged - learning:
+                self.counts.rows_not_judged["no_baseline"] += not_judged - learning
+        self._fit_some()
+        return records
+
+    def check_stale(self, now_s: float) -> list[dict[str, Any]]:
+        """Check every monitored signal for staleness at ``now_s``; return alert records."""
+        records: list[dict[str, Any]] = []
+        for state in self._classes.values():
+            for slot, evidence in state.intake.stale(now_s):
+                fleet_slot = int(state.fleet_slot[slot])
+                if fleet_slot >= 0:
+                    records += state.fleet.quality(fleet_slot, [evidence], now_s)
+        self._count_transitions(records)
+        return records
+
+    def _count_transitions(self, records: Sequence[dict[str, Any]]) -> None:
+        for record in records:
+            self.counts.transitions[(record["detector"], record["state"])] += 1
+
+    # -- live baselines -------------------------------------------------------
+    def _learn(
+        self,
+        state: _Class,
+        slots: NDArray[np.intp],
+        time_s: NDArray[np.float64],
+        y: NDArray[np.float64],
+        u: NDArray[np.float64],
+        labels: list[str | None],
+        judged: NDArray[np.bool_],
+    ) -> None:
+        """Offer the rows of learning assets to their learners; queue full windows for a fit."""
+        config = state.learner_config
+        if config is None:
+            return
+        modes = config.modes
+        for i, slot in enumerate(slots.tolist()):
+            learner = state.learners.get(slot)
+            if learner is None:
+                continue
+            mode = labels[i]
+            if mode not in modes:
+                continue
+            row = [float(time_s[i]), float(y[i]), *(float(v) for v in u[i])]
+            outcome = learner.add(row[0], row[1], row[2:], mode)
+            if outcome == "ignored":
+                continue
+            record = [*row, float(modes.index(mode))]
+            if outcome == "restarted":
+                # the window starts afresh with this sample: so does its saved series
+                state.windows_dropped.add(slot)
+                state.window_rows[slot] = record
+            else:
+                state.window_rows.setdefault(slot, []).extend(record)
+            if learner.ready(mode):
+                self._to_fit.append((state.config.name, slot, mode))
+
+    def _fit_some(self) -> None:
+        """Fit up to FITS_PER_ADVANCE full windows; an accepted mode is judged from now on."""
+        for _ in range(min(FITS_PER_ADVANCE, len(self._to_fit))):
+            name, slot, mode = self._to_fit.popleft()
+            state = self._classes[name]
+            learner = state.learners.get(slot)
+            asset = state.assets[slot]
+            if learner is None or asset is None or not learner.ready(mode):
+                continue
+            result = learner.finish(mode)
+            # fitted or refused, the window is gone: so is its series
+            state.windows_dropped.add(slot)
+            state.window_rows.pop(slot, None)
+            baseline = result.baseline
+            fit = None if baseline is None else baseline.fit_percent
+            self.events.append(
+                BaselineEvent(asset, name, mode, baseline is not None, fit, tuple(result.reasons))
+            )
+            self.counts.baselines["accepted" if baseline is not None else "refused"] += 1
+            if baseline is None:
+                continue
+            state.accepted.setdefault(slot, []).append(baseline.to_dict())
+            fleet_slot = int(state.fleet_slot[slot])
+            if fleet_slot < 0:
+                state.fleet_slot[slot] = state.fleet.add_asset(asset, BaselineSet((baseline,)))
+            else:
+                state.fleet.add_baseline(asset, baseline)
+            config = state.learner_config
+            if config is not None and all(learner.baseline(m) is not None for m in config.modes):
+                del state.learners[slot]  # every mode judged: nothing more to learn
+
+    # -- read-outs ------------------------------------------------------------
+    def classes(self) -> tuple[str, ...]:
+        """Return the asset class names, in configuration order."""
+        return tuple(self._classes)
+
+    def active(self, asset_class: str, asset_id: str) -> dict[str, str]:
+        """Return the raised alerts of an asset (``mode:detector/signal`` -> severity).
+
+        Empty for an asset that is not judged yet.
+        """
+        fleet = self._classes[asset_class].fleet
+        return fleet.active(asset_id) if asset_id in fleet else {}
+
+    def class_of(self, asset_id: str) -> str | None:
+        """Return the class an asset was discovered under, or None."""
+        return self.router.assets.get(asset_id)
+
+    def asset_states(self) -> dict[str, int]:
+        """Return how many assets are ``monitoring``, ``learning`` or have ``no_baseline``."""
+        out = {"monitoring": 0, "learning": 0, "no_baseline": 0}
+        for state in self._classes.values():
+            for slot, asset in enumerate(state.assets):
+                if asset is None:
+                    continue
+                if state.fleet_slot[slot] >= 0:
+                    out["monitoring"] += 1
+                elif slot in state.learners:
+                    out["learning"] += 1
+                else:
+                    out["no_baseline"] += 1
+        return out
+
+    def memory_bytes(self) -> int:
+        """Bytes held by the column arrays of every class (alignment and monitor)."""
+        return sum(s.intake.memory_bytes() + s.fleet.memory_bytes() for s in self._classes.values())
+
+    # -- checkpoints ----------------------------------------------------------
+    def checkpoint(self) -> Checkpoint:
+        """Return what a checkpoint must write now; starts the next window chunks.
+
+        Call it between :meth:`feed`/:meth:`advance` calls; the result is
+        the whole state at this point.
+        """
+        entries: dict[str, bytes] = {}
+        appended: dict[str, bytes] = {}
+        dropped: list[str] = []
+        classes: dict[str, Any] = {}
+        for name, state in self._classes.items():
+            intake = state.intake.to_state()
+            entries[f"intake/{name}"] = pack(intake["meta"], intake["arrays"])
+            fleet = state.fleet.to_state()
+            entries[f"fleet/{name}"] = pack(fleet["meta"], fleet["arrays"])
+            classes[name] = {
+                "assets": state.assets,
+                "fleet_slots": state.fleet_slot[: len(state.assets)].tolist(),
+                "learning": sorted(state.learners),
+                "accepted": {str(slot): b for slot, b in state.accepted.items()},
+            }
+            for slot in sorted(state.windows_dropped):
+                if state.assets[slot] is not None:
+                    dropped.append(state.window_key(slot))
+            for slot, rows in state.window_rows.items():
+                if rows:
+                    appended[state.window_key(slot)] = np.array(rows, dtype=np.float64).tobytes()
+            state.windows_dropped.clear()
+            state.window_rows.clear()
+        meta = {"version": _STATE_VERSION, "classes": classes, "last_sample_s": self.last_sample_s}
+        entries["pipeline"] = json.dumps(meta, allow_nan=False).encode("utf-8")
+        return Checkpoint(entries, appended, dropped)
+
+    def restore(self, entries: Mapping[str, bytes], series: Callable[[str], bytes]) -> None:
+        """Restore a state written by :meth:`checkpoint` under the same configuration.
+
+        Parameters
+        ----------
+        entries : mapping of str to bytes
+            The saved checkpoint entries.
+        series : callable
+            Returns the saved series of a key (``StateStore.series``).
+
+        Raises
+        ------
+        ValueError
+            If the state is from another version or does not fit this
+            configuration (a class renamed, signals changed...). The
+            pipeline is then unusable: build a new one and start cold.
+        """
+        blob = entries.get("pipeline")
+        if blob is None:
+            return  # nothing saved yet: a first start
+        meta = json.loads(blob.decode("utf-8"))
+        if meta.get("version") != _STATE_VERSION:
+            raise ValueError(
+                f"saved pipeline state version {meta.get('version')!r}; this release reads "
+                f"version {_STATE_VERSION}"
+            )
+        saved = meta["classes"]
+        missing = sorted(set(saved) - set(self._classes))
+        if missing:
+            raise ValueError(f"saved state has asset classes the configuration lacks: {missing}")
+        for name, state in self._classes.items():
+            part = saved.get(name)
+            if part is None:
+                continue  # a class added to the configuration since: starts empty
+            intake_meta, intake_arrays = unpack(entries[f"intake/{name}"])
+            state.intake.load_state({"meta": intake_meta, "arrays": intake_arrays})
+            fleet_meta, fleet_arrays = unpack(entries[f"fleet/{name}"])
+            state.fleet.load_state({"meta": fleet_meta, "arrays": fleet_arrays})
+            state.assets = [None if a is None else str(a) for a in part["assets"]]
+            state.slot_of = {a: s for s, a in enumerate(state.assets) if a is not None}
+            slots = np.asarray(part["fleet_slots"], dtype=np.int32)
+            state.fleet_slot = np.full(max(len(state.assets), 1), -1, dtype=np.int32)
+            state.fleet_slot[: slots.shape[0]] = slots
+            state.accepted = {int(k): list(v) for k, v in part["accepted"].items()}
+            for asset in state.slot_of:
+                self.router.admit(asset, name)
+            state.learners = {}
+            for slot in part["learning"]:
+                learner = self._restore_learner(state, int(slot), series)
+                state.learners[int(slot)] = learner
+                for mode in learner.config.modes:
+                    if learner.ready(mode):  # was waiting for its fit
+                        self._to_fit.append((name, int(slot), mode))
+        self.last_sample_s = meta.get("last_sample_s")
+
+    def _restore_learner(
+        self, state: _Class, slot: int, series: Callable[[str], bytes]
+    ) -> LiveBaselineLearner:
+        config = state.learner_config
+        if config is None:
+            raise ValueError(
+                f"asset class {state.config.name!r} no longer learns baselines live, "
+                "but the saved state has learners"
+            )
+        learner = LiveBaselineLearner(config)
+        frozen = {b["mode"]: b for b in state.accepted.get(slot, [])}
+        learner.load_state(
+            {
+                "format": LiveBaselineLearner.FORMAT,
+                "version": LiveBaselineLearner.VERSION,
+                "modes": [
+                    {"mode": m, "t": [], "y": [], "u": [], "baseline": frozen.get(m)}
+                    for m in config.modes
+                ],
+            }
+        )
+        width = 3 + config.n_inputs
+        rows = np.frombuffer(series(state.window_key(slot)), dtype=np.float64).reshape(-1, width)
+        for row in rows.tolist():
+            mode = config.modes[int(row[-1])]
+            learner.add(row[0], row[1], row[2:-1], mode)
+        return learner
