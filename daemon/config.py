@@ -55,6 +55,7 @@ from arxwatch.estimators.detect.quality import QualityConfig
 from arxwatch.estimators.errors import OrderError
 
 __all__ = [
+    "AlignTiming",
     "AssetClassConfig",
     "BaselineConfig",
     "BrokerConfig",
@@ -1010,6 +1011,8 @@ class AssetClassConfig:
         Detector overrides.
     max_payload_bytes : int
         From ``limits``; larger payloads are rejected.
+    timing : AlignTiming
+        Overrides of the alignment windows; None keeps the defaults.
     """
 
     name: str
@@ -1025,6 +1028,7 @@ class AssetClassConfig:
     baseline: BaselineConfig
     detectors: DetectorsConfig
     max_payload_bytes: int
+    timing: AlignTiming
 
     @property
     def signals(self) -> tuple[str, ...]:
@@ -1085,6 +1089,9 @@ class AssetClassConfig:
             output=self.output.signal,
             inputs=[s.signal for s in self.inputs],
             mode=self.mode.signal if self.mode else None,
+            staleness_s=self.timing.staleness_s,
+            lateness_s=self.timing.lateness_s,
+            gap_restart_s=self.timing.gap_restart_s,
         )
 
     def monitor_config(self) -> MonitorConfig:
@@ -1188,7 +1195,37 @@ _CLASS_KEYS = (
     "forgetting",
     "baseline",
     "detectors",
+    "align",
 )
+
+
+@dataclass(frozen=True)
+class AlignTiming:
+    """Overrides of the alignment windows of an asset class (None: the default).
+
+    Parameters
+    ----------
+    staleness_s : float or None
+        Oldest a sample may be and still fill a grid point (default two
+        sample periods).
+    lateness_s : float or None
+        How long after a grid point it is closed (default half a period):
+        shorter means alerts sooner, longer tolerates later samples.
+    gap_restart_s : float or None
+        A row this long after the previous one restarts the model history
+        (default five periods).
+    """
+
+    staleness_s: float | None = None
+    lateness_s: float | None = None
+    gap_restart_s: float | None = None
+
+
+def _timing(r: _Reader, parent: Mapping[str, object], path: str) -> AlignTiming:
+    keys = ("staleness_s", "lateness_s", "gap_restart_s")
+    raw = r.section(parent, path, "align", keys)
+    path = _key(path, "align")
+    return AlignTiming(**{key: r.optional_number(raw, path, key, positive=True) for key in keys})
 
 
 def _asset_class(r: _Reader, value: object, path: str, limits: LimitsConfig) -> AssetClassConfig:
@@ -1216,11 +1253,13 @@ def _asset_class(r: _Reader, value: object, path: str, limits: LimitsConfig) -> 
         baseline=_baseline(r, raw, path),
         detectors=_detectors(r, raw, path),
         max_payload_bytes=limits.max_payload_bytes,
+        timing=_timing(r, raw, path),
     )
     # Build every derived object once now, so that a bad setting is reported
     # here with its key path instead of at the first message.
     r.build(_key(path, "asset_id"), config.route_rule)
-    r.build(_key(path, "inputs"), config.align_config)
+    r.build(_key(path, "inputs"), replace(config, timing=AlignTiming()).align_config)
+    r.build(_key(path, "align"), config.align_config)
     r.build(_key(path, "payload"), config.payload_format)
     for where, item in (
         (_key(path, "output"), config.output),

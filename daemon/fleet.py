@@ -57,7 +57,20 @@ from arxwatch.estimators.estimator import ArxEstimator
 from arxwatch.estimators.readout import feature_matrix, feature_names, read_out
 from arxwatch.estimators.rls import TRACE_CHECK_EVERY, StateLayout, build_kernel
 
-__all__ = ["FleetMonitor"]
+__all__ = ["DETECTORS", "FleetMonitor"]
+
+#: Every detector whose evidence can become an alert (stable names, metric labels).
+DETECTORS = (
+    "innovation_mean",
+    "innovation_variance",
+    "innovation_whiteness",
+    "feature_drift",
+    "physical_band",
+    "out_of_range",
+    "stuck",
+    "gap",
+    "stale",
+)
 
 _STATE_VERSION = 1
 #: Capacity grows by this factor, so at most a fifth of the arrays is slack.
@@ -1330,6 +1343,56 @@ class FleetMonitor:
                 raise ValueError("saved quality state and slots disagree in size")
         fresh.skipped = int(meta["skipped"])
         self.__dict__.update(fresh.__dict__)
+
+    def alert_counts(self) -> dict[tuple[str, str], int]:
+        """Return how many alerts are raised, by (family, severity)."""
+        out = {
+            (family, severity): 0
+            for family in ("behaviour", "data_quality")
+            for severity in ("warning", "critical")
+        }
+        banks = [("behaviour", g.tracker, g.arrays["used"]) for g in self._groups]
+        if self._quality is not None:
+            banks.append(("data_quality", self._quality, self._used))
+        for family, bank, used in banks:
+            raised = bank.raised[used]
+            critical = int((raised & bank.critical[used]).sum())
+            out[(family, "critical")] += critical
+            out[(family, "warning")] += int(raised.sum()) - critical
+        return out
+
+    def top_ratios(self, limit: int) -> list[tuple[str, str, float]]:
+        """Return the ``limit`` largest statistic / threshold ratios of the innovation tests.
+
+        Each entry is (asset, detector, ratio) for the CUSUM and the variance
+        test of every judged asset and mode: how close each is to alarming
+        (1 is the threshold), for a dashboard of the assets to watch.
+        """
+        found: list[tuple[float, str, str]] = []
+        for g in self._groups:
+            used = np.flatnonzero(g.arrays["used"])
+            if not used.shape[0]:
+                continue
+            cusum = np.maximum(g.arrays["c_high"][used], g.arrays["c_low"][used])
+            for detector, ratio in (
+                ("innovation_mean", cusum / float(self.config.cusum.h)),
+                ("innovation_variance", g.arrays["var_s"][used] / g.variance_upper),
+            ):
+                best = np.argsort(-ratio, kind="stable")[:limit]
+                for i in best.tolist():
+                    asset = self._ids[int(g.arrays["asset"][used[i]])]
+                    if asset is not None:
+                        found.append((float(ratio[i]), asset, detector))
+        found.sort(key=lambda item: -item[0])
+        top: list[tuple[str, str, float]] = []
+        seen: set[tuple[str, str]] = set()
+        for ratio, asset, detector in found:
+            if (asset, detector) not in seen:  # an asset's other mode says less
+                seen.add((asset, detector))
+                top.append((asset, detector, ratio))
+            if len(top) == limit:
+                break
+        return top
 
     def memory_bytes(self) -> int:
         """Bytes held by the arrays of every channel and slot."""

@@ -331,6 +331,10 @@ class IntakeBank:
         self.config = config
         self.cells = cells
         self.max_mode_labels = max_mode_labels
+        #: Set by :meth:`add` when a signal of some asset has no free cell
+        #: left; cleared by :meth:`advance`. A caller feeding a burst of
+        #: samples advances when it is set, so that no cell overflows.
+        self.crowded = False
         self.signals = config.signals
         self.quality_signals = tuple(name for name in numeric if name in quality)
         self._quality_configs = tuple(quality[name] for name in self.quality_signals)
@@ -552,6 +556,10 @@ class IntakeBank:
                     self._labels.append(label)
                 number = float(code)
             target = same if same >= 0 else free
+            if same < 0 and sum(1 for t in held if t != t) <= 1:
+                # No free cell left after this one: the caller should advance
+                # before another cell opens, or the oldest would be dropped.
+                self.crowded = True
             if target < 0:
                 # More open cells than ``cells``: the oldest goes, possibly the new one.
                 flat["counts"][slot * self._n_counts + self._column["overflow"]] += 1
@@ -709,7 +717,7 @@ class IntakeBank:
 
     # -------------------------------------------------------------- advance
 
-    def advance(self, now_s: float) -> RowBatch:
+    def advance(self, now_s: float | NDArray[np.float64]) -> RowBatch:
         """Close every grid point up to ``now_s - lateness_s`` for every asset at once.
 
         Per asset exactly as :meth:`Aligner.advance`: the first grid point
@@ -719,8 +727,9 @@ class IntakeBank:
 
         Parameters
         ----------
-        now_s : float
-            Current time, epoch seconds.
+        now_s : float or ndarray of shape (capacity,)
+            Current time, epoch seconds: one for every asset, or one per
+            slot (each asset's own clock; ``-inf`` leaves a slot alone).
 
         Returns
         -------
@@ -735,21 +744,33 @@ class IntakeBank:
             from the epoch.
         """
         period = self.config.sample_period_s
-        if not math.isfinite(now_s) or abs(now_s) > _GRID_LIMIT * period:
-            raise ValueError(
-                f"now_s must be a finite time within 2**50 sample periods of the epoch, "
-                f"got {now_s!r}"
-            )
-        end = _last_index(now_s - self.config.lateness_s, period)
         arrays = self._arrays
         last = arrays["last_index"]
+        if np.ndim(now_s) == 0:
+            if not math.isfinite(float(now_s)) or abs(float(now_s)) > _GRID_LIMIT * period:
+                raise ValueError(
+                    f"now_s must be a finite time within 2**50 sample periods of the epoch, "
+                    f"got {now_s!r}"
+                )
+        now = np.broadcast_to(np.asarray(now_s, dtype=np.float64), last.shape)
+        if now.shape != last.shape:
+            raise ValueError(f"now_s must be a float or have shape {last.shape}, got {now.shape}")
+        known = np.isfinite(now)
+        if np.any(np.abs(now[known]) > _GRID_LIMIT * period) or np.isnan(now).any():
+            raise ValueError(
+                "now_s must hold times within 2**50 sample periods of the epoch, or -inf"
+            )
+        self.crowded = False
+        end_all = np.full(last.shape, np.iinfo(np.int64).min // 2, dtype=np.int64)
+        end_all[known] = _last_indices(now[known] - self.config.lateness_s, period)
         start_all = np.where(last != _OPEN, last + 1, arrays["first_index"])
-        due = np.flatnonzero(arrays["in_use"] & (start_all <= end))
+        due = np.flatnonzero(arrays["in_use"] & known & (start_all <= end_all))
         if due.size == 0:
             return self._rows(
                 np.empty(0, np.intp), np.empty(0, np.float64), np.empty((0, len(self.signals)))
             )
         start = start_all[due]
+        end = end_all[due]
         n_signals = len(self.signals)
 
         # Held samples per (asset, signal) in time order; empty cells (NaN) last.
@@ -768,7 +789,7 @@ class IntakeBank:
         next_cell = np.full(times.shape, _EMPTY, dtype=np.int64)
         next_cell[..., :-1] = cell[..., 1:]
         lo = np.maximum(cell, start[:, None, None])
-        hi = np.minimum(np.minimum(fresh_to, next_cell - 1), end)
+        hi = np.minimum(np.minimum(fresh_to, next_cell - 1), end[:, None, None])
         piece = held & (lo <= hi)
         lo, hi = np.where(piece, lo, 0), np.where(piece, hi, -1)  # no piece: empty, no overflow
         covered = (hi - lo + 1).sum(axis=2)
@@ -781,7 +802,7 @@ class IntakeBank:
         flat = piece.reshape(n, -1)
         step = np.concatenate([flat, flat], axis=1).astype(np.int64)
         step[:, flat.shape[1] :] *= -1
-        bounds = np.where(step != 0, bounds, end + 2)
+        bounds = np.where(step != 0, bounds, end[:, None] + 2)
         sweep = np.argsort(bounds, axis=1, kind="stable")
         bounds = np.take_along_axis(bounds, sweep, axis=1)
         coverage = np.cumsum(np.take_along_axis(step, sweep, axis=1), axis=1)
@@ -812,9 +833,9 @@ class IntakeBank:
 
         # Drop what no grid point after ``end`` can use: of the cells at or before it,
         # all but the newest, and that one too once stale.
-        closed = held & (cell <= end)
+        closed = held & (cell <= end[:, None, None])
         newest_closed = np.where(closed, times, -np.inf).max(axis=2, keepdims=True)
-        keep = held & (~closed | ((times == newest_closed) & (fresh_to > end)))
+        keep = held & (~closed | ((times == newest_closed) & (fresh_to > end[:, None, None])))
         arrays["time"][due] = np.where(keep, times, np.nan)
         arrays["value"][due] = np.where(keep, values, np.nan)
         return batch

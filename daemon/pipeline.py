@@ -9,9 +9,17 @@
                                       -> FleetMonitor: drift detectors and alert lifecycle
                                       -> alert records (schema arxwatch.alert/1)
 
-Pure: no clock, no MQTT, no SQLite, no threads. ``arxwatch run`` feeds it
-from MQTT with the wall clock as ``now_s``; ``arxwatch replay`` feeds it from
-files with the recorded times; so the same samples give the same alerts.
+Pure: no clock, no MQTT, no SQLite, no threads. Grid points close by event
+time: each asset keeps a frontier, the latest sample time accepted for it,
+and its grid points close up to that frontier (less the class's lateness),
+capped by the caller's clock when it gives one. So a backlog of older
+samples (what the broker's persistent session delivers after an outage, one
+gateway catching up while others are live, or a replayed file) is aligned
+exactly as if it had arrived live, and ``arxwatch run`` and ``arxwatch
+replay`` give the same alerts for the same samples. A device whose clock
+runs ahead only moves its own asset's frontier, and never past the wall
+clock. During a burst, :meth:`Pipeline.feed` closes grid points as soon as
+an asset has buffered a few (``IntakeBank.crowded``), so none is dropped.
 Every message that cannot be used is counted by reason in :class:`Counts`
 and dropped; nothing raises for bad input.
 
@@ -202,6 +210,8 @@ class _Class:
         self.window_rows: dict[int, list[float]] = {}  # new window rows since the checkpoint
         self.windows_dropped: set[int] = set()
         self.accepted: dict[int, list[dict[str, Any]]] = {}  # accepted baselines, as dicts
+        # per intake slot: latest accepted sample time, the asset's event clock
+        self.frontier = np.full(self.intake.capacity, -np.inf)
 
     def window_key(self, slot: int) -> str:
         return f"window/{self.config.name}/{self.assets[slot]}"
@@ -217,6 +227,11 @@ class _Class:
             grown[: self.fleet_slot.shape[0]] = self.fleet_slot
             self.fleet_slot = grown
         self.fleet_slot[slot] = -1
+        if slot >= self.frontier.shape[0] or self.frontier.shape[0] != self.intake.capacity:
+            grown = np.full(self.intake.capacity, -np.inf)
+            grown[: min(self.frontier.shape[0], grown.shape[0])] = self.frontier[: grown.shape[0]]
+            self.frontier = grown
+        self.frontier[slot] = -np.inf
         if self.library is not None:
             known = self.library.get(asset_id)
             if known is not None:
@@ -306,19 +321,27 @@ class Pipeline:
             return []
         if self.last_sample_s is None or sample.time_s > self.last_sample_s:
             self.last_sample_s = sample.time_s
+        if sample.time_s > state.frontier[slot]:
+            state.frontier[slot] = sample.time_s
+        records: list[dict[str, Any]] = []
         taken = state.intake.take_quality(state.needed)
-        if not taken:
-            return []
         fleet_slot = int(state.fleet_slot[slot])
-        if fleet_slot < 0:
-            return []
-        records = state.fleet.quality(fleet_slot, [ev for _, ev in taken], sample.time_s)
-        self._count_transitions(records)
+        if taken and fleet_slot >= 0:
+            records = state.fleet.quality(fleet_slot, [ev for _, ev in taken], sample.time_s)
+            self._count_transitions(records)
+        if state.intake.crowded:
+            records += self._advance_class(state, arrival_s)
         return records
 
     # -- the grid -------------------------------------------------------------
-    def advance(self, now_s: float) -> list[dict[str, Any]]:
-        """Close every grid point up to ``now_s`` (less each class's lateness); judge the rows.
+    def advance(self, now_s: float | None = None) -> list[dict[str, Any]]:
+        """Close every grid point up to each asset's frontier (less its lateness); judge the rows.
+
+        Parameters
+        ----------
+        now_s : float or None
+            Wall clock, epoch seconds: the frontier is capped at it (live).
+            None for replay: the recorded times alone decide.
 
         Returns
         -------
@@ -327,44 +350,49 @@ class Pipeline:
         """
         records: list[dict[str, Any]] = []
         for state in self._classes.values():
-            skipped_before = state.intake.counts()["incomplete"]
-            batch = state.intake.advance(now_s)
-            self.counts.grid_points_skipped += state.intake.counts()["incomplete"] - skipped_before
-            if not len(batch):
-                continue
-            self.counts.rows += len(batch)
-            labels = [
-                None if code < 0 else state.intake.mode_label(int(code))
-                for code in batch.mode.tolist()
-            ]
-            fleet_slots = state.fleet_slot[batch.slots]
-            judged = fleet_slots >= 0
-            if judged.any():
-                idx = np.flatnonzero(judged)
-                skipped = state.fleet.skipped
-                found = state.fleet.step(
-                    fleet_slots[idx].astype(np.intp),
-                    batch.time_s[idx],
-                    batch.y[idx],
-                    batch.u[idx],
-                    [labels[i] for i in idx.tolist()],
-                    batch.restart[idx],
-                )
-                without = state.fleet.skipped - skipped
-                self.counts.rows_judged += idx.shape[0] - without
-                if without:
-                    self.counts.rows_not_judged["mode_without_baseline"] += without
-                self._count_transitions(found)
-                records += found
-            if state.learners:
-                self._learn(state, batch.slots, batch.time_s, batch.y, batch.u, labels, judged)
-            not_judged = int((~judged).sum())
-            learning = sum(1 for s in batch.slots[~judged].tolist() if s in state.learners)
-            if learning:
-                self.counts.rows_not_judged["learning"] += learning
-            if not_judged - learning:
-                self.counts.rows_not_judged["no_baseline"] += not_judged - learning
+            records += self._advance_class(state, now_s)
         self._fit_some()
+        return records
+
+    def _advance_class(self, state: _Class, now_s: float | None) -> list[dict[str, Any]]:
+        """Close the grid points of one class up to each asset's frontier; judge the rows."""
+        limits = state.frontier if now_s is None else np.minimum(state.frontier, now_s)
+        skipped_before = state.intake.counts()["incomplete"]
+        batch = state.intake.advance(limits)
+        self.counts.grid_points_skipped += state.intake.counts()["incomplete"] - skipped_before
+        if not len(batch):
+            return []
+        records: list[dict[str, Any]] = []
+        self.counts.rows += len(batch)
+        labels = [
+            None if code < 0 else state.intake.mode_label(int(code)) for code in batch.mode.tolist()
+        ]
+        fleet_slots = state.fleet_slot[batch.slots]
+        judged = fleet_slots >= 0
+        if judged.any():
+            idx = np.flatnonzero(judged)
+            skipped = state.fleet.skipped
+            records = state.fleet.step(
+                fleet_slots[idx].astype(np.intp),
+                batch.time_s[idx],
+                batch.y[idx],
+                batch.u[idx],
+                [labels[i] for i in idx.tolist()],
+                batch.restart[idx],
+            )
+            without = state.fleet.skipped - skipped
+            self.counts.rows_judged += idx.shape[0] - without
+            if without:
+                self.counts.rows_not_judged["mode_without_baseline"] += without
+            self._count_transitions(records)
+        if state.learners:
+            self._learn(state, batch.slots, batch.time_s, batch.y, batch.u, labels, judged)
+        not_judged = int((~judged).sum())
+        learning = sum(1 for s in batch.slots[~judged].tolist() if s in state.learners)
+        if learning:
+            self.counts.rows_not_judged["learning"] += learning
+        if not_judged - learning:
+            self.counts.rows_not_judged["no_baseline"] += not_judged - learning
         return records
 
     def check_stale(self, now_s: float) -> list[dict[str, Any]]:
@@ -482,6 +510,19 @@ class Pipeline:
                     out["no_baseline"] += 1
         return out
 
+    def alert_counts(self) -> list[tuple[str, str, int]]:
+        """Return (family, severity, count) of the raised alerts of every class."""
+        total: Counter[tuple[str, str]] = Counter()
+        for state in self._classes.values():
+            total.update(state.fleet.alert_counts())
+        return [(family, severity, count) for (family, severity), count in sorted(total.items())]
+
+    def top_ratios(self, limit: int) -> list[tuple[str, str, float]]:
+        """Return the ``limit`` assets closest to an innovation alarm, over every class."""
+        found = [r for state in self._classes.values() for r in state.fleet.top_ratios(limit)]
+        found.sort(key=lambda item: -item[2])
+        return found[:limit]
+
     def memory_bytes(self) -> int:
         """Bytes held by the column arrays of every class (alignment and monitor)."""
         return sum(s.intake.memory_bytes() + s.fleet.memory_bytes() for s in self._classes.values())
@@ -502,7 +543,9 @@ class Pipeline:
             entries[f"intake/{name}"] = pack(intake["meta"], intake["arrays"])
             fleet = state.fleet.to_state()
             entries[f"fleet/{name}"] = pack(fleet["meta"], fleet["arrays"])
+            n = len(state.assets)
             classes[name] = {
+                "frontier": [float(t) if np.isfinite(t) else None for t in state.frontier[:n]],
                 "assets": state.assets,
                 "fleet_slots": state.fleet_slot[: len(state.assets)].tolist(),
                 "learning": sorted(state.learners),
@@ -564,6 +607,10 @@ class Pipeline:
             state.fleet_slot = np.full(max(len(state.assets), 1), -1, dtype=np.int32)
             state.fleet_slot[: slots.shape[0]] = slots
             state.accepted = {int(k): list(v) for k, v in part["accepted"].items()}
+            state.frontier = np.full(state.intake.capacity, -np.inf)
+            for slot, time_s in enumerate(part["frontier"]):
+                if time_s is not None:
+                    state.frontier[slot] = float(time_s)
             for asset in state.slot_of:
                 self.router.admit(asset, name)
             state.learners = {}

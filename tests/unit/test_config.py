@@ -319,3 +319,20 @@ def test_learning_per_mode_needs_the_mode_labels() -> None:
     )
     with pytest.raises(ConfigError, match=r"asset_classes\[0\]\.mode\.values: learning a baseline"):
         parse_config(text, "site.yaml")
+
+
+def test_alignment_windows_can_be_set_per_class() -> None:
+    text = (
+        Path(EXAMPLE)
+        .read_text()
+        .replace(
+            "    sample_period_s: 60\n    output:\n      signal: zone-temp",
+            "    sample_period_s: 60\n    align: {lateness_s: 2.5, gap_restart_s: 600}\n"
+            "    output:\n      signal: zone-temp",
+        )
+    )
+    vav = parse_config(text, "site.yaml").asset_classes[1].align_config()
+    assert (vav.lateness_s, vav.gap_restart_s, vav.staleness_s) == (2.5, 600.0, 120.0)
+    bad = text.replace("gap_restart_s: 600", "gap_restart_s: 30")
+    with pytest.raises(ConfigError, match=r"asset_classes\[1\]\.align: gap_restart_s must be >="):
+        parse_config(bad, "site.yaml")

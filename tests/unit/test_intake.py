@@ -537,3 +537,24 @@ def test_take_quality_skips_quiet_checks_the_caller_does_not_need() -> None:
     assert asked == [(slot, 0)]
     assert [ev.detector for _, ev in taken] == ["out_of_range", "stuck", "gap"]
     assert taken[0][1].alarm
+
+
+def test_crowded_asks_for_an_advance_before_a_cell_would_overflow() -> None:
+    # A burst of samples far ahead of the last advance: advancing whenever
+    # the bank says crowded keeps every sample (no overflow, no skipped point).
+    config = AlignConfig(sample_period_s=60.0, output="sat", inputs=("valve",))
+    bank = IntakeBank(config, {}, cells=4)
+    slot = bank.add_asset()
+    rows = 0
+    start = 1_767_225_600.0  # on the minute
+    for k in range(200):
+        t = start + 60.0 * k
+        for signal in (0, 1):
+            assert bank.add(slot, signal, t, float(k)) == "accepted"
+        if bank.crowded:
+            rows += len(bank.advance(t))
+            assert not bank.crowded
+    rows += len(bank.advance(start + 60.0 * 200))
+    counts = bank.counts()
+    assert counts["overflow"] == 0 and counts["incomplete"] == 0
+    assert rows == 200
