@@ -8,12 +8,16 @@ from __future__ import annotations
 import argparse
 import logging
 import os
+import signal
 import sys
+import threading
 from collections.abc import Callable
 from importlib.metadata import PackageNotFoundError, version
 
 from arxwatch.daemon.config import Config, ConfigError, load_config
 from arxwatch.daemon.demo import run_demo
+from arxwatch.daemon.logs import configure_logging
+from arxwatch.daemon.service import StartError, run_service
 
 
 def _version() -> str:
@@ -33,9 +37,9 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--version", action="version", version=f"arxwatch {_version()}")
     parser.add_argument(
         "--log-level",
-        default="warning",
+        default=None,
         choices=["debug", "info", "warning", "error"],
-        help="logging threshold (default: warning)",
+        help="logging threshold (default: warning; for run, the config's logging.level)",
     )
     commands = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
     demo = commands.add_parser(
@@ -55,6 +59,14 @@ def build_parser() -> argparse.ArgumentParser:
         "secret). Exit status 0 if valid, 2 if not.",
     )
     check.add_argument("--config", required=True, metavar="FILE", help="YAML config file")
+    run = commands.add_parser(
+        "run",
+        help="run the service: subscribe, judge, publish advisory alerts and metrics",
+        description="Run the drift monitor as a service until SIGTERM or Ctrl-C. Listens "
+        "only: it never writes to a controller. Exit status 2 for a configuration "
+        "error, 1 when the service cannot start.",
+    )
+    run.add_argument("--config", required=True, metavar="FILE", help="YAML config file")
     return parser
 
 
@@ -101,8 +113,8 @@ def summarise(config: Config, emit: Callable[[str], object]) -> None:
             f"    output {asset_class.output.signal} ({asset_class.output.name}, "
             f"{asset_class.output.unit})"
         )
-        for signal in asset_class.inputs:
-            emit(f"    input  {signal.signal} ({signal.name}, {signal.unit})")
+        for item in asset_class.inputs:
+            emit(f"    input  {item.signal} ({item.name}, {item.unit})")
         if asset_class.mode is not None:
             emit(f"    mode   {asset_class.mode.signal}")
         emit(f"    model  {model}")
@@ -120,14 +132,39 @@ def _positive_float(text: str) -> float:
     return value
 
 
+def _run(config_path: str, log_level: str | None) -> int:
+    """``arxwatch run``: serve until SIGTERM or SIGINT."""
+    try:
+        config = load_config(config_path)
+    except ConfigError as err:
+        print(f"arxwatch run: {err}", file=sys.stderr)
+        return 2
+    configure_logging(log_level or config.logging.level, config.logging.format, sys.stderr)
+    stop = threading.Event()
+
+    def request_stop(signum: int, frame: object) -> None:
+        logging.getLogger(__name__).info("signal %d: stopping", signum)
+        stop.set()
+
+    signal.signal(signal.SIGTERM, request_stop)
+    signal.signal(signal.SIGINT, request_stop)
+    try:
+        run_service(config, os.environ, stop)
+    except ConfigError as err:
+        print(f"arxwatch run: {err}", file=sys.stderr)
+        return 2
+    except StartError as err:
+        print(f"arxwatch run: cannot start: {err}", file=sys.stderr)
+        return 1
+    return 0
+
+
 def main(argv: list[str] | None = None) -> int:
     """Entry point of the ``arxwatch`` command; returns the exit status."""
     args = build_parser().parse_args(argv)
-    logging.basicConfig(
-        level=getattr(logging, args.log_level.upper()),
-        format="%(asctime)s %(levelname)s %(name)s: %(message)s",
-        stream=sys.stderr,
-    )
+    if args.command == "run":
+        return _run(args.config, args.log_level)
+    configure_logging(args.log_level or "warning", "text", sys.stderr)
     try:
         if args.command == "demo":
             return run_demo(print, days=args.days, seed=args.seed)
