@@ -129,7 +129,7 @@ class Daemon:
             self.process = None
 
     def log(self) -> str:
-        """What the daemon wrote so far."""
+        """Return what the daemon wrote so far."""
         return self.log_path.read_text(errors="replace") if self.log_path.exists() else ""
 
 
