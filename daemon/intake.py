@@ -96,7 +96,9 @@ from arxwatch.estimators.detect.quality import QualityConfig
 
 __all__ = ["IntakeBank", "IntakeOutcome", "RowBatch"]
 
-IntakeOutcome = Literal[AddOutcome, "superseded", "mode_label_limit", "time_out_of_range"]
+IntakeOutcome = Literal[
+    AddOutcome, "superseded", "mode_label_limit", "time_out_of_range", "out_of_range"
+]
 """What :meth:`IntakeBank.add` did with a sample (closed set).
 
 The values of :data:`~arxwatch.daemon.align.AddOutcome` keep their meaning
@@ -452,7 +454,9 @@ class IntakeBank:
 
     # ------------------------------------------------------------------ add
 
-    def add(self, slot: int, signal: int, time_s: float, value: float | str) -> IntakeOutcome:
+    def add(
+        self, slot: int, signal: int, time_s: float, value: float | str, *, usable: bool = True
+    ) -> IntakeOutcome:
         """Take one sample of one asset; never raises for bad data, says what it did.
 
         Parameters
@@ -466,6 +470,11 @@ class IntakeBank:
         value : float or str
             Number for the output and inputs; number or text label for the
             mode signal.
+        usable : bool, optional
+            False for a value the caller will not let into the model (out of
+            its plausible range): it is checked for data quality like any
+            other, but not held for alignment, and the outcome is
+            ``"out_of_range"``.
 
         Returns
         -------
@@ -492,7 +501,7 @@ class IntakeBank:
             slot = self._slot(slot)  # raises, or takes a numpy integer
         if type(signal) is not int or not 0 <= signal < len(self.signals):
             signal = self._signal(signal)
-        outcome = self._take(slot, signal, time_s, value)
+        outcome = self._take(slot, signal, time_s, value, usable)
         self._flat["counts"][slot * self._n_counts + self._column[outcome]] += 1
         return outcome
 
@@ -505,7 +514,9 @@ class IntakeBank:
             )
         return index
 
-    def _take(self, slot: int, signal: int, time_s: float, value: float | str) -> IntakeOutcome:
+    def _take(
+        self, slot: int, signal: int, time_s: float, value: float | str, usable: bool
+    ) -> IntakeOutcome:
         label: str | None = None
         number = math.nan
         if signal == self._mode_index:
@@ -537,7 +548,7 @@ class IntakeBank:
             return "late"
         top = cell * period
         # Held only if it can fill a grid point: its own (t_cell) within staleness.
-        if top <= time_s + self.config.staleness_s:
+        if usable and top <= time_s + self.config.staleness_s:
             bottom = (cell - 1) * period
             same = free = -1  # held sample of the same cell; a free (NaN) entry
             for j, t in enumerate(held):
@@ -577,7 +588,7 @@ class IntakeBank:
                 self._check_quality(
                     slot * len(self.quality_signals) + check, time_s, number, newest
                 )
-        return "accepted"
+        return "accepted" if usable else "out_of_range"
 
     def _check_quality(self, pair: int, time_s: float, value: float, last: float) -> None:
         """:meth:`SignalQuality.update` on the arrays: same operations, same order.

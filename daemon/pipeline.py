@@ -193,6 +193,11 @@ class _Class:
         self.signals = config.signals
         self.signal_index = {signal: i for i, signal in enumerate(self.signals)}
         self.formats: dict[str, PayloadFormat] = {s: config.payload_format(s) for s in self.signals}
+        # plausible range per signal index (the mode signal has none)
+        numeric = (config.output, *config.inputs)
+        self.ranges = [(s.minimum, s.maximum) for s in numeric] + [(-np.inf, np.inf)] * (
+            len(self.signals) - len(numeric)
+        )
         quality = config.quality_configs()
         self.intake = IntakeBank(config.align_config(), quality)
         self.fleet = FleetMonitor(
@@ -313,11 +318,14 @@ class Pipeline:
         if not sample.quality_ok:
             counts.samples["bad_quality_flag"] += 1
             return []
-        outcome = state.intake.add(
-            slot, state.signal_index[route.signal], sample.time_s, sample.value
-        )
+        signal = state.signal_index[route.signal]
+        low, high = state.ranges[signal]
+        value = sample.value
+        # an implausible value raises its data-quality alert but stays out of the model
+        usable = isinstance(value, str) or low <= value <= high
+        outcome = state.intake.add(slot, signal, sample.time_s, value, usable=usable)
         counts.samples[outcome] += 1
-        if outcome != "accepted":
+        if outcome not in ("accepted", "out_of_range"):
             return []
         if self.last_sample_s is None or sample.time_s > self.last_sample_s:
             self.last_sample_s = sample.time_s

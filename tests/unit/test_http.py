@@ -4,6 +4,7 @@ import errno
 import json
 import logging
 import threading
+import time
 import urllib.error
 import urllib.request
 from collections.abc import Callable, Iterator
@@ -189,9 +190,17 @@ def test_request_lines_are_logged_at_debug_only(serve, caplog) -> None:
     caplog.clear()
     get("/healthz")
     get("/nowhere")
-    mine = [r for r in caplog.records if r.name == "arxwatch.daemon.http"]
-    assert any("GET /healthz" in r.getMessage() for r in mine)
-    assert all(r.levelno == logging.DEBUG for r in mine)
+
+    def mine() -> list[logging.LogRecord]:
+        return [r for r in caplog.records if r.name == "arxwatch.daemon.http"]
+
+    # the server thread logs after it has answered: wait for the line, bounded
+    deadline = time.monotonic() + 2.0
+    while not any("GET /nowhere" in r.getMessage() for r in mine()):
+        assert time.monotonic() < deadline, [r.getMessage() for r in mine()]
+        time.sleep(0.01)
+    assert any("GET /healthz" in r.getMessage() for r in mine())
+    assert all(r.levelno == logging.DEBUG for r in mine())
 
 
 # --- server lifecycle ---------------------------------------------------------------------

@@ -86,12 +86,14 @@ def test_outcomes_extend_the_aligners_closed_set() -> None:
         "superseded",
         "mode_label_limit",
         "time_out_of_range",
+        "out_of_range",
     }
     counts = bank().counts()
     assert set(counts) == set(Aligner(vav_config()).counts()) | {
         "superseded",
         "mode_label_limit",
         "time_out_of_range",
+        "out_of_range",
         "overflow",
     }
     assert not any(counts.values())
@@ -558,3 +560,20 @@ def test_crowded_asks_for_an_advance_before_a_cell_would_overflow() -> None:
     counts = bank.counts()
     assert counts["overflow"] == 0 and counts["incomplete"] == 0
     assert rows == 200
+
+
+def test_an_unusable_value_is_checked_but_not_aligned() -> None:
+    config = AlignConfig(sample_period_s=60.0, output="sat", inputs=("valve",))
+    bank = IntakeBank(config, {"sat": QualityConfig(expected_period_s=60.0, maximum=40.0)})
+    slot = bank.add_asset()
+    start = 1_767_225_600.0
+    assert bank.add(slot, 0, start, 20.0) == "accepted"
+    assert bank.add(slot, 1, start, 50.0) == "accepted"
+    assert bank.add(slot, 0, start + 60.0, 99.0, usable=False) == "out_of_range"
+    assert bank.add(slot, 1, start + 60.0, 51.0) == "accepted"
+    evidence = [ev for _, ev in bank.take_quality()]
+    assert [ev.alarm for ev in evidence if ev.detector == "out_of_range"] == [False, True]
+    rows = bank.advance(start + 120.0)
+    # the second grid point holds the last usable output, 20.0, not 99.0
+    assert rows.y.tolist() == [20.0, 20.0]
+    assert bank.counts()["out_of_range"] == 1

@@ -7,6 +7,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+from arxwatch.daemon.align import Aligner
 from arxwatch.daemon.config import Config, parse_config
 from arxwatch.daemon.library import read_baselines, write_baselines
 from arxwatch.daemon.monitor import AssetMonitor
@@ -103,14 +104,24 @@ def test_records_are_the_per_asset_monitors(plant: dict, library_file: Path) -> 
     vav = config.asset_classes[0]
     expected: list[dict] = []
     for asset, (y, u) in plant.items():
+        # out-of-range values are checked for quality but kept out of the rows
+        aligner = Aligner(vav.align_config())
         mon = AssetMonitor(
             asset, library[asset], vav.signal_names(), vav.monitor_config(), vav.quality_configs()
         )
         for k in range(len(y)):
             t = START + k * PERIOD
-            expected += mon.signal_sample("zone-temp", t, float(y[k]))
-            expected += mon.signal_sample("valve", t, float(u[k]))
-            expected += mon.step(t, float(y[k]), [float(u[k])])
+            for signal, value, spec in (
+                ("zone-temp", y[k], vav.output),
+                ("valve", u[k], vav.inputs[0]),
+            ):
+                expected += mon.signal_sample(signal, t, float(value))
+                if spec.minimum <= value <= spec.maximum:
+                    aligner.add(signal, t, float(value))
+            for row in aligner.advance(t + 30.0):
+                if row.restart:
+                    mon.restart()
+                expected += mon.step(row.time_s, row.y, list(row.u))
 
     def key(r: dict) -> tuple:
         return (r["asset"], r["sample_time"], r["detector"], r["signal"], r["state"])
@@ -120,10 +131,13 @@ def test_records_are_the_per_asset_monitors(plant: dict, library_file: Path) -> 
     assert "innovation_mean" in faulty and "physical_band" in faulty
     assert {r["detector"] for r in got} >= {"out_of_range"}
     counts = pipe.counts
-    # grid points close by event time: the last one waits for later samples
+    # grid points close by event time: the last one waits for later samples;
+    # a grid point whose output was out of range for too long has no row
     n = len(next(iter(plant.values()))[0])
-    assert counts.rows_judged == counts.rows == 3 * (n - 1)
-    assert counts.samples["accepted"] == 2 * 3 * n
+    assert counts.samples["out_of_range"] == 3 * 6
+    assert counts.samples["accepted"] == 2 * 3 * n - 3 * 6
+    assert counts.rows_judged == counts.rows == 3 * (n - 1) - counts.grid_points_skipped
+    assert counts.grid_points_skipped == 3 * 4
     assert counts.transitions[("innovation_mean", "raised")] >= 1
     assert pipe.asset_states() == {"monitoring": 3, "learning": 0, "no_baseline": 0}
 
