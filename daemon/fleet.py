@@ -195,9 +195,10 @@ class _Group:
             "rls": ((self.layout.size,), np.float64, 0.0),
             "pw_count": ((), np.int32, 0),
             "pw_sums": ((p + 2,), np.float64, 0.0),
+            # the reference's first p values while it is collected, then the
+            # AR coefficients fitted on it (the head is not needed after the fit)
             "pw_head": ((p,), np.float64, 0.0),
             "pw_past": ((p,), np.float64, 0.0),
-            "pw_phi": ((p,), np.float64, 0.0),
             "pw_scale": ((), np.float64, 1.0),
             "c_high": ((), np.float64, 0.0),
             "c_low": ((), np.float64, 0.0),
@@ -455,7 +456,7 @@ class _Group:
                     a["pw_past"][:, c].tolist(),
                     int(a["pw_count"][c]),
                 )
-                a["pw_phi"][:, c] = phi
+                a["pw_head"][:, c] = phi
                 a["pw_scale"][c] = scale
         if not fitted.any():
             return found
@@ -464,7 +465,7 @@ class _Group:
             z, time_s = z[fitted], time_s[fitted]
         predicted = np.zeros(z.shape[0])
         if p:
-            coefficients, past = a["pw_phi"][:, rc], a["pw_past"][:, rc]
+            coefficients, past = a["pw_head"][:, rc], a["pw_past"][:, rc]
             for i in range(p):
                 predicted += coefficients[i] * past[i]
             past[1:] = past[:-1].copy()

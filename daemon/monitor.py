@@ -65,7 +65,10 @@ class MonitorConfig:
     CUSUM with k = 0.5 and h = 9 has an in-control ARL of roughly 26,000
     samples (two-sided, Siegmund's approximation), and holds its statistic
     while a shift persists so that m-of-n persistence can confirm it; the
-    variance and whiteness tests use alpha of 1e-6 and 1e-5. Measured
+    variance and whiteness tests use alpha of 1e-6 and 1e-5, the whiteness
+    test six lags over blocks of 240 samples (about ln W, the usual choice
+    for the Ljung-Box test: Tsay, *Analysis of Financial Time Series*, 3rd
+    ed., Wiley, 2010, section 2.2). Measured
     false-alert rates are in the detection tests (``tests/reference``).
 
     Parameters
@@ -104,7 +107,7 @@ class MonitorConfig:
     prewhiten: PrewhitenConfig = field(default_factory=lambda: PrewhitenConfig(ar_order=6))
     cusum: CusumConfig = field(default_factory=lambda: CusumConfig(h=9.0, after_alarm="hold"))
     variance: VarianceConfig = field(default_factory=lambda: VarianceConfig(lam=0.02, alpha=1e-6))
-    whiteness: WhitenessConfig = field(default_factory=lambda: WhitenessConfig(alpha=1e-5))
+    whiteness: WhitenessConfig = field(default_factory=lambda: WhitenessConfig(lags=6, alpha=1e-5))
     drift_alpha: float = 1e-4
     bands: BandsConfig = field(default_factory=BandsConfig)
     evaluate_every: int = 60

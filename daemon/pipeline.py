@@ -31,9 +31,11 @@ not rewritten every minute.
 
 Where the baselines come from, per asset class:
 
-* ``baseline.file``: a baseline file (:mod:`arxwatch.daemon.library`);
-  an asset found there is judged from its first row, an asset missing from
-  it is counted as ``no_baseline`` and not judged.
+* ``baseline.file``: a baseline file (:mod:`arxwatch.daemon.library`).
+  Every asset in it gets its place in the fleet once, at start (after any
+  restore), and the parsed file is dropped, so memory does not hold two
+  copies; it is judged from its first row. An asset missing from the file
+  is counted as ``no_baseline`` and not judged.
 * ``baseline.learn_for_s``: a :class:`~arxwatch.estimators.baseline.LiveBaselineLearner`
   per asset collects an uninterrupted window per operating mode, fits it
   (order chosen by BIC, acceptance rule), and an accepted mode starts being
@@ -188,7 +190,7 @@ class Checkpoint:
 class _Class:
     """Everything of one asset class: alignment, learners, the fleet."""
 
-    def __init__(self, config: AssetClassConfig, library: Mapping[str, BaselineSet] | None) -> None:
+    def __init__(self, config: AssetClassConfig, library: dict[str, BaselineSet] | None) -> None:
         self.config = config
         self.signals = config.signals
         self.signal_index = {signal: i for i, signal in enumerate(self.signals)}
@@ -204,7 +206,8 @@ class _Class:
             config.signal_names(), config.monitor_config(), quality_signals=tuple(quality)
         )
         self.n_checked = len(quality)
-        self.library = library
+        self.library = library  # until admit_library()
+        self.from_file = library is not None
         self.learner_config = (
             config.learner_config() if config.baseline.learn_for_s is not None else None
         )
@@ -237,13 +240,24 @@ class _Class:
             grown[: min(self.frontier.shape[0], grown.shape[0])] = self.frontier[: grown.shape[0]]
             self.frontier = grown
         self.frontier[slot] = -np.inf
-        if self.library is not None:
-            known = self.library.get(asset_id)
-            if known is not None:
-                self.fleet_slot[slot] = self.fleet.add_asset(asset_id, known)
+        if self.from_file:
+            if asset_id in self.fleet:
+                self.fleet_slot[slot] = self.fleet.slot(asset_id)
         elif self.learner_config is not None:
             self.learners[slot] = LiveBaselineLearner(self.learner_config)
         return slot
+
+    def admit_library(self) -> None:
+        """Give every asset of the baseline file its place in the fleet; drop the file's objects."""
+        if self.library is None:
+            return
+        for asset, baselines in self.library.items():
+            if asset not in self.fleet:
+                fleet_slot = self.fleet.add_asset(asset, baselines)
+                slot = self.slot_of.get(asset)
+                if slot is not None:
+                    self.fleet_slot[slot] = fleet_slot
+        self.library = None
 
     def needed(self, slot: int, q: int) -> bool:
         fleet_slot = int(self.fleet_slot[slot])
@@ -282,13 +296,15 @@ class Pipeline:
         for asset_class in config.asset_classes:
             library = None
             if asset_class.baseline.file is not None:
-                library = libraries.get(asset_class.name)
-                if library is None:
+                given = libraries.get(asset_class.name)
+                if given is None:
                     raise ValueError(
                         f"asset class {asset_class.name!r} loads its baselines from "
                         f"{asset_class.baseline.file}, but no baselines were given for it"
                     )
+                library = dict(given)
             self._classes[asset_class.name] = _Class(asset_class, library)
+        self._admitted = False  # baseline files not yet in the fleets
         self.counts = Counts()
         self.events: list[BaselineEvent] = []
         self._to_fit: deque[tuple[str, int, str | None]] = deque()
@@ -301,6 +317,8 @@ class Pipeline:
         Never raises for bad input: a topic no class claims, an unreadable
         payload or an unusable sample is counted (see :class:`Counts`).
         """
+        if not self._admitted:
+            self._admit()
         counts = self.counts
         counts.messages += 1
         route = self.router.route(topic)
@@ -356,6 +374,8 @@ class Pipeline:
         list of dict
             Alert records caused by the rows (and by baselines accepted now).
         """
+        if not self._admitted:
+            self._admit()
         records: list[dict[str, Any]] = []
         for state in self._classes.values():
             records += self._advance_class(state, now_s)
@@ -499,6 +519,16 @@ class Pipeline:
         fleet = self._classes[asset_class].fleet
         return fleet.active(asset_id) if asset_id in fleet else {}
 
+    def fleet_of(self, asset_class: str) -> FleetMonitor:
+        """Return the fleet monitor of an asset class (for tools that pre-warm or inspect it).
+
+        Raises
+        ------
+        KeyError
+            If there is no such class.
+        """
+        return self._classes[asset_class].fleet
+
     def class_of(self, asset_id: str) -> str | None:
         """Return the class an asset was discovered under, or None."""
         return self.router.assets.get(asset_id)
@@ -571,6 +601,12 @@ class Pipeline:
         entries["pipeline"] = json.dumps(meta, allow_nan=False).encode("utf-8")
         return Checkpoint(entries, appended, dropped)
 
+    def _admit(self) -> None:
+        """Put the baseline files' assets into the fleets (once; after any restore)."""
+        for state in self._classes.values():
+            state.admit_library()
+        self._admitted = True
+
     def restore(self, entries: Mapping[str, bytes], series: Callable[[str], bytes]) -> None:
         """Restore a state written by :meth:`checkpoint` under the same configuration.
 
@@ -590,6 +626,7 @@ class Pipeline:
         """
         blob = entries.get("pipeline")
         if blob is None:
+            self._admit()
             return  # nothing saved yet: a first start
         meta = json.loads(blob.decode("utf-8"))
         if meta.get("version") != _STATE_VERSION:
@@ -629,6 +666,7 @@ class Pipeline:
                     if learner.ready(mode):  # was waiting for its fit
                         self._to_fit.append((name, int(slot), mode))
         self.last_sample_s = meta.get("last_sample_s")
+        self._admit()
 
     def _restore_learner(
         self, state: _Class, slot: int, series: Callable[[str], bytes]
