@@ -31,6 +31,7 @@ I/O.
 from __future__ import annotations
 
 import math
+import sys
 from collections.abc import Mapping, Sequence
 from typing import Any
 
@@ -1322,7 +1323,7 @@ class FleetMonitor:
             fresh._groups.append(group)
         fresh._mode_labels = [None if m is None else str(m) for m in meta["modes"]]
         fresh._mode_codes = {label: code for code, label in enumerate(fresh._mode_labels)}
-        fresh._ids = [None if i is None else str(i) for i in meta["ids"]]
+        fresh._ids = [None if i is None else sys.intern(str(i)) for i in meta["ids"]]
         fresh._slots = {i: slot for slot, i in enumerate(fresh._ids) if i is not None}
         fresh._free = [int(v) for v in meta["free"]]
         slots = np.asarray(arrays["last_mode"]).shape[0]

@@ -47,6 +47,7 @@ from __future__ import annotations
 
 import io
 import json
+import sys
 from collections import Counter, deque
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
@@ -70,6 +71,9 @@ FITS_PER_ADVANCE = 2
 
 _STATE_VERSION = 1
 _META = "__meta__"
+
+#: Per asset class, a baseline file's content: asset id -> baselines.
+Libraries = Mapping[str, Mapping[str, BaselineSet]]
 
 
 def pack(meta: Mapping[str, Any], arrays: Mapping[str, NDArray[Any]]) -> bytes:
@@ -190,7 +194,7 @@ class Checkpoint:
 class _Class:
     """Everything of one asset class: alignment, learners, the fleet."""
 
-    def __init__(self, config: AssetClassConfig, library: dict[str, BaselineSet] | None) -> None:
+    def __init__(self, config: AssetClassConfig, *, from_file: bool) -> None:
         self.config = config
         self.signals = config.signals
         self.signal_index = {signal: i for i, signal in enumerate(self.signals)}
@@ -206,8 +210,7 @@ class _Class:
             config.signal_names(), config.monitor_config(), quality_signals=tuple(quality)
         )
         self.n_checked = len(quality)
-        self.library = library  # until admit_library()
-        self.from_file = library is not None
+        self.from_file = from_file
         self.learner_config = (
             config.learner_config() if config.baseline.learn_for_s is not None else None
         )
@@ -247,17 +250,14 @@ class _Class:
             self.learners[slot] = LiveBaselineLearner(self.learner_config)
         return slot
 
-    def admit_library(self) -> None:
-        """Give every asset of the baseline file its place in the fleet; drop the file's objects."""
-        if self.library is None:
-            return
-        for asset, baselines in self.library.items():
+    def admit_library(self, library: Mapping[str, BaselineSet]) -> None:
+        """Give every asset of the baseline file its place in the fleet."""
+        for asset, baselines in library.items():
             if asset not in self.fleet:
                 fleet_slot = self.fleet.add_asset(asset, baselines)
                 slot = self.slot_of.get(asset)
                 if slot is not None:
                     self.fleet_slot[slot] = fleet_slot
-        self.library = None
 
     def needed(self, slot: int, q: int) -> bool:
         fleet_slot = int(self.fleet_slot[slot])
@@ -274,9 +274,13 @@ class Pipeline:
     ----------
     config : Config
         The validated site configuration.
-    libraries : mapping of str to mapping of str to BaselineSet, optional
+    libraries : mapping, or a callable returning one, optional
         Per asset class that loads baselines from a file, the file's
-        content (asset id -> baselines); read by the caller.
+        content (asset id -> baselines), read by the caller. A callable is
+        called once, when the assets are put into the fleets (after any
+        :meth:`restore`): the service parses the files then, so the
+        parsed objects are freed above the restored state and their memory
+        can go back to the OS.
 
     Raises
     ------
@@ -287,23 +291,16 @@ class Pipeline:
     def __init__(
         self,
         config: Config,
-        libraries: Mapping[str, Mapping[str, BaselineSet]] | None = None,
+        libraries: Libraries | Callable[[], Libraries] | None = None,
     ) -> None:
         self.config = config
         self.router: Router = config.router()
-        libraries = libraries or {}
-        self._classes: dict[str, _Class] = {}
-        for asset_class in config.asset_classes:
-            library = None
-            if asset_class.baseline.file is not None:
-                given = libraries.get(asset_class.name)
-                if given is None:
-                    raise ValueError(
-                        f"asset class {asset_class.name!r} loads its baselines from "
-                        f"{asset_class.baseline.file}, but no baselines were given for it"
-                    )
-                library = dict(given)
-            self._classes[asset_class.name] = _Class(asset_class, library)
+        self._libraries = libraries
+        self._classes: dict[str, _Class] = {
+            c.name: _Class(c, from_file=c.baseline.file is not None) for c in config.asset_classes
+        }
+        if not callable(libraries):
+            self._check_libraries(libraries or {})
         self._admitted = False  # baseline files not yet in the fleets
         self.counts = Counts()
         self.events: list[BaselineEvent] = []
@@ -601,10 +598,23 @@ class Pipeline:
         entries["pipeline"] = json.dumps(meta, allow_nan=False).encode("utf-8")
         return Checkpoint(entries, appended, dropped)
 
+    def _check_libraries(self, libraries: Libraries) -> Libraries:
+        for name, state in self._classes.items():
+            if state.from_file and name not in libraries:
+                raise ValueError(
+                    f"asset class {name!r} loads its baselines from "
+                    f"{state.config.baseline.file}, but no baselines were given for it"
+                )
+        return libraries
+
     def _admit(self) -> None:
         """Put the baseline files' assets into the fleets (once; after any restore)."""
-        for state in self._classes.values():
-            state.admit_library()
+        given = self._libraries
+        libraries = self._check_libraries(given() if callable(given) else given or {})
+        self._libraries = None
+        for name, state in self._classes.items():
+            if state.from_file:
+                state.admit_library(libraries[name])
         self._admitted = True
 
     def restore(self, entries: Mapping[str, bytes], series: Callable[[str], bytes]) -> None:
@@ -646,7 +656,7 @@ class Pipeline:
             state.intake.load_state({"meta": intake_meta, "arrays": intake_arrays})
             fleet_meta, fleet_arrays = unpack(entries[f"fleet/{name}"])
             state.fleet.load_state({"meta": fleet_meta, "arrays": fleet_arrays})
-            state.assets = [None if a is None else str(a) for a in part["assets"]]
+            state.assets = [None if a is None else sys.intern(str(a)) for a in part["assets"]]
             state.slot_of = {a: s for s, a in enumerate(state.assets) if a is not None}
             slots = np.asarray(part["fleet_slots"], dtype=np.int32)
             state.fleet_slot = np.full(max(len(state.assets), 1), -1, dtype=np.int32)

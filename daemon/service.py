@@ -279,8 +279,10 @@ class Service:
         self.restored = False
         self._last_tick: float | None = None
         password = read_secret(config, environ)  # ConfigError names the key
-        libraries = load_libraries(config)
-        self.pipeline = Pipeline(config, libraries)
+        # baseline files are parsed after the restore (the pipeline calls
+        # this once), so their objects sit above the restored state and
+        # start-up can hand their memory back to the OS
+        self.pipeline = Pipeline(config, lambda: load_libraries(config))
         try:
             self.store = StateStore(config.state.path)
         except OSError as err:
@@ -311,6 +313,7 @@ class Service:
             raise StartError(f"metrics.listen: {err}") from None
         self.inbox: queue.Queue[Incoming] = queue.Queue(maxsize=config.limits.queue_size)
         checkpoint = self._restore()
+        _release_transient_memory()  # the parsed files and restored blobs are gone now
         self.link = MqttLink(
             config.broker,
             password=password,
@@ -345,7 +348,7 @@ class Service:
                 err,
                 copy,
             )
-            self.pipeline = Pipeline(self.config, load_libraries(self.config))
+            self.pipeline = Pipeline(self.config, lambda: load_libraries(self.config))
         replayed = 0
         records: list[dict[str, Any]] = []
         for entry in self.store.journal_after(saved.journal_upto):
@@ -359,7 +362,6 @@ class Service:
             )
         self._pending_records = records
         self.restored = True
-        _release_transient_memory()
         return saved.saved_at_s is not None
 
     # -- health ---------------------------------------------------------------
@@ -426,6 +428,10 @@ class Service:
         last = self._last_checkpoint
         if last is None or now - last >= self.config.state.checkpoint_every_s:
             self._checkpoint(now)
+            # a checkpoint copies the whole state a few times over (arrays,
+            # npz, SQLite); now that the copies are gone, give their pages
+            # back rather than keep them as high water
+            _release_transient_memory()
         self._observe_link()
         self.meter.update(self.pipeline.counts)
         self.metrics.publish(self._snapshot())
