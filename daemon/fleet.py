@@ -278,14 +278,17 @@ class _Group:
 
     def to_state(self) -> tuple[dict[str, Any], dict[str, NDArray[Any]]]:
         """Return (JSON-safe description, arrays) of the group, for checkpoints."""
+        # up to the last channel in use: idle capacity is not saved
+        used = np.flatnonzero(self.arrays["used"])
+        keep = int(used[-1]) + 1 if used.size else 0
         meta = {
             "order": encode_order(self.order),
             "sample_period_s": self.sample_period_s,
-            "capacity": self.capacity,
-            "free": list(self.free),
+            "capacity": keep,
+            "free": [c for c in self.free if c < keep],
         }
-        arrays = dict(self.arrays)
-        arrays.update({f"tracker.{k}": v for k, v in self.tracker.arrays().items()})
+        arrays = {name: a[..., :keep] for name, a in self.arrays.items()}
+        arrays.update({f"tracker.{k}": v[:keep] for k, v in self.tracker.arrays().items()})
         return meta, arrays
 
     def load_state(self, meta: Mapping[str, Any], arrays: Mapping[str, NDArray[Any]]) -> None:
@@ -1265,13 +1268,16 @@ class FleetMonitor:
         ``numpy.savez`` and read back with ``allow_pickle=False``.
         """
         groups = []
-        arrays: dict[str, NDArray[Any]] = dict(self._slot_arrays())
+        slots = len(self._ids)  # idle slot capacity is not saved
+        arrays: dict[str, NDArray[Any]] = {
+            name: a[:slots] for name, a in self._slot_arrays().items()
+        }
         for g, group in enumerate(self._groups):
             meta, group_arrays = group.to_state()
             groups.append(meta)
             arrays.update({f"g{g}.{name}": v for name, v in group_arrays.items()})
         if self._quality is not None:
-            arrays.update({f"quality.{k}": v for k, v in self._quality.arrays().items()})
+            arrays.update({f"quality.{k}": v[:slots] for k, v in self._quality.arrays().items()})
         meta = {
             "format": "arxwatch.fleet",
             "version": _STATE_VERSION,

@@ -1021,8 +1021,12 @@ class IntakeBank:
         """
         meta = self._meta()
         meta["mode_labels"] = list(self._labels)
+        # up to the last slot in use: idle capacity is not saved, so a restored
+        # bank holds only what its assets need
+        used = np.flatnonzero(self._arrays["in_use"])
+        keep = int(used[-1]) + 1 if used.size else 1
         return {
-            "arrays": {name: array.copy() for name, array in self._arrays.items()},
+            "arrays": {name: array[:keep].copy() for name, array in self._arrays.items()},
             "meta": meta,
         }
 

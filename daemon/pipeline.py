@@ -205,7 +205,9 @@ class _Class:
             len(self.signals) - len(numeric)
         )
         quality = config.quality_configs()
-        self.intake = IntakeBank(config.align_config(), quality)
+        # three cells per signal: one carried forward, two open; feed()
+        # advances when they fill (IntakeBank.crowded), so none overflows
+        self.intake = IntakeBank(config.align_config(), quality, cells=3)
         self.fleet = FleetMonitor(
             config.signal_names(), config.monitor_config(), quality_signals=tuple(quality)
         )
