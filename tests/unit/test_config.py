@@ -313,7 +313,7 @@ def test_learning_per_mode_needs_the_mode_labels() -> None:
         Path(EXAMPLE)
         .read_text()
         .replace(
-            "      values: [occupied, unoccupied, economiser]   # optional list of known labels\n",
+            "      values: [occupied, unoccupied, economiser]\n",
             "",
         )
     )
