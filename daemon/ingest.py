@@ -21,17 +21,22 @@ What the link does, and why:
   CONNECT is the inbox's ``maxsize`` (at most 65,535), so the broker should
   never have more unacknowledged QoS 1 messages out to us than the queue can
   hold. It can all the same: MQTT 3.1.1 has no Receive Maximum (mosquitto then
-  sends up to its ``max_inflight_messages``, 20), and mosquitto 2.0.11 was
-  seen to send one more than the Receive Maximum after a PUBACK. Dropping such
-  a message without an ack would keep its in-flight slot taken until the next
-  reconnect; enough of those and delivery stops. So a QoS 1 message that
-  finds the inbox full waits in the link (``held_back``, bounded by the
-  broker's in-flight window, at most :data:`MAX_HELD_BACK`) and moves to the
-  inbox, in arrival order, when :meth:`MqttLink.ack` makes room. A QoS 0
-  message that finds it full is dropped (``overflows``): QoS 0 is not
-  flow-controlled and has nothing to acknowledge. Beyond the bound a QoS 1
-  message is dropped unacknowledged too (also ``overflows``); the broker
-  sends it again when the session resumes.
+  sends up to its ``max_inflight_messages``, 20), and mosquitto 2.0.11 (the
+  Debian 12 package) was seen to stop honouring it once PUBACKs flow: with a
+  Receive Maximum of 100 and 1,000 messages queued, acknowledging 50 brought
+  all the other 900. Dropping such a message without an ack would keep its
+  in-flight slot taken until the next reconnect, and lose it until then. So
+  a QoS 1 message that finds the inbox full waits in the link
+  (``held_back``) and moves to the inbox, in arrival order, when
+  :meth:`MqttLink.ack` makes room. When :data:`MAX_HELD_BACK` messages wait
+  already, the callback itself waits for room (at most half the keepalive,
+  so that paho's pings are not held up longer): paho's network thread then
+  reads nothing more, and TCP flow control holds the broker back. Only if
+  the worker makes no room in that time is a QoS 1 message dropped without
+  an ack (``overflows``); the broker sends it again when the session resumes.
+  A QoS 0 message that finds the inbox full is dropped at once
+  (``overflows``): QoS 0 is not flow-controlled and has nothing to
+  acknowledge.
 * **Acks by connection.** Every :class:`Incoming` carries the number of the
   connection it arrived on; :meth:`MqttLink.ack` skips messages of an earlier
   connection. The broker sends those again on the new connection with the
@@ -130,8 +135,9 @@ REFUSED_PROTOCOL_VERSION_311: Final = 0x01
 SESSION_TAKEN_OVER: Final = 0x8E
 #: Largest Receive Maximum (two-byte integer, MQTT 5.0 section 3.1.2.11.3).
 MAX_RECEIVE_MAXIMUM: Final = 65_535
-#: Most QoS 1 messages held in the link while the inbox is full.
-MAX_HELD_BACK: Final = MAX_RECEIVE_MAXIMUM
+#: Most QoS 1 messages held in the link while the inbox is full; beyond it
+#: the network thread waits for room (see the module notes).
+MAX_HELD_BACK: Final = 1_000
 #: Rate limit of repeated warnings from the callbacks, seconds.
 WARNING_INTERVAL_S: Final = 60.0
 
@@ -511,11 +517,13 @@ class MqttLink:
         self._max_outgoing = max_outgoing
         self._takeover_backoff_s = takeover_backoff_s
         self._receive_maximum = min(inbox.maxsize, MAX_RECEIVE_MAXIMUM)
+        self._hold_wait_s = broker.keepalive_s / 2.0
         self._endpoint = f"{broker.host}:{broker.port}"
         self._throttle = _Throttle(WARNING_INTERVAL_S)
 
         self._lock = threading.Lock()
         self._connected_changed = threading.Condition(self._lock)
+        self._room = threading.Condition(self._lock)  # held-back messages moved on
         # Everything below is guarded by self._lock.
         self._protocol: str = broker.protocol
         self._client = self._make_client(self._protocol)
@@ -679,6 +687,7 @@ class MqttLink:
             except queue.Full:
                 return
             self._held.popleft()
+            self._room.notify_all()
 
     def publish(self, topic: str, payload: bytes, *, qos: int, retain: bool) -> int | None:
         """Hand a message to paho for sending.
@@ -808,6 +817,7 @@ class MqttLink:
                 return
             self._stopped = True
             self._stopping = True
+            self._room.notify_all()  # a callback waiting for inbox room gives up
             client, connected, started = self._client, self._connected, self._started
         if not started:
             return
@@ -1112,13 +1122,30 @@ class MqttLink:
                     return
                 except queue.Full:
                     pass
-            if incoming.qos > 0 and len(self._held) < MAX_HELD_BACK:
+            if incoming.qos > 0 and len(self._held) >= MAX_HELD_BACK:
+                paused = True
+                self._room.wait_for(
+                    lambda: len(self._held) < MAX_HELD_BACK or self._stopping,
+                    self._hold_wait_s,
+                )
+            else:
+                paused = False
+            if incoming.qos > 0 and len(self._held) < MAX_HELD_BACK and not self._stopping:
                 self._held.append(incoming)
                 self._counts["held_back"] += 1
                 held, dropped = len(self._held), None
             else:
                 self._counts["overflows"] += 1
                 held, dropped = len(self._held), self._counts["overflows"]
+        if paused and dropped is None:
+            level = logging.WARNING if self._throttle.ready("paused") else logging.DEBUG
+            logger.log(
+                level,
+                "the broker sends more unacknowledged QoS 1 messages than the Receive "
+                "Maximum (%d) allows; reading from it paused until the worker caught up",
+                self._receive_maximum,
+            )
+            return
         if dropped is None:
             level = logging.WARNING if self._throttle.ready("held") else logging.DEBUG
             logger.log(

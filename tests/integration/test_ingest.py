@@ -24,6 +24,7 @@ from typing import Any
 import paho.mqtt.client as mqtt
 import pytest
 
+from arxwatch.daemon import ingest
 from arxwatch.daemon.ingest import Incoming, MqttLink
 from tests.integration.conftest import (
     HOST,
@@ -634,6 +635,59 @@ def test_full_inbox_holds_qos1_back_in_order(
     assert [int(m.payload) for m in received] == list(range(8))
     status = link.status()
     assert (status.overflows, status.connects, status.disconnects) == (0, 1, 0)
+
+
+def test_overrun_beyond_the_hold_bound_pauses_reading(
+    broker: Broker,
+    make_link: MakeLink,
+    make_probe: Callable[[Broker], Probe],
+    topic_prefix: str,
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    # A broker that sends past the Receive Maximum (mosquitto 2.0.11 does,
+    # once PUBACKs flow; MQTT 3.1.1 has none, so mosquitto sends its 20
+    # in-flight at once) fills the inbox and the hold-back list. Beyond the
+    # bound the network thread waits for room instead of dropping: all 20
+    # arrive in order, none dropped. Bound of 5 here: a test value.
+    monkeypatch.setattr(ingest, "MAX_HELD_BACK", 5)
+    config = broker_config(broker, "arxwatch-overrun", protocol="mqtt311")
+    link, inbox = make_link(config, [f"{topic_prefix}/data/#"], f"{topic_prefix}/status",
+                            maxsize=3)  # fmt: skip
+    assert wait_for(lambda: link.status().subscribed, 5.0)
+    sender = make_probe(broker)
+    for index in range(20):
+        sender.publish(f"{topic_prefix}/data/v", str(index).encode(), qos=1)
+    assert wait_for(lambda: link.status().held_back == 5, 5.0)
+    time.sleep(0.5)  # the sixth extra message waits in the callback
+    assert inbox.qsize() == 3 and link.status().overflows == 0
+    received = take_and_ack(link, inbox, 20)
+    assert [int(m.payload) for m in received] == list(range(20))
+    status = link.status()
+    assert (status.overflows, status.connects, status.disconnects) == (0, 1, 0)
+
+
+def test_stop_does_not_wait_for_a_paused_callback(
+    broker: Broker,
+    make_link: MakeLink,
+    make_probe: Callable[[Broker], Probe],
+    topic_prefix: str,
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    # The callback waits for inbox room at most half the keepalive (here
+    # 30 s); stopping wakes it at once so that the offline status goes out.
+    monkeypatch.setattr(ingest, "MAX_HELD_BACK", 2)
+    config = broker_config(broker, "arxwatch-pausestop", protocol="mqtt311", keepalive_s=60)
+    link, inbox = make_link(config, [f"{topic_prefix}/data/#"], f"{topic_prefix}/status",
+                            maxsize=2)  # fmt: skip
+    assert wait_for(lambda: link.status().subscribed, 5.0)
+    sender = make_probe(broker)
+    for index in range(10):
+        sender.publish(f"{topic_prefix}/data/v", str(index).encode(), qos=1)
+    assert wait_for(lambda: link.status().held_back == 2, 5.0)
+    began = time.monotonic()
+    link.stop(timeout_s=5.0)
+    assert time.monotonic() - began < 5.0
+    assert [int(m.payload) for m in take(inbox, 2)] == [0, 1]
 
 
 def test_qos0_messages_beyond_a_full_inbox_are_dropped_and_counted(
