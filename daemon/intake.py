@@ -94,7 +94,7 @@ from arxwatch.daemon.align import AddOutcome, AlignConfig, _mode_label
 from arxwatch.estimators.detect.evidence import Evidence
 from arxwatch.estimators.detect.quality import QualityConfig
 
-__all__ = ["IntakeBank", "IntakeOutcome", "RowBatch"]
+__all__ = ["IntakeBank", "IntakeOutcome", "RowBatch", "cells_for"]
 
 IntakeOutcome = Literal[
     AddOutcome, "superseded", "mode_label_limit", "time_out_of_range", "out_of_range"
@@ -167,6 +167,9 @@ class RowBatch:
     restart : ndarray of bool, shape (k,)
         As :attr:`arxwatch.daemon.align.Row.restart`: more than
         ``gap_restart_s`` since the asset's previous row.
+    skipped : int
+        Grid points this call closed without a complete row (they count as
+        ``incomplete`` in :meth:`IntakeBank.counts`).
     """
 
     slots: NDArray[np.intp]
@@ -175,6 +178,7 @@ class RowBatch:
     u: NDArray[np.float64]
     mode: NDArray[np.int16]
     restart: NDArray[np.bool_]
+    skipped: int = 0
 
     def __len__(self) -> int:
         return int(self.slots.shape[0])
@@ -224,6 +228,41 @@ def _last_indices(times: NDArray[np.float64], period: float) -> NDArray[np.int64
     while (down := k * period > times).any():
         k -= down
     return k.astype(np.int64)
+
+
+def cells_for(config: AlignConfig) -> int:
+    """Return the cells per signal a live feed needs under ``config``.
+
+    A signal sampled once a period, advanced at least once a period, holds
+    the carried cell, the cells between the last closed grid point and its
+    newest sample (``ceil(lateness_s / sample_period_s)`` of them) and one
+    just opened before the next advance: ``2 + ceil(lateness / period)``,
+    and at least 3 so that a sample just after a grid point fits before that
+    point closes. A burst beyond that marks the asset :attr:`IntakeBank.crowded`.
+
+    Examples
+    --------
+    >>> cells_for(AlignConfig(sample_period_s=60.0, output="sat", inputs=("valve",)))
+    3
+    >>> cells_for(AlignConfig(sample_period_s=1.0, output="sat", inputs=("valve",), lateness_s=5))
+    7
+    """
+    return max(3, 2 + math.ceil(config.lateness_s / config.sample_period_s))
+
+
+def _repacked(
+    times: NDArray[np.float64], values: NDArray[np.float64], cells: int
+) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """Return held samples with ``cells`` entries per signal, newest first, empty (NaN) last."""
+    order = np.argsort(-times, axis=2, kind="stable")[..., :cells]  # NaN sorts last
+    times = np.take_along_axis(times, order, axis=2)
+    values = np.take_along_axis(values, order, axis=2)
+    pad = cells - times.shape[2]
+    if pad > 0:
+        blank = np.full((*times.shape[:2], pad), np.nan)
+        times = np.concatenate([times, blank], axis=2)
+        values = np.concatenate([values, blank], axis=2)
+    return np.ascontiguousarray(times), np.ascontiguousarray(values)
 
 
 def _index_argument(name: str, value: object) -> int:
@@ -333,10 +372,11 @@ class IntakeBank:
         self.config = config
         self.cells = cells
         self.max_mode_labels = max_mode_labels
-        #: Set by :meth:`add` when a signal of some asset has no free cell
-        #: left; cleared by :meth:`advance`. A caller feeding a burst of
-        #: samples advances when it is set, so that no cell overflows.
-        self.crowded = False
+        #: (slot, signal) pairs that took their last free cell in :meth:`add`;
+        #: :meth:`advance` removes the slots it advances. A caller feeding a
+        #: burst advances the asset before giving a crowded signal another
+        #: sample, so that no cell overflows.
+        self.crowded: set[tuple[int, int]] = set()
         self.signals = config.signals
         self.quality_signals = tuple(name for name in numeric if name in quality)
         self._quality_configs = tuple(quality[name] for name in self.quality_signals)
@@ -439,6 +479,7 @@ class IntakeBank:
         slot = self._slot(slot)
         for name, (_, _, fill) in _LAYOUT.items():
             self._arrays[name][slot] = fill
+        self.crowded = {pair for pair in self.crowded if pair[0] != slot}
         pending = self._pending.tolist()
         self._pending = array("d")
         for i in range(0, len(pending), _CHECK_FIELDS):
@@ -571,7 +612,7 @@ class IntakeBank:
             if same < 0 and sum(1 for t in held if t != t) <= 1:
                 # No free cell left after this one: the caller should advance
                 # before another cell opens, or the oldest would be dropped.
-                self.crowded = True
+                self.crowded.add((slot, signal))
             if target < 0:
                 # More open cells than ``cells``: the oldest goes, possibly the new one.
                 flat["counts"][slot * self._n_counts + self._column["overflow"]] += 1
@@ -772,7 +813,8 @@ class IntakeBank:
             raise ValueError(
                 "now_s must hold times within 2**50 sample periods of the epoch, or -inf"
             )
-        self.crowded = False
+        if self.crowded:  # every slot given a limit has had its chance
+            self.crowded = {pair for pair in self.crowded if not known[pair[0]]}
         end_all = np.full(last.shape, np.iinfo(np.int64).min // 2, dtype=np.int64)
         end_all[known] = _last_indices(now[known] - self.config.lateness_s, period)
         start_all = np.where(last != _OPEN, last + 1, arrays["first_index"])
@@ -832,7 +874,9 @@ class IntakeBank:
         row_asset = np.repeat(asset, count)
         slots = due[row_asset]
         time_s = index.astype(np.float64) * period
-        batch = self._rows(slots, time_s, np.repeat(stretch_values, count, axis=0))
+        batch = self._rows(
+            slots, time_s, np.repeat(stretch_values, count, axis=0), int(span.sum()) - total
+        )
 
         rows = np.zeros(n, dtype=np.int64)
         np.add.at(rows, asset, count)
@@ -857,6 +901,7 @@ class IntakeBank:
         slots: NDArray[np.intp],
         time_s: NDArray[np.float64],
         values: NDArray[np.float64],
+        skipped: int = 0,
     ) -> RowBatch:
         """Flag restarts, update each asset's last row time and order rows by (time, slot).
 
@@ -885,6 +930,7 @@ class IntakeBank:
             u=values[order, 1 : 1 + n_inputs],
             mode=mode,
             restart=restart[order],
+            skipped=skipped,
         )
 
     # ---------------------------------------------------------------- stale
@@ -1035,7 +1081,9 @@ class IntakeBank:
 
         Timing and quality thresholds may differ from the saving bank's (as
         for the references); the version, sample period, signals, checked
-        signals, cells and counters must match. Untaken evidence is dropped.
+        signals and counters must match. A different number of cells (a new
+        ``lateness_s``, see :func:`cells_for`) is fine: each signal keeps its
+        newest held samples, as many as fit. Untaken evidence is dropped.
 
         Parameters
         ----------
@@ -1057,8 +1105,11 @@ class IntakeBank:
         if not isinstance(meta, Mapping) or not isinstance(saved, Mapping):
             raise ValueError("intake state 'meta' and 'arrays' must be mappings")
         expected = self._meta()
+        saved_cells = meta.get("cells")
+        if isinstance(saved_cells, bool) or not isinstance(saved_cells, int) or saved_cells < 2:
+            raise ValueError(f"intake state cells must be an integer >= 2, got {saved_cells!r}")
         for key in expected:
-            if meta.get(key) != expected[key]:
+            if key != "cells" and meta.get(key) != expected[key]:
                 raise ValueError(
                     f"intake state {key} is {meta.get(key)!r}, the bank has {expected[key]!r}"
                 )
@@ -1085,6 +1136,8 @@ class IntakeBank:
         for name, (dtype, axes, _) in _LAYOUT.items():
             loaded = np.asarray(saved[name])
             shape = self._shape(capacity, axes)
+            if "cell" in axes:
+                shape = (*shape[:-1], saved_cells)
             if loaded.shape != shape or loaded.dtype != np.dtype(dtype):
                 raise ValueError(
                     f"intake state array {name!r} has shape {loaded.shape} and dtype "
@@ -1098,7 +1151,12 @@ class IntakeBank:
                 raise ValueError(
                     f"intake state holds mode codes outside the {len(labels)} saved labels"
                 )
+        if saved_cells != self.cells:
+            arrays["time"], arrays["value"] = _repacked(arrays["time"], arrays["value"], self.cells)
         self._set_arrays(arrays)
+        # a signal with no free cell must be advanced before its next new cell
+        full = (~np.isnan(arrays["time"])).all(axis=2) & arrays["in_use"][:, None]
+        self.crowded = {(int(a), int(b)) for a, b in zip(*np.nonzero(full), strict=True)}
         self._labels = list(labels)
         self._codes = {label: code for code, label in enumerate(labels)}
         self._pending = array("d")

@@ -59,7 +59,7 @@ from numpy.typing import NDArray
 from arxwatch.daemon.config import AssetClassConfig, Config
 from arxwatch.daemon.decode import PayloadFormat, Rejected, decode
 from arxwatch.daemon.fleet import FleetMonitor
-from arxwatch.daemon.intake import IntakeBank
+from arxwatch.daemon.intake import IntakeBank, cells_for
 from arxwatch.daemon.route import Refused, Router
 from arxwatch.estimators.baseline import BaselineSet, LiveBaselineLearner
 
@@ -68,6 +68,10 @@ __all__ = ["FITS_PER_ADVANCE", "BaselineEvent", "Checkpoint", "Counts", "Pipelin
 #: Live baseline fits done per :meth:`Pipeline.advance` call at most (each
 #: takes tens to hundreds of milliseconds); more wait for the next call.
 FITS_PER_ADVANCE = 2
+
+#: Topic refusals that point at the config or the site, not at unrelated
+#: traffic under the subscription (``no matching rule`` is usually that).
+NOTEWORTHY_REFUSALS = frozenset({"asset limit", "asset class conflict"})
 
 _STATE_VERSION = 1
 _META = "__meta__"
@@ -205,9 +209,10 @@ class _Class:
             len(self.signals) - len(numeric)
         )
         quality = config.quality_configs()
-        # three cells per signal: one carried forward, two open; feed()
-        # advances when they fill (IntakeBank.crowded), so none overflows
-        self.intake = IntakeBank(config.align_config(), quality, cells=3)
+        # as many cells per signal as the lateness needs; feed() advances an
+        # asset whose cells filled (IntakeBank.crowded), so none overflows
+        align = config.align_config()
+        self.intake = IntakeBank(align, quality, cells=cells_for(align))
         self.fleet = FleetMonitor(
             config.signal_names(), config.monitor_config(), quality_signals=tuple(quality)
         )
@@ -308,6 +313,9 @@ class Pipeline:
         self.events: list[BaselineEvent] = []
         self._to_fit: deque[tuple[str, int, str | None]] = deque()
         self.last_sample_s: float | None = None
+        #: The latest message that could not be used for a reason a person
+        #: should hear about, as (topic, why); the service logs and clears it.
+        self.last_problem: tuple[str, str] | None = None
 
     # -- messages -------------------------------------------------------------
     def feed(self, topic: str, payload: bytes, arrival_s: float) -> list[dict[str, Any]]:
@@ -323,6 +331,8 @@ class Pipeline:
         route = self.router.route(topic)
         if isinstance(route, Refused):
             counts.refused[route.reason] += 1
+            if route.reason in NOTEWORTHY_REFUSALS:
+                self.last_problem = (topic, f"topic refused: {route.reason}")
             return []
         state = self._classes[route.asset_class]
         slot = state.slot_of.get(route.asset_id)
@@ -331,6 +341,8 @@ class Pipeline:
         sample = decode(payload, arrival_s, state.formats[route.signal])
         if isinstance(sample, Rejected):
             counts.rejected[sample.reason] += 1
+            if sample.reason != "empty":  # empty payloads clear retained messages
+                self.last_problem = (topic, f"payload rejected ({sample.reason}): {sample.detail}")
             return []
         if not sample.quality_ok:
             counts.samples["bad_quality_flag"] += 1
@@ -340,22 +352,23 @@ class Pipeline:
         value = sample.value
         # an implausible value raises its data-quality alert but stays out of the model
         usable = isinstance(value, str) or low <= value <= high
+        records: list[dict[str, Any]] = []
+        if (slot, signal) in state.intake.crowded:  # a burst: close what it can first
+            records = self._advance_class(state, arrival_s, slot)
         outcome = state.intake.add(slot, signal, sample.time_s, value, usable=usable)
         counts.samples[outcome] += 1
         if outcome not in ("accepted", "out_of_range"):
-            return []
+            return records
         if self.last_sample_s is None or sample.time_s > self.last_sample_s:
             self.last_sample_s = sample.time_s
         if sample.time_s > state.frontier[slot]:
             state.frontier[slot] = sample.time_s
-        records: list[dict[str, Any]] = []
         taken = state.intake.take_quality(state.needed)
         fleet_slot = int(state.fleet_slot[slot])
         if taken and fleet_slot >= 0:
-            records = state.fleet.quality(fleet_slot, [ev for _, ev in taken], sample.time_s)
-            self._count_transitions(records)
-        if state.intake.crowded:
-            records += self._advance_class(state, arrival_s)
+            quality = state.fleet.quality(fleet_slot, [ev for _, ev in taken], sample.time_s)
+            self._count_transitions(quality)
+            records += quality
         return records
 
     # -- the grid -------------------------------------------------------------
@@ -381,12 +394,20 @@ class Pipeline:
         self._fit_some()
         return records
 
-    def _advance_class(self, state: _Class, now_s: float | None) -> list[dict[str, Any]]:
-        """Close the grid points of one class up to each asset's frontier; judge the rows."""
+    def _advance_class(
+        self, state: _Class, now_s: float | None, only: int | None = None
+    ) -> list[dict[str, Any]]:
+        """Close grid points up to each asset's frontier; judge the rows.
+
+        All assets of the class, or only the slot ``only`` (a crowded asset).
+        """
         limits = state.frontier if now_s is None else np.minimum(state.frontier, now_s)
-        skipped_before = state.intake.counts()["incomplete"]
+        if only is not None:
+            one = np.full_like(limits, -np.inf)
+            one[only] = limits[only]
+            limits = one
         batch = state.intake.advance(limits)
-        self.counts.grid_points_skipped += state.intake.counts()["incomplete"] - skipped_before
+        self.counts.grid_points_skipped += batch.skipped
         if not len(batch):
             return []
         records: list[dict[str, Any]] = []

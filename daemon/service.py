@@ -414,6 +414,7 @@ class Service:
             for message in batch:
                 records += self.pipeline.feed(message.topic, message.payload, message.arrival_s)
             self._latest_arrival = batch[-1].arrival_s
+            self._log_problem()
         now = self.clock()
         records += self.pipeline.advance(now)
         if now - self._last_stale >= settings.stale_every_s:
@@ -476,6 +477,19 @@ class Service:
                 record["reading"],
                 extra={"asset": record["asset"], "alert_id": record["id"]},
             )
+
+    def _log_problem(self) -> None:
+        problem = self.pipeline.last_problem
+        if problem is None:
+            return
+        self.pipeline.last_problem = None
+        # one template: the rate limit lets it through once a minute
+        logger.warning(
+            "unusable message on %r: %s (all are counted in arxwatch_payloads_rejected_total "
+            "and arxwatch_topics_refused_total)",
+            problem[0][:120],
+            problem[1],
+        )
 
     def _log_baselines(self) -> None:
         for event in self.pipeline.events:

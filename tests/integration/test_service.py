@@ -256,6 +256,8 @@ def test_alerts_metrics_health_stop_and_restart(site: dict, make_probe: Any) -> 
     assert families["arxwatch_assets"][(("state", "monitoring"),)] == 3
     assert families["arxwatch_mqtt_connected"][()] == 1
     assert daemon.get("/healthz")[0] == 200 and daemon.get("/nothing")[0] == 404
+    # bad payloads are named in the log (rate-limited), not only counted
+    assert "unusable message on 'larkspur/block-a/vav/vav-0/zone-temp'" in daemon.log()
 
     # the retained state of the faulty box lists its raised alerts
     late = make_probe(broker)

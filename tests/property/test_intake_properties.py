@@ -262,8 +262,10 @@ def test_rows_and_evidence_equal_the_references(data: st.DataObject) -> None:
             assert bank.asset_counts(slot)["overflow"] == overflow + overflowed
             diverged[asset] = overflowed
         elif op[0] == "advance":
+            incomplete = bank.counts()["incomplete"]
             batch = bank.advance(op[1])
             assert_ordered(batch)
+            assert batch.skipped == bank.counts()["incomplete"] - incomplete
             for asset, aligner in enumerate(reference.aligners):
                 rows = aligner.advance(op[1])
                 if not diverged[asset]:
@@ -293,7 +295,9 @@ def run(bank: IntakeBank, ops: list[Op], slots: list[int]) -> list[Any]:
             said.append(bank.take_quality())
         elif op[0] == "advance":
             batch = bank.advance(op[1])
-            said.append([getattr(batch, f).tolist() for f in RowBatch.__dataclass_fields__])
+            said.append(
+                [np.asarray(getattr(batch, f)).tolist() for f in RowBatch.__dataclass_fields__]
+            )
         elif op[0] == "stale":
             said.append(bank.stale(op[1]))
         elif op[0] == "replace":
