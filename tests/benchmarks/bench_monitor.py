@@ -26,9 +26,9 @@ import time
 import numpy as np
 
 from arxwatch.daemon.alert import SignalNames
+from arxwatch.daemon.fleet import FleetMonitor
 from arxwatch.daemon.monitor import AssetMonitor
 from arxwatch.daemon.simulate import REFERENCE_LOOPS, daily_operation
-from arxwatch.daemon.fleet import FleetMonitor
 from arxwatch.estimators.arx import regression_matrix
 from arxwatch.estimators.baseline import Baseline, BaselineSet, fit_baseline
 from arxwatch.estimators.batch import BatchRls

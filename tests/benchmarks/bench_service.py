@@ -67,7 +67,8 @@ SERIES = 16  # distinct simulated boxes, tiled over the assets
 WARM = 1000  # grid points of the warm state
 
 SITE = """
-broker: {{host: 127.0.0.1, port: {port}, client_id: arxwatch-bench, qos: {qos}, keepalive_s: 30}}
+broker:
+  {{host: 127.0.0.1, port: {port}, client_id: arxwatch-bench-{name}, qos: {qos}, keepalive_s: 30}}
 topics: {{status: bench/arxwatch/status, alerts_prefix: bench/arxwatch/alerts}}
 metrics: {{listen: "127.0.0.1:{metrics}"}}
 state: {{path: {state}, checkpoint_every_s: 300}}
@@ -282,6 +283,7 @@ def site(work: Path, name: str, port: int, qos: int, assets: int, base: Any) -> 
     config = work / f"{name}.yaml"
     config.write_text(
         SITE.format(
+            name=name,
             port=port,
             qos=qos,
             metrics=free_port(),
@@ -327,6 +329,7 @@ def daemon_run(
         "rate": accepted / elapsed,
         "lost": len(items) - accepted,
         "judged": daemon.metric("arxwatch_rows_judged_total"),
+        "overflows": daemon.metric("arxwatch_queue_overflows_total"),
         "rows_wanted": rows_wanted,
         "done": float(done),
         "rss_state": float(rss_state),
@@ -419,6 +422,7 @@ def main() -> None:
         print(
             f"  samples lost                        {full['lost']:10,.0f}"
             f"   rows judged {full['judged']:,.0f} of {full['rows_wanted']:,.0f}"
+            f"   dropped at a full inbox {full['overflows']:,.0f}"
         )
         if latency:
             p50, p99 = np.percentile(latency, [50, 99])
