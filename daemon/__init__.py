@@ -1,1 +1,1 @@
-"""Service shell of arxwatch: command line, and (to come) MQTT, metrics and state."""
+"""Service shell of arxwatch: pure processing stages, their adapters and the command line."""

@@ -86,7 +86,7 @@ Gauges, from the latest snapshot
 ``arxwatch_outbox_messages``
     Alert messages not yet acknowledged by the broker.
 ``arxwatch_journal_messages``
-    Received messages not yet durable (not yet acknowledged to the broker).
+    Messages journalled since the last checkpoint (replayed at a restart).
 ``arxwatch_last_sample_timestamp_seconds``
     Unix time of the newest sample processed.
 ``arxwatch_last_checkpoint_timestamp_seconds``
@@ -183,8 +183,8 @@ class LiveSnapshot:
         ``(asset, detector, statistic / threshold)`` of the highest ratios,
         already capped by the worker; each ``(asset, detector)`` at most once.
     outbox_messages, journal_messages : int
-        Alert messages not yet acknowledged by the broker, and received
-        messages not yet durable (both >= 0).
+        Alert messages not yet acknowledged by the broker, and messages
+        journalled since the last checkpoint (both >= 0).
     last_sample_s, last_checkpoint_s, last_connect_s : float or None
         Unix times of the newest sample processed, the last successful
         checkpoint and the last successful connect; ``None`` if none yet.
@@ -291,7 +291,10 @@ class _SnapshotCollector:
             ("family", "severity"),
         )
         outbox = gauge("arxwatch_outbox_messages", "Alert messages not yet acknowledged.")
-        journal = gauge("arxwatch_journal_messages", "Received messages not yet durable.")
+        journal = gauge(
+            "arxwatch_journal_messages",
+            "Messages journalled since the last checkpoint (replayed at a restart).",
+        )
         last_sample = gauge(
             "arxwatch_last_sample_timestamp_seconds", "Unix time of the newest sample processed."
         )

@@ -31,3 +31,25 @@ def test_importing_the_core_loads_no_service_module() -> None:
     )
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == ""
+
+
+PURE_STAGES = (
+    "route", "decode", "align", "intake", "monitor", "fleet", "decide", "alert", "pipeline",
+    "simulate", "config",
+)  # fmt: skip
+
+
+def test_pure_stages_load_no_adapter_library() -> None:
+    # The processing stages of the shell are pure: MQTT, Prometheus and
+    # SQLite belong to the adapters (ingest, publish, store, metrics, http).
+    # config reads YAML, so yaml is allowed.
+    imports = "; ".join(f"import arxwatch.daemon.{name}" for name in PURE_STAGES)
+    code = (
+        f"import sys; {imports}\n"
+        "bad = [m for m in sys.modules if m.startswith(('paho', 'prometheus_client', "
+        "'sqlite3', 'arxwatch.daemon.ingest', 'arxwatch.daemon.store', "
+        "'arxwatch.daemon.service'))]\n"
+        "print(','.join(bad))\n"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == ""
