@@ -29,11 +29,21 @@ from pathlib import Path
 from typing import Any
 
 from arxwatch.daemon.alert import iso_utc
+from arxwatch.daemon.config import Config
 from arxwatch.daemon.store import write_atomically
 from arxwatch.estimators.baseline import BaselineSet
 from arxwatch.estimators.codec import CodecError
 
-__all__ = ["FORMAT", "VERSION", "BaselineFileError", "decode_library", "encode_library"]
+__all__ = [
+    "FORMAT",
+    "VERSION",
+    "BaselineFileError",
+    "decode_library",
+    "encode_library",
+    "read_baselines",
+    "read_site_baselines",
+    "write_baselines",
+]
 
 FORMAT = "arxwatch.baselines"
 VERSION = 1
@@ -110,6 +120,31 @@ def read_baselines(path: str | Path) -> dict[str, BaselineSet]:
     except json.JSONDecodeError as err:
         raise BaselineFileError(f"{source}: line {err.lineno}: not JSON ({err.msg})") from None
     return decode_library(document, source)
+
+
+def read_site_baselines(config: Config) -> dict[str, dict[str, BaselineSet]]:
+    """Read the baseline file of every asset class that names one (``baseline.file``).
+
+    Returns
+    -------
+    dict
+        Asset class name -> asset id -> baselines.
+
+    Raises
+    ------
+    BaselineFileError
+        If a file cannot be read; the message names the class and the file.
+    """
+    out: dict[str, dict[str, BaselineSet]] = {}
+    for asset_class in config.asset_classes:
+        path = asset_class.baseline.file
+        if path is None:
+            continue
+        try:
+            out[asset_class.name] = read_baselines(path)
+        except BaselineFileError as err:
+            raise BaselineFileError(f"asset class {asset_class.name!r}: {err}") from None
+    return out
 
 
 def write_baselines(path: str | Path, baselines: Mapping[str, BaselineSet], now_s: float) -> None:

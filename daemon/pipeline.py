@@ -203,6 +203,18 @@ class _Class:
         self.signals = config.signals
         self.signal_index = {signal: i for i, signal in enumerate(self.signals)}
         self.formats: dict[str, PayloadFormat] = {s: config.payload_format(s) for s in self.signals}
+        # a trend-export cell: the signal's value as a bare number (or label)
+        self.bare_formats = {
+            s: PayloadFormat(
+                kind="number",
+                time_field=None,
+                scale=f.scale,
+                offset=f.offset,
+                max_payload_bytes=f.max_payload_bytes,
+                labels=f.labels,
+            )
+            for s, f in self.formats.items()
+        }
         # plausible range per signal index (the mode signal has none)
         numeric = (config.output, *config.inputs)
         self.ranges = [(s.minimum, s.maximum) for s in numeric] + [(-np.inf, np.inf)] * (
@@ -318,11 +330,17 @@ class Pipeline:
         self.last_problem: tuple[str, str] | None = None
 
     # -- messages -------------------------------------------------------------
-    def feed(self, topic: str, payload: bytes, arrival_s: float) -> list[dict[str, Any]]:
+    def feed(
+        self, topic: str, payload: bytes, arrival_s: float, *, bare: bool = False
+    ) -> list[dict[str, Any]]:
         """Take one MQTT message; return the data-quality alert records it causes.
 
         Never raises for bad input: a topic no class claims, an unreadable
         payload or an unusable sample is counted (see :class:`Counts`).
+        With ``bare`` the payload is read as a bare number (or mode label)
+        sampled at ``arrival_s``, whatever the class's payload format: a
+        cell of a trend export (:mod:`arxwatch.daemon.history`); the signal's
+        scale and offset still apply.
         """
         if not self._admitted:
             self._admit()
@@ -338,7 +356,8 @@ class Pipeline:
         slot = state.slot_of.get(route.asset_id)
         if slot is None:
             slot = state.add(route.asset_id)
-        sample = decode(payload, arrival_s, state.formats[route.signal])
+        formats = state.bare_formats if bare else state.formats
+        sample = decode(payload, arrival_s, formats[route.signal])
         if isinstance(sample, Rejected):
             counts.rejected[sample.reason] += 1
             if sample.reason != "empty":  # empty payloads clear retained messages

@@ -48,7 +48,7 @@ from arxwatch.daemon.fleet import DETECTORS
 from arxwatch.daemon.http import Health, MetricsServer, judge_health, make_app
 from arxwatch.daemon.ingest import Incoming, LinkStatus, MqttLink
 from arxwatch.daemon.intake import IntakeOutcome
-from arxwatch.daemon.library import read_baselines
+from arxwatch.daemon.library import BaselineFileError, read_site_baselines
 from arxwatch.daemon.metrics import DaemonMetrics, LiveSnapshot
 from arxwatch.daemon.pipeline import Counts, Pipeline
 from arxwatch.daemon.publish import AlertPublisher
@@ -110,20 +110,12 @@ def load_libraries(config: Config) -> dict[str, dict[str, BaselineSet]]:
     Raises
     ------
     StartError
-        If a file cannot be read; the message names it and the key.
+        If a file cannot be read; the message names the class and the file.
     """
-    from arxwatch.daemon.library import BaselineFileError
-
-    out: dict[str, dict[str, BaselineSet]] = {}
-    for asset_class in config.asset_classes:
-        path = asset_class.baseline.file
-        if path is None:
-            continue
-        try:
-            out[asset_class.name] = read_baselines(path)
-        except BaselineFileError as err:
-            raise StartError(f"asset class {asset_class.name!r}: {err}") from None
-    return out
+    try:
+        return read_site_baselines(config)
+    except BaselineFileError as err:
+        raise StartError(str(err)) from None
 
 
 def alert_messages(

@@ -1,7 +1,7 @@
 """The pipeline: messages in, records out, as the per-asset reference objects give them."""
 
 import json
-from collections.abc import Iterator
+from collections.abc import Iterable, Iterator
 from pathlib import Path
 
 import numpy as np
@@ -40,12 +40,16 @@ def site(baseline: str, model: str = "auto") -> Config:
     return parse_config(SITE.format(baseline=baseline, model=model), "site.yaml")
 
 
+def write_library(path: Path, assets: Iterable[str]) -> Path:
+    """Write a baseline file with the reference baseline for every asset given."""
+    write_baselines(path, {asset: BaselineSet((reference_baseline(),)) for asset in assets}, START)
+    return path
+
+
 @pytest.fixture(scope="module")
 def library_file(tmp_path_factory: pytest.TempPathFactory, plant: dict) -> Path:
-    """Write a baseline file with the reference baseline for every asset of the plant."""
-    path = tmp_path_factory.mktemp("baselines") / "vav.json"
-    write_baselines(path, {asset: BaselineSet((reference_baseline(),)) for asset in plant}, START)
-    return path
+    """Write the reference baseline of every asset of the plant to a file."""
+    return write_library(tmp_path_factory.mktemp("baselines") / "vav.json", plant)
 
 
 def file_site(path: Path) -> tuple[Config, dict[str, dict[str, BaselineSet]]]:
@@ -62,6 +66,11 @@ def reference_baseline() -> Baseline:
 
 @pytest.fixture(scope="module")
 def plant() -> dict[str, tuple[np.ndarray, np.ndarray]]:
+    """Three VAV boxes of one loop (see :func:`make_plant`)."""
+    return make_plant()
+
+
+def make_plant() -> dict[str, tuple[np.ndarray, np.ndarray]]:
     """Three VAV boxes of one loop; block-a/vav-2 loses 40 % of its valve gain at noon."""
     n = int(1.5 * PER_DAY)
     out = {}
