@@ -59,11 +59,14 @@ from numpy.typing import NDArray
 from arxwatch.daemon.config import AssetClassConfig, Config
 from arxwatch.daemon.decode import PayloadFormat, Rejected, decode
 from arxwatch.daemon.fleet import FleetMonitor
-from arxwatch.daemon.intake import IntakeBank, cells_for
+from arxwatch.daemon.intake import IntakeBank, RowBatch, cells_for
 from arxwatch.daemon.route import Refused, Router
 from arxwatch.estimators.baseline import BaselineSet, LiveBaselineLearner
 
 __all__ = ["FITS_PER_ADVANCE", "BaselineEvent", "Checkpoint", "Counts", "Pipeline"]
+
+#: Receiver of closed rows: asset class, asset id per row, the rows, mode label per row.
+RowTap = Callable[[str, list[str], RowBatch, list[str | None]], None]
 
 #: Live baseline fits done per :meth:`Pipeline.advance` call at most (each
 #: takes tens to hundreds of milliseconds); more wait for the next call.
@@ -328,6 +331,10 @@ class Pipeline:
         #: The latest message that could not be used for a reason a person
         #: should hear about, as (topic, why); the service logs and clears it.
         self.last_problem: tuple[str, str] | None = None
+        #: Called with every batch of closed rows: (asset class, asset id per
+        #: row, the rows, the mode label per row). Baseline fits from history
+        #: collect rows through it; None in the service.
+        self.on_rows: RowTap | None = None
 
     # -- messages -------------------------------------------------------------
     def feed(
@@ -452,6 +459,9 @@ class Pipeline:
             if without:
                 self.counts.rows_not_judged["mode_without_baseline"] += without
             self._count_transitions(records)
+        if self.on_rows is not None:
+            assets = [state.assets[s] or "" for s in batch.slots.tolist()]
+            self.on_rows(state.config.name, assets, batch, labels)
         if state.learners:
             self._learn(state, batch.slots, batch.time_s, batch.y, batch.u, labels, judged)
         not_judged = int((~judged).sum())
@@ -466,7 +476,7 @@ class Pipeline:
         """Check every monitored signal for staleness at ``now_s``; return alert records."""
         records: list[dict[str, Any]] = []
         for state in self._classes.values():
-            for slot, evidence in state.intake.stale(now_s):
+            for slot, evidence in state.intake.stale(now_s, state.needed):
                 fleet_slot = int(state.fleet_slot[slot])
                 if fleet_slot >= 0:
                     records += state.fleet.quality(fleet_slot, [evidence], now_s)

@@ -9,6 +9,7 @@ import pytest
 
 from arxwatch.daemon.align import Aligner
 from arxwatch.daemon.config import Config, parse_config
+from arxwatch.daemon.intake import RowBatch
 from arxwatch.daemon.library import read_baselines, write_baselines
 from arxwatch.daemon.monitor import AssetMonitor
 from arxwatch.daemon.pipeline import Pipeline, pack, unpack
@@ -264,3 +265,21 @@ def test_a_backlog_fed_without_advancing_loses_no_grid_point(
     assert burst.counts.grid_points_skipped == live.counts.grid_points_skipped
     as_text = sorted(json.dumps(r, sort_keys=True) for r in records)
     assert as_text == sorted(json.dumps(r, sort_keys=True) for r in expected)
+
+
+def test_closed_rows_reach_the_row_tap(plant: dict, library_file: Path) -> None:
+    config, libraries = file_site(library_file)
+    pipe = Pipeline(config, libraries)
+    seen: list[tuple[str, str, float, float]] = []
+
+    def tap(asset_class: str, assets: list[str], rows: RowBatch, modes: list) -> None:
+        assert modes == [None] * len(assets)  # the class has no mode signal
+        for asset, t, y in zip(assets, rows.time_s.tolist(), rows.y.tolist(), strict=True):
+            seen.append((asset_class, asset, t, y))
+
+    pipe.on_rows = tap
+    run(pipe, plant, 0, 30)
+    assert len(seen) == pipe.counts.rows == 3 * 29  # grid point 29 is not closed yet
+    y, _ = plant["block-b/vav-7"]
+    assert [v[3] for v in seen if v[1] == "block-b/vav-7"] == y[:29].tolist()
+    assert {v[0] for v in seen} == {"vav"}
