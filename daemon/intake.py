@@ -935,19 +935,28 @@ class IntakeBank:
 
     # ---------------------------------------------------------------- stale
 
-    def stale(self, now_s: float) -> list[tuple[int, Evidence]]:
+    def stale(
+        self, now_s: float, needed: Callable[[int, int], bool] | None = None
+    ) -> list[tuple[int, Evidence]]:
         """Stale check (:meth:`SignalQuality.check`) of every asset and checked signal.
 
         All pairs are evaluated (and, before their first sample, start their
         age count here), but :class:`Evidence` is built only for the pairs
-        that alarm now and for those whose previous evaluation alarmed, so
-        that the caller sees the evaluation that ends an alarm. A pair quiet
-        now and at its previous evaluation gives nothing.
+        that alarm now, for those whose previous evaluation alarmed (the
+        evaluation that ends an alarm), and for quiet ones that ``needed``
+        asks for. A pair quiet now and at its previous evaluation gives
+        nothing otherwise.
 
         Parameters
         ----------
         now_s : float
             Current time, epoch seconds.
+        needed : callable, optional
+            ``needed(slot, q)`` for a pair quiet now and at its previous
+            evaluation: whether its evidence is wanted anyway, as in
+            :meth:`take_quality`. An alert lifecycle clears only after
+            several quiet evaluations in a row, so a raised stale alert needs
+            them all, not only the first.
 
         Returns
         -------
@@ -975,6 +984,9 @@ class IntakeBank:
         alarm = age > self._stale_after
         report = alarm | arrays["stale_alarm"][slots]
         arrays["stale_alarm"][slots] = alarm
+        if needed is not None:
+            for row, q in zip(*np.nonzero(~report), strict=True):
+                report[row, q] = needed(int(slots[row]), int(q))
         out: list[tuple[int, Evidence]] = []
         for row, q in zip(*np.nonzero(report), strict=True):
             values: dict[str, float] = {}

@@ -415,6 +415,30 @@ def test_stale_returns_alarms_and_the_evaluation_that_ends_one() -> None:
     assert (0, "valve") not in [(slot, ev.signal) for slot, ev in again]  # quiet twice: omitted
 
 
+def test_stale_gives_the_quiet_evaluations_a_raised_alert_needs_to_clear() -> None:
+    b = bank()
+    slot = b.add_asset()
+    check = SignalQuality("valve", vav_quality()["valve"])
+    q = b.quality_signals.index("valve")
+    b.stale(T0)
+    check.check(T0)
+    assert [ev.signal for _, ev in b.stale(T0 + 301.0)].count("valve") == 1  # stale
+    b.add(slot, VALVE, T0 + 302.0, 40.0)
+    check.update(T0 + 302.0, 40.0)
+    b.stale(T0 + 305.0)  # the evaluation that ends the alarm
+    asked: list[tuple[int, int]] = []
+
+    def needed(s: int, signal: int) -> bool:
+        asked.append((s, signal))
+        return signal == q  # the tracker of the valve still holds its alert
+
+    got = b.stale(T0 + 310.0, needed)
+    assert (slot, q) in asked
+    assert [(s, ev.signal) for s, ev in got if not ev.alarm] == [(slot, "valve")]
+    assert [ev for _, ev in got if ev.signal == "valve"] == [check.check(T0 + 310.0)]
+    assert "valve" not in [ev.signal for _, ev in b.stale(T0 + 311.0)]  # not asked: omitted
+
+
 # --- rows --------------------------------------------------------------------------------------
 
 
