@@ -33,7 +33,7 @@ from __future__ import annotations
 import math
 import sys
 from collections.abc import Mapping, Sequence
-from typing import Any
+from typing import Any, Protocol
 
 import numpy as np
 from numpy.typing import NDArray
@@ -58,7 +58,7 @@ from arxwatch.estimators.estimator import ArxEstimator
 from arxwatch.estimators.readout import feature_matrix, feature_names, read_out
 from arxwatch.estimators.rls import TRACE_CHECK_EVERY, StateLayout, build_kernel
 
-__all__ = ["DETECTORS", "FleetMonitor"]
+__all__ = ["DETECTORS", "FleetMonitor", "TraceSink"]
 
 #: Every detector whose evidence can become an alert (stable names, metric labels).
 DETECTORS = (
@@ -91,6 +91,45 @@ Float = NDArray[np.float64]
 Index = NDArray[np.intp]
 #: Channels or positions: a slice when they form a contiguous range (views, no copies).
 Sel = Index | slice
+
+
+class TraceSink(Protocol):
+    """What :attr:`FleetMonitor.trace` takes (:class:`arxwatch.daemon.trace.FleetTrace`)."""
+
+    #: Read-out columns of :meth:`add_evaluations` (``trace.readout_features``).
+    features: tuple[str, ...]
+
+    def bind(self, fleet: FleetMonitor) -> None:
+        """Attach to ``fleet``; called when the trace is assigned."""
+
+    def forget_slot(self, slot: int) -> None:
+        """Note that ``slot`` was freed."""
+
+    def add_rows(
+        self,
+        slots: NDArray[Any],
+        time_s: Float,
+        output: Float,
+        prediction: Float,
+        innovation: Float,
+        cusum_high: Float,
+        cusum_low: Float,
+    ) -> None:
+        """Take one judged row per slot."""
+
+    def add_evaluations(
+        self,
+        slots: NDArray[Any],
+        modes: NDArray[Any],
+        time_s: Float,
+        value: Float,
+        baseline: Float,
+        lower: Float,
+        upper: Float,
+        distance: Float,
+        distance_limit: Float,
+    ) -> None:
+        """Take one evaluation of the parameter-based detectors per slot."""
 
 
 def _as_slice(ch: Index) -> Sel:
@@ -167,6 +206,9 @@ class _Group:
         self.arrays: dict[str, NDArray[Any]] = {}
         self.tracker = TrackerBank(config.policy, self.keys, 0)
         self.free: list[int] = []
+        # what the last step computed, by name, for a trace to read (FleetMonitor.trace):
+        # references to arrays the step makes anyway, so keeping them costs nothing
+        self.tap: dict[str, Any] = {}
         self._allocate(0)
 
     # -- storage ------------------------------------------------------------
@@ -379,6 +421,7 @@ class _Group:
         """
         a, config = self.arrays, self.config
         found: list[tuple[int, int, Evidence, BankTransition]] = []
+        self.tap = tap = {}
         k = ch.shape[0]
         sel = _as_slice(ch)
         every: Sel = slice(0, k)
@@ -405,6 +448,7 @@ class _Group:
                 spread += phi[j] * inner
             e = y_r - prediction
             z = e / np.sqrt(a["sigma2"][rc] + spread)
+            tap["base"] = (rp, prediction, z)
             clip = config.clip_sigma
             big = np.abs(z) > clip
             if big.any():
@@ -533,6 +577,7 @@ class _Group:
             n_high,
             n_low,
         )
+        self.tap["cusum"] = (rp, c_high, c_low)
         transitions = self.tracker.observe(rc, 0, statistic, float(cusum.h), alarm, time_s)
         found = [
             (
@@ -702,6 +747,7 @@ class _Group:
         x0, c0 = self.drift.project(theta0, cov0)
         x, cx = self.drift.project(thetas, covs)
         wald = self.drift.distances(x0, c0, x, cx)
+        self.tap["evaluate"] = (dp, dc, wald)
         transitions = self.tracker.observe(
             dc, 3, wald.statistic, wald.threshold, wald.alarm, time_s
         )
@@ -744,6 +790,7 @@ class _Group:
             else:
                 tol = np.full(k, float(bands.offset_tolerance))
             spec.append(("offset", base[:, m + 1], live[:, m + 1], False, tol))
+        self.tap["bands"] = spec
         found: list[tuple[int, int, Evidence, BankTransition]] = []
         for name, baseline, value, relative, tol in spec:
             watched = np.isfinite(baseline) & ~(relative & (baseline == 0.0))
@@ -871,6 +918,42 @@ class FleetMonitor:
             TrackerBank(self.config.policy, self.quality_keys, 0) if self.quality_keys else None
         )
         self.skipped = 0
+        self._trace: TraceSink | None = None
+
+    # -- trace --------------------------------------------------------------
+    @property
+    def trace(self) -> TraceSink | None:
+        """Collector of what each judged row and evaluation computed; None (the default): off.
+
+        Assign a :class:`~arxwatch.daemon.trace.FleetTrace` to record the
+        numbers behind the replay report's plots. Off, it costs one check per
+        model order and wave; on or off, the records are the same.
+        """
+        return self._trace
+
+    @trace.setter
+    def trace(self, trace: TraceSink | None) -> None:
+        if trace is not None:
+            trace.bind(self)
+        self._trace = trace
+
+    @property
+    def mode_labels(self) -> tuple[str | None, ...]:
+        """Mode labels by the codes the fleet uses (a trace's evaluations carry codes)."""
+        return tuple(self._mode_labels)
+
+    def asset_at(self, slot: int) -> str:
+        """Return the asset id in ``slot``.
+
+        Raises
+        ------
+        KeyError
+            If the slot holds no asset.
+        """
+        asset = self._ids[slot] if 0 <= slot < len(self._ids) else None
+        if asset is None:
+            raise KeyError(f"slot {slot} holds no asset")
+        return asset
 
     # -- assets -------------------------------------------------------------
     def __contains__(self, asset_id: object) -> bool:
@@ -1018,6 +1101,8 @@ class FleetMonitor:
         self._used[slot] = False
         self._ids[slot] = None
         self._free.append(slot)
+        if self._trace is not None:
+            self._trace.forget_slot(slot)
 
     def restart(self, slot: int) -> None:
         """Forget the past samples of every mode of ``slot`` (after a data gap)."""
@@ -1128,6 +1213,7 @@ class FleetMonitor:
         present = group[has]
         if not present.shape[0]:
             return []
+        trace = self._trace
         low, high = int(present.min()), int(present.max())
         for g in [low] if low == high else np.unique(present).tolist():
             target = self._groups[g]
@@ -1136,6 +1222,8 @@ class FleetMonitor:
                 target.restart(index[switch & member])
             ch, where = index[member], rows[member]
             found = target.step(ch, time_s[where], y[where], u[where])
+            if trace is not None:
+                self._trace_group(trace, target, ch, time_s[where], y[where])
             inflate: set[int] = set()
             for pos, key, evidence, transition in found:
                 c, row = int(ch[pos]), int(where[pos])
@@ -1146,6 +1234,47 @@ class FleetMonitor:
             for c in inflate:
                 target.inflate(c, self.config.reset_factor)
         return out
+
+    @staticmethod
+    def _trace_group(trace: TraceSink, group: _Group, ch: Index, time_s: Float, y: Float) -> None:
+        """Hand ``trace`` what ``group.step`` just computed for channels ``ch``."""
+        tap, k = group.tap, ch.shape[0]
+        prediction, innovation = np.full(k, np.nan), np.full(k, np.nan)
+        high, low = np.full(k, np.nan), np.full(k, np.nan)
+        if "base" in tap:
+            rp, predicted, z = tap["base"]
+            prediction[rp], innovation[rp] = predicted, z
+        if "cusum" in tap:
+            rp, c_high, c_low = tap["cusum"]
+            high[rp], low[rp] = c_high, c_low
+        slots = group.arrays["asset"][ch]
+        trace.add_rows(slots, time_s, y, prediction, innovation, high, low)
+        if "evaluate" not in tap:
+            return
+        dp, dc, wald = tap["evaluate"]
+        features = trace.features
+        shape = (dc.shape[0], len(features))
+        value, baseline = np.full(shape, np.nan), np.full(shape, np.nan)
+        lower, upper = np.full(shape, np.nan), np.full(shape, np.nan)
+        for name, base, live, relative, tol in tap["bands"]:
+            j = features.index(name)
+            value[:, j], baseline[:, j] = live, base
+            # the band _bands judges: |change| >= tol alarms (relative to |baseline|)
+            watched = np.isfinite(base) & ~(relative & (base == 0.0))
+            half = tol * np.abs(base) if relative else tol
+            lower[:, j] = np.where(watched, base - half, np.nan)
+            upper[:, j] = np.where(watched, base + half, np.nan)
+        trace.add_evaluations(
+            group.arrays["asset"][dc],
+            group.arrays["mode"][dc],
+            time_s[dp],
+            value,
+            baseline,
+            lower,
+            upper,
+            wald.statistic,
+            wald.threshold,
+        )
 
     def _record(
         self,
@@ -1350,7 +1479,9 @@ class FleetMonitor:
             if fresh._quality.capacity != slots:
                 raise ValueError("saved quality state and slots disagree in size")
         fresh.skipped = int(meta["skipped"])
+        trace = self._trace
         self.__dict__.update(fresh.__dict__)
+        self.trace = trace  # rebinding re-reads which asset each slot holds
 
     def alert_counts(self) -> dict[tuple[str, str], int]:
         """Return how many alerts are raised, by (family, severity)."""
