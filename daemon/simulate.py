@@ -13,6 +13,12 @@ constant, actuator, offset) or on the sensor (bias, noise), each from its
 own start time, abruptly or over a ramp. Everything here is invented test
 and demo data, not a model of any real plant.
 
+:meth:`Loop.simulate` and :func:`daily_operation` work on whole arrays.
+:class:`LoopRun` and :class:`OperationRun` are the same loop and the same
+daily actuator profile stepped one sample at a time, for a simulation that
+runs along a clock (the demo's building publishing over MQTT): same
+recursion, same faults, and without noise the same numbers.
+
 References
 ----------
 K. J. Åström and B. Wittenmark, *Computer-Controlled Systems*, 3rd ed.,
@@ -23,6 +29,7 @@ system: a = exp(-h / T)).
 from __future__ import annotations
 
 import math
+from collections import deque
 from dataclasses import dataclass
 from typing import Literal
 
@@ -92,6 +99,12 @@ class Fault:
         if self.ramp_s == 0.0:
             return (t_s >= self.start_s).astype(np.float64)
         return np.clip((t_s - self.start_s) / self.ramp_s, 0.0, 1.0)
+
+    def level(self, t_s: float) -> float:
+        """:meth:`profile` at one time: 0 before, 1 when fully developed."""
+        if self.ramp_s == 0.0:
+            return 1.0 if t_s >= self.start_s else 0.0
+        return min(max((t_s - self.start_s) / self.ramp_s, 0.0), 1.0)
 
 
 @dataclass(frozen=True)
@@ -185,6 +198,143 @@ class Loop:
         rng = np.random.default_rng(seed)
         out: NDArray[np.float64] = y + bias + noise * rng.normal(size=n)
         return out
+
+
+class LoopRun:
+    """One :class:`Loop` stepped a sample at a time, with its faults and sensor noise.
+
+    The recursion, the fault effects and the start from steady state are
+    those of :meth:`Loop.simulate`: without noise, stepping ``u[k]`` at
+    ``t = k * Ts`` gives the same outputs. Noise comes from the run's own
+    generator, one draw per step, so a run is repeatable from its seed.
+
+    Parameters
+    ----------
+    loop : Loop
+        The plant.
+    faults : tuple of Fault
+        Faults; their ``start_s`` is on the time axis passed to :meth:`step`.
+    seed : int
+        Seed of the sensor noise.
+
+    Examples
+    --------
+    >>> run = LoopRun(Loop(gain=-0.1, time_constant_s=300.0, dead_time_s=60.0,
+    ...                    sample_period_s=60.0, offset=24.0, noise_std=0.0))
+    >>> [round(run.step(k * 60.0, 50.0), 3) for k in range(3)]
+    [19.0, 19.0, 19.0]
+    """
+
+    def __init__(self, loop: Loop, faults: tuple[Fault, ...] = (), seed: int = 0) -> None:
+        self.loop = loop
+        self.faults = faults
+        self._rng = np.random.default_rng(seed)
+        self._a2 = (
+            math.exp(-loop.sample_period_s / loop.second_time_constant_s)
+            if loop.second_time_constant_s
+            else 0.0
+        )
+        self._past: deque[float] = deque(maxlen=loop.delay_samples + 1)
+        self._x1 = self._x2 = math.nan
+        self._stuck: float | None = None
+
+    def step(self, t_s: float, u: float) -> float:
+        """Advance one sample period with actuator command ``u`` at time ``t_s``; return y."""
+        loop = self.loop
+        gain, tau, load = loop.gain, loop.time_constant_s, loop.offset
+        bias, noise = 0.0, loop.noise_std
+        stuck = False
+        for fault in self.faults:
+            p = fault.level(t_s)
+            if fault.kind == "gain_loss":
+                gain = gain * (1.0 - fault.magnitude * p)
+            elif fault.kind == "slow_response":
+                tau = tau * (1.0 + fault.magnitude * p)
+            elif fault.kind == "offset":
+                load = load + fault.magnitude * p
+            elif fault.kind == "sensor_bias":
+                bias = bias + fault.magnitude * p
+            elif fault.kind == "noise_increase":
+                noise = noise * (1.0 + fault.magnitude * p)
+            else:  # stuck_actuator: frozen where it was commanded when it stuck
+                stuck = stuck or t_s >= fault.start_s
+        if stuck and self._stuck is None:
+            self._stuck = u
+        u_eff = self._stuck if stuck and self._stuck is not None else u
+        if not self._past:  # start from steady state, as Loop.simulate does
+            self._past.extend([u_eff] * (self._past.maxlen or 1))
+            self._x1 = self._x2 = load + gain * u_eff
+        else:
+            self._past.append(u_eff)
+        a1 = math.exp(-loop.sample_period_s / tau)
+        drive = load + gain * self._past[0]
+        self._x1 = a1 * self._x1 + (1.0 - a1) * drive
+        if loop.second_time_constant_s:
+            self._x2 = self._a2 * self._x2 + (1.0 - self._a2) * self._x1
+        else:
+            self._x2 = self._x1
+        return self._x2 + bias + noise * float(self._rng.normal())
+
+
+@dataclass(frozen=True)
+class DailyLoad:
+    """An actuator's daily pattern: a sine over the day plus controller moves.
+
+    The command is ``mean + swing * sin(2 pi (hour - peak_hour + 6) / 24)``
+    plus a stationary AR(1) wander ``w(k) = memory * w(k-1) + N(0, step_std)``,
+    clipped to 0..100 %. The defaults are :func:`daily_operation`'s (peak
+    mid-afternoon, wander about 6 %).
+
+    Parameters
+    ----------
+    mean, swing : float
+        Daily mean and amplitude, %.
+    peak_hour : float
+        Hour of the day (UTC) of the highest command.
+    step_std : float
+        Standard deviation of the wander's steps, %.
+    memory : float
+        AR(1) coefficient of the wander, in [0, 1).
+    """
+
+    mean: float = 45.0
+    swing: float = 25.0
+    peak_hour: float = 15.0
+    step_std: float = 1.5
+    memory: float = 0.97
+
+    def __post_init__(self) -> None:
+        if not 0.0 <= self.memory < 1.0:
+            raise ValueError(f"memory must be in [0, 1), got {self.memory}")
+        if self.step_std < 0.0:
+            raise ValueError(f"step_std must be >= 0, got {self.step_std}")
+
+
+class OperationRun:
+    """A :class:`DailyLoad` stepped a sample at a time, along absolute time.
+
+    Parameters
+    ----------
+    load : DailyLoad
+        The pattern.
+    seed : int
+        Seed of the controller moves.
+    """
+
+    def __init__(self, load: DailyLoad, seed: int) -> None:
+        self.load = load
+        self._rng = np.random.default_rng(seed)
+        self._wander = 0.0
+
+    def step(self, t_s: float) -> float:
+        """Return the actuator command (%) at ``t_s`` (epoch seconds: the hour matters)."""
+        load = self.load
+        hour = (t_s % 86400.0) / 3600.0
+        self._wander = float(self._rng.normal(scale=load.step_std)) + load.memory * self._wander
+        level = load.mean + load.swing * math.sin(
+            2.0 * math.pi * (hour - load.peak_hour + 6.0) / 24.0
+        )
+        return min(max(level + self._wander, 0.0), 100.0)
 
 
 def bump_tests(
