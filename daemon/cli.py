@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import argparse
 import logging
+import math
 import os
 import signal
 import sys
@@ -14,6 +15,8 @@ import threading
 from collections.abc import Callable
 from importlib.metadata import PackageNotFoundError, version
 
+from arxwatch.daemon.capture import run_capture
+from arxwatch.daemon.commission import run_baselines
 from arxwatch.daemon.config import Config, ConfigError, load_config
 from arxwatch.daemon.demo import run_demo
 from arxwatch.daemon.logs import configure_logging
@@ -102,6 +105,76 @@ def build_parser() -> argparse.ArgumentParser:
         metavar="NAME",
         help="time zone of CSV times written without one, e.g. Europe/Dublin (default: UTC)",
     )
+    capture = commands.add_parser(
+        "capture",
+        help="record live MQTT traffic to a JSON Lines capture for a later replay",
+        description="Subscribe to the topics of every asset class in the config and append "
+        'each message to a JSON Lines capture ({"ts", "topic", "payload"} per line), '
+        "acknowledging it only once written. Uses its own client id and a session that ends "
+        "with it, so a running 'arxwatch run' keeps its own. Publishes nothing but its own "
+        "retained status. Stops on Ctrl-C, SIGTERM or after --duration. Exit status 2 for a "
+        "bad config or output file, 1 when it cannot connect.",
+    )
+    capture.add_argument("--config", required=True, metavar="FILE", help="YAML config file")
+    capture.add_argument(
+        "--output", required=True, metavar="OUT.jsonl", help="capture file, appended to (.gz too)"
+    )
+    capture.add_argument(
+        "--duration", type=_seconds, metavar="SECONDS", help="stop after this long (default: never)"
+    )
+    capture.add_argument(
+        "--client-id",
+        metavar="ID",
+        help="MQTT client id (default: the config's with '-capture' appended)",
+    )
+    baselines = commands.add_parser(
+        "baselines",
+        help="fit commissioning baselines from a recorded file and write baseline files",
+        description="Feed a time range of a trend export CSV or a capture through the "
+        "alignment 'run' uses, fit a baseline per asset (and operating mode) with the "
+        "class's model orders, print a table of the fits and write the accepted ones "
+        "to baseline files that 'run' and 'replay' load. Exit status 2 for a bad config, "
+        "input or time range, 1 when a file cannot be written or exists without --force.",
+    )
+    baselines.add_argument("--config", required=True, metavar="FILE", help="YAML config file")
+    baselines.add_argument("--input", required=True, metavar="FILE", help="CSV or .jsonl (.gz too)")
+    baselines.add_argument(
+        "--from", dest="start", metavar="TIME", help="first time used (ISO 8601 or epoch seconds)"
+    )
+    baselines.add_argument(
+        "--to", dest="end", metavar="TIME", help="last time used (ISO 8601 or epoch seconds)"
+    )
+    where = baselines.add_mutually_exclusive_group()
+    where.add_argument(
+        "--output-dir", metavar="DIR", help="write DIR/<asset class>.json for every class"
+    )
+    where.add_argument(
+        "--write",
+        action="store_true",
+        help="write each class's baseline file named in the config (baseline.file)",
+    )
+    baselines.add_argument(
+        "--force", action="store_true", help="replace baseline files that exist already"
+    )
+    baselines.add_argument(
+        "--format",
+        choices=["auto", "csv", "capture"],
+        default="auto",
+        help="input format (default: by extension, else by content)",
+    )
+    baselines.add_argument(
+        "--on-bad-line",
+        choices=["stop", "skip"],
+        default="stop",
+        help="at an unreadable line: stop with its file and line number (default), or "
+        "count it and go on",
+    )
+    baselines.add_argument(
+        "--zone",
+        default="UTC",
+        metavar="NAME",
+        help="time zone of --from/--to and of CSV times written without one (default: UTC)",
+    )
     return parser
 
 
@@ -167,6 +240,16 @@ def _positive_float(text: str) -> float:
     return value
 
 
+def _seconds(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected seconds, got {text!r}") from None
+    if not (math.isfinite(value) and value > 0.0):
+        raise argparse.ArgumentTypeError(f"expected a number of seconds > 0, got {text!r}")
+    return value
+
+
 def _run(config_path: str, log_level: str | None) -> int:
     """``arxwatch run``: serve until SIGTERM or SIGINT."""
     try:
@@ -205,6 +288,32 @@ def main(argv: list[str] | None = None) -> int:
             args.config,
             args.input,
             alerts_path=args.alerts,
+            kind=args.format,
+            on_bad_line=args.on_bad_line,
+            zone=args.zone,
+            out=sys.stdout,
+            err=sys.stderr,
+        )
+    if args.command == "capture":
+        configure_logging(args.log_level or "warning", "text", sys.stderr)
+        return run_capture(
+            args.config,
+            args.output,
+            duration_s=args.duration,
+            client_id=args.client_id,
+            out=sys.stdout,
+            err=sys.stderr,
+        )
+    if args.command == "baselines":
+        configure_logging(args.log_level or "warning", "text", sys.stderr)
+        return run_baselines(
+            args.config,
+            args.input,
+            start=args.start,
+            end=args.end,
+            output_dir=args.output_dir,
+            write=args.write,
+            force=args.force,
             kind=args.format,
             on_bad_line=args.on_bad_line,
             zone=args.zone,

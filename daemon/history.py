@@ -16,8 +16,9 @@ would be: the signal's ``scale`` and ``offset`` apply.
 **Capture (JSON Lines).** What ``arxwatch capture`` writes: one MQTT message
 per line, ``{"ts": <arrival, epoch seconds>, "topic": "...", "payload":
 "<text>"}``, with ``"payload_b64"`` (base64) instead of ``"payload"`` for a
-payload that is not UTF-8. Payloads are decoded by the class's payload
-format with the recorded arrival time, exactly as live.
+payload that is not UTF-8. :class:`CaptureWriter` writes it, plain or
+gzip. Payloads are decoded by the class's payload format with the recorded
+arrival time, exactly as live.
 
 A line that cannot be read stops the reading with a :class:`HistoryError`
 naming the file and line (``on_bad_line="stop"``, the default), or is
@@ -35,6 +36,7 @@ import io
 import json
 import math
 import os
+import zlib
 from collections.abc import Iterator
 from dataclasses import dataclass
 from datetime import datetime, tzinfo
@@ -52,6 +54,7 @@ __all__ = [
     "HistoryReader",
     "Recorded",
     "parse_time",
+    "time_zone",
 ]
 
 BadLinePolicy = Literal["stop", "skip"]
@@ -140,7 +143,8 @@ def parse_time(text: str, zone: tzinfo) -> float:
     return moment.timestamp()
 
 
-def _zone(name: str) -> tzinfo:
+def time_zone(name: str) -> tzinfo:
+    """Return the IANA zone ``name``; raise ValueError naming it when unknown."""
     try:
         return ZoneInfo(name)
     except (ZoneInfoNotFoundError, ValueError):
@@ -206,7 +210,7 @@ class HistoryReader:
         if on_bad_line not in BAD_LINE_POLICIES:
             raise ValueError(f"on_bad_line must be one of {BAD_LINE_POLICIES}, got {on_bad_line!r}")
         self.path = Path(path)
-        self._zone = _zone(zone)
+        self._zone = time_zone(zone)
         self.on_bad_line = on_bad_line
         self.size = self.path.stat().st_size
         self.kind = self._kind(kind)
@@ -248,9 +252,13 @@ class HistoryReader:
                 yield from self._capture(lines)
 
     def _counted(self, handle: IO[str]) -> Iterator[str]:
-        for line in handle:
-            self.chars_read += len(line)
-            yield line
+        try:
+            for line in handle:
+                self.chars_read += len(line)
+                yield line
+        except (EOFError, gzip.BadGzipFile, zlib.error) as err:
+            # a compressed file cut short (a capture killed mid-write) or damaged
+            self._bad(self.lines + 1, f"compressed data ends or breaks here: {err}")
 
     def _bad(self, line: int, message: str) -> None:
         """Stop or count an unreadable line."""
@@ -388,40 +396,63 @@ class CaptureWriter:
     """Append MQTT messages to a capture file, one JSON line each.
 
     The file is opened for appending, so a capture interrupted and started
-    again keeps what it had. :meth:`write` returns once the line is handed
-    to the operating system (flushed), so a message acknowledged after it is
-    not lost if the process dies.
+    again keeps what it had; a ``.gz`` file gets one more gzip member per
+    run, which readers take as one stream. :meth:`write` returns once the
+    line is handed to the operating system (flushed; with ``flush=False``,
+    at the next :meth:`flush`), so a message acknowledged after that is not
+    lost if the process dies.
 
     Parameters
     ----------
     path : str or Path
-        The capture file (``.jsonl``); ``.gz`` is not supported for writing.
+        The capture file (``.jsonl``, or ``.jsonl.gz`` compressed).
+
+    Raises
+    ------
+    OSError
+        If the file cannot be opened for appending.
     """
 
     def __init__(self, path: str | Path) -> None:
         self.path = Path(path)
+        self._raw: IO[bytes] | None = None
         if self.path.suffix == ".gz":
-            raise ValueError(f"{self.path}: captures are written uncompressed; drop the .gz")
-        self._handle = self.path.open("a", encoding="utf-8")
+            self._raw = self.path.open("ab")
+            packed = gzip.GzipFile(fileobj=self._raw, mode="ab")
+            self._handle: IO[str] = io.TextIOWrapper(packed, encoding="utf-8")
+        else:
+            self._handle = self.path.open("a", encoding="utf-8")
         self.written = 0
 
-    def write(self, arrival_s: float, topic: str, payload: bytes) -> None:
-        """Append one message and flush."""
+    def write(self, arrival_s: float, topic: str, payload: bytes, *, flush: bool = True) -> None:
+        """Append one message; flush unless told not to."""
         doc: dict[str, Any] = {"ts": round(arrival_s, 6), "topic": topic}
         try:
             doc["payload"] = payload.decode("utf-8")
         except UnicodeDecodeError:
             doc["payload_b64"] = base64.b64encode(payload).decode("ascii")
         self._handle.write(json.dumps(doc, ensure_ascii=False, separators=(",", ":")) + "\n")
-        self._handle.flush()
+        if flush:
+            self._handle.flush()
         self.written += 1
 
+    def flush(self) -> None:
+        """Hand every line written so far to the operating system (a gzip sync flush)."""
+        self._handle.flush()
+
     def close(self) -> None:
-        """Flush, sync to disk and close."""
-        if not self._handle.closed:
+        """Flush, end the gzip member, sync to disk and close."""
+        if self._handle.closed:
+            return
+        if self._raw is None:
             self._handle.flush()
             os.fsync(self._handle.fileno())
             self._handle.close()
+            return
+        self._handle.close()  # writes the gzip trailer; the file itself stays open
+        self._raw.flush()
+        os.fsync(self._raw.fileno())
+        self._raw.close()
 
     def __enter__(self) -> CaptureWriter:
         return self
