@@ -18,7 +18,18 @@ store, so replicas can share it. Layout::
 Each entry is :meth:`arxwatch.estimators.baseline.BaselineSet.to_dict`: the
 model order, theta0 and its covariance, innovation variance, fit on
 held-back data, physical read-out and the window it came from, per
-operating mode. Undefined numbers are written as ``null``.
+operating mode (the keys, types and units of version 1 are listed in
+:mod:`arxwatch.estimators.baseline`). Undefined numbers are written as
+``null``. ``written`` is the UTC time the file was made.
+
+``arxwatch baselines`` writes these files (:mod:`arxwatch.daemon.commission`),
+one per asset class. They are portable between machines and replicas: asset
+ids, epoch times and numbers only, no path, host name or state-store
+reference; floats are written in the shortest form that reads back to the
+same double, so every replica judges against the same model bit for bit.
+A reader refuses a file of another ``format`` or ``version`` (a newer
+writer must bump the version) and names the file and key path of any
+faulty entry.
 """
 
 from __future__ import annotations

@@ -17,29 +17,12 @@ from arxwatch.daemon.history import HistoryReader
 from arxwatch.daemon.library import read_site_baselines
 from arxwatch.daemon.pipeline import Pipeline
 from arxwatch.daemon.replay import replay
-from arxwatch.daemon.simulate import REFERENCE_LOOPS, Fault, daily_operation
+from arxwatch.daemon.simulate import Fault, daily_operation
+from tests.unit.test_pipeline import LOOP, PER_DAY, PERIOD, SITE, START
 
-PERIOD = 60.0
-PER_DAY = 1440
-START = 1_767_225_600.0  # 2026-01-01T00:00:00Z
 FIT_END = "2026-01-03T00:00:00Z"  # two fault-free days to fit on
 FAULT_S = 2.5 * 86400.0  # block-a/vav-2 loses 40 % of its valve gain at noon of day 3
-LOOP = REFERENCE_LOOPS["first-order+dead-time"]  # gain -0.11 degC/%, tau 600 s, dead time 120 s
-
-SITE = """
-broker: {{host: 127.0.0.1, client_id: arxwatch-test}}
-state: {{path: /tmp/unused.db}}
-asset_classes:
-  - name: vav
-    pattern: "larkspur/{{building}}/vav/{{asset}}/{{signal}}"
-    asset_id: "{{building}}/{{asset}}"
-    sample_period_s: 60
-    output: {{signal: zone-temp, name: zone temperature, unit: degC, min: -10, max: 40}}
-    inputs:
-      - {{signal: valve, name: reheat valve, unit: "%", min: 0, max: 100}}
-    model: auto
-    baseline: {baseline}
-"""
+# LOOP: gain -0.11 degC/%, time constant 600 s, dead time 120 s, sensor noise 0.03 degC
 
 ASSETS = {
     "block-a/vav-1": (LOOP, ()),
@@ -71,7 +54,7 @@ def trend(tmp_path_factory: pytest.TempPathFactory) -> Path:
 
 def write_site(folder: Path, baseline: str) -> Path:
     path = folder / "site.yaml"
-    path.write_text(SITE.format(baseline=baseline), encoding="utf-8")
+    path.write_text(SITE.format(baseline=baseline, model="auto"), encoding="utf-8")
     return path
 
 
@@ -227,3 +210,49 @@ def test_longest_stretch_picks_the_longest_gap_free_run() -> None:
     assert longest_stretch(t, 60.0) == (3, 7)
     assert longest_stretch(t[:3], 60.0) == (0, 3)
     assert longest_stretch(np.zeros(0), 60.0) == (0, 0)
+
+
+def test_a_class_with_a_mode_signal_gets_a_baseline_per_mode(
+    tmp_path: Path, capsys: pytest.CaptureFixture
+) -> None:
+    # Occupied 07:00-19:00 UTC with the reference loop; unoccupied with less than half
+    # its valve effect (invented: a smaller reheat demand at night), for two days.
+    n = 2 * PER_DAY
+    u = daily_operation(n, PERIOD, seed=5)
+    night = replace(LOOP, gain=-0.05, offset=22.0)
+    hour = (np.arange(n) * PERIOD / 3600.0) % 24.0
+    occupied = (hour >= 7.0) & (hour < 19.0)
+    y = np.where(occupied, LOOP.simulate(u, seed=6), night.simulate(u, seed=7))
+    trend = tmp_path / "modes.csv"
+    with trend.open("w", newline="", encoding="utf-8") as handle:
+        out = csv.writer(handle)
+        out.writerow(["time", *(f"larkspur/block-c/vav/vav-3/{s}" for s in
+                                ("zone-temp", "valve", "occupancy"))])  # fmt: skip
+        for i in range(n):
+            mode = "occupied" if occupied[i] else "unoccupied"
+            out.writerow([f"{START + i * PERIOD:.0f}", f"{y[i]:.4f}", f"{u[i]:.3f}", mode])
+    config = write_site(tmp_path, f"{{file: {tmp_path / 'vav.json'}}}")
+    (tmp_path / "vav.json").write_text(
+        '{"format": "arxwatch.baselines", "version": 1, "assets": {}}'
+    )
+    text = config.read_text().replace(
+        "    model: auto", "    mode: {signal: occupancy, values: [occupied, unoccupied]}\n"
+        "    model: auto"
+    )  # fmt: skip
+    config.write_text(text)
+    assert main(["baselines", "--config", str(config), "--input", str(trend),
+                 "--write", "--force"]) == 0  # fmt: skip
+    out = capsys.readouterr().out
+    rows = {
+        tuple(cells[:2]): cells
+        for cells in (re.split(r"\s{2,}", line.strip()) for line in out.splitlines())
+        if cells[0] == "block-c/vav-3"
+    }
+    assert set(rows) == {("block-c/vav-3", "occupied"), ("block-c/vav-3", "unoccupied")}
+    # each mode is fitted on its longest stretch alone: 12 h, the tolerance above doubled
+    # for a quarter of the samples (standard errors grow as one over the square root)
+    assert float(rows[("block-c/vav-3", "occupied")][6]) == pytest.approx(LOOP.gain, rel=0.04)
+    assert float(rows[("block-c/vav-3", "unoccupied")][6]) == pytest.approx(night.gain, rel=0.04)
+    assert "(720 of 1,440 rows)" in rows[("block-c/vav-3", "occupied")][10]
+    library = read_site_baselines(load_config(config))["vav"]
+    assert library["block-c/vav-3"].modes == ("occupied", "unoccupied")
