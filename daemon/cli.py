@@ -127,6 +127,12 @@ def build_parser() -> argparse.ArgumentParser:
         metavar="NAME",
         help="time zone of CSV times written without one, e.g. Europe/Dublin (default: UTC)",
     )
+    replay.add_argument(
+        "--report",
+        metavar="OUT.html",
+        help="write a self-contained HTML report with plots per asset (needs the optional "
+        "extra: pip install 'arxwatch[report]')",
+    )
     capture = commands.add_parser(
         "capture",
         help="record live MQTT traffic to a JSON Lines capture for a later replay",
@@ -333,6 +339,7 @@ def main(argv: list[str] | None = None) -> int:
             zone=args.zone,
             out=sys.stdout,
             err=sys.stderr,
+            report_path=args.report,
         )
     if args.command == "capture":
         configure_logging(args.log_level or "warning", "text", sys.stderr)

@@ -29,6 +29,7 @@ from arxwatch.daemon.config import ConfigError, load_config
 from arxwatch.daemon.history import BadLinePolicy, HistoryError, HistoryReader, Recorded
 from arxwatch.daemon.library import BaselineFileError, read_site_baselines
 from arxwatch.daemon.pipeline import Counts, Pipeline
+from arxwatch.daemon.report import ReportCollector, ReportError, check_report, write_report
 
 __all__ = [
     "ProgressLine",
@@ -244,17 +245,26 @@ def run_replay(
     zone: str,
     out: IO[str],
     err: IO[str],
+    report_path: str | None = None,
 ) -> int:
     """``arxwatch replay``: return the exit status (0 done, 2 bad input, 1 cannot write).
 
     Alerts go to ``alerts_path`` as JSON Lines (``-`` for ``out``); the
-    summary to ``out``; errors and the progress line to ``err``.
+    summary to ``out``; errors and the progress line to ``err``; the HTML
+    report (:mod:`arxwatch.daemon.report`) to ``report_path``, checked
+    before the replay starts (1 when matplotlib is missing).
     """
     try:
         config = load_config(config_path)
     except ConfigError as error:
         print(f"arxwatch replay: {error}", file=err)
         return 2
+    if report_path is not None:
+        try:
+            check_report(report_path)
+        except ReportError as error:
+            print(f"arxwatch replay: {error}", file=err)
+            return 1
     try:
         libraries = read_site_baselines(config)
         reader = HistoryReader(input_path, kind=kind, on_bad_line=on_bad_line, zone=zone)
@@ -275,6 +285,8 @@ def run_replay(
     def on_records(records: list[dict[str, Any]]) -> None:
         nonlocal written
         written += len(records)
+        if collector is not None:
+            collector.add_records(records)
         if sink is not None:
             write_records(sink, records)
         else:
@@ -282,6 +294,7 @@ def run_replay(
 
     progress = ProgressLine(reader, err, lambda: written) if err.isatty() else None
     pipeline = Pipeline(config, libraries)
+    collector = ReportCollector(pipeline) if report_path is not None else None
     try:
         summary = replay(
             pipeline, reader, on_records, capped=reader.kind == "capture", progress=progress
@@ -307,6 +320,20 @@ def run_replay(
         print(line, file=report)
     if alerts_path not in (None, "-"):
         print(f"{written:,} alert records written to {alerts_path}", file=report)
+    if collector is not None and report_path is not None:
+        try:
+            sections = write_report(
+                report_path,
+                collector,
+                summary=summary,
+                reader=reader,
+                config=config,
+                config_path=config_path,
+            )
+        except (ReportError, OSError) as error:  # a StoreError (OSError) names the file
+            print(f"arxwatch replay: {error}", file=err)
+            return 1
+        print(f"report with {sections:,} asset sections written to {report_path}", file=report)
     return 0
 
 
