@@ -469,7 +469,7 @@ def commission(building: Building, start_s: float, end_s: float) -> Commissioned
             columns.setdefault((spec.asset_id, signal), []).append(value)
     out: dict[AssetKind, dict[str, BaselineSet]] = {kind: {} for kind in CLASSES}
     table = [
-        f"  {'asset':18} {'model':13} {'fit':>6}  {'gain':>14}  {'time const.':>11}  "
+        f"  {'asset':18} {'model':14} {'fit':>7}  {'gain':>14}  {'time const.':>12}  "
         f"{'dead time':>9}  verdict"
     ]
     for spec in building.assets:
@@ -483,11 +483,11 @@ def commission(building: Building, start_s: float, end_s: float) -> Commissioned
             continue
         out[spec.kind][spec.asset_id] = BaselineSet((baseline,))
         order, readout = baseline.order, baseline.readout
+        model = f"na={order.na} nb={order.nb[0]} nk={order.nk[0]}"
         table.append(
-            f"  {spec.asset_id:18} na={order.na} nb={order.nb[0]} nk={order.nk[0]} "
-            f"{baseline.fit_percent:5.1f} %  {readout.gains[0]:+.3f} K per %  "
-            f"{readout.time_constant_s / 60:8.1f} min  {readout.dead_times_s[0] / 60:5.0f} min"
-            f"  accepted"
+            f"  {spec.asset_id:18} {model:14} {baseline.fit_percent:5.1f} %  "
+            f"{readout.gains[0]:+.3f} K per %  {readout.time_constant_s / 60:8.1f} min  "
+            f"{readout.dead_times_s[0] / 60:5.0f} min  accepted"
         )
     return Commissioned(out, table)
 
@@ -793,7 +793,8 @@ def _run(
         write("")
         write(
             f"{sim_time(live_s)}  go-live: {len(ASSETS)} assets publishing; the first eight "
-            "hours are the monitor's reference of the residuals"
+            "hours set the monitor's reference (how its model errors normally look); the "
+            "faults come after"
         )
         publisher = threading.Thread(
             target=_publish,
