@@ -76,7 +76,15 @@ from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from typing import Any, Final, Literal
 
-__all__ = ["MAX_LABEL_CHARS", "REJECT_REASONS", "PayloadFormat", "Rejected", "Sample", "decode"]
+__all__ = [
+    "DECIMAL_CHARS",
+    "MAX_LABEL_CHARS",
+    "REJECT_REASONS",
+    "PayloadFormat",
+    "Rejected",
+    "Sample",
+    "decode",
+]
 
 #: Every reason :func:`decode` can return, in check order (for pre-created metric labels).
 REJECT_REASONS: Final[tuple[str, ...]] = (
@@ -108,7 +116,8 @@ _KINDS: Final = ("json", "number")
 _TIME_FORMATS: Final = ("epoch_s", "epoch_ms", "iso8601")
 #: Largest payload MQTT can carry (MQTT 5.0 section 1.5.5, variable byte integer).
 _MQTT_MAX_PAYLOAD_BYTES: Final = 268_435_455
-_DECIMAL_CHARS: Final = "0123456789+-.eE"
+#: What a bare decimal number may be made of (before float() reads it).
+DECIMAL_CHARS: Final = "0123456789+-.eE"
 _PREVIEW_CHARS: Final = 32
 _MISSING: Final = object()
 
@@ -418,7 +427,7 @@ def _decode_number(text: str, arrival_s: float, fmt: PayloadFormat) -> Sample | 
     stripped = text.strip()
     # Stripping the allowed characters leaves nothing only if every character
     # is one of them; this keeps float() away from "nan", "inf", "1_0", "١".
-    if not stripped or stripped.strip(_DECIMAL_CHARS):
+    if not stripped or stripped.strip(DECIMAL_CHARS):
         if fmt.labels:
             label = _label(stripped)
             if isinstance(label, Rejected):

@@ -1340,18 +1340,22 @@ class FleetMonitor:
             out.append(self._record(group, channel, key, ev, transition, time_s, self.quality_keys))
         return out
 
-    def quality_busy(self, slot: int) -> NDArray[np.bool_]:
-        """Return, per quality key, whether its episode has alarms pending or is raised.
+    def quality_busy(self, slots: NDArray[np.intp], signals: NDArray[np.intp]) -> NDArray[np.bool_]:
+        """Return, per (slot, quality signal index), whether any of its episodes is busy.
 
-        A quiet evaluation of a quiet episode changes nothing (see
-        :meth:`TrackerBank.observe_one`), so a caller only needs to build
-        evidence for evaluations that alarm or whose key is busy.
+        Busy: alarms pending or raised. A quiet evaluation of a quiet episode
+        changes nothing (see :meth:`TrackerBank.observe_one`), so a caller
+        only needs to build evidence for evaluations that alarm or whose
+        episode is busy. ``signals`` index the fleet's ``quality_signals``.
         """
         bank = self._quality
         if bank is None:
-            return np.zeros(0, dtype=np.bool_)
-        busy: NDArray[np.bool_] = bank.raised[slot] | (bank.alarms[slot] != 0)
-        return busy
+            return np.zeros(slots.shape, dtype=np.bool_)
+        kinds = len(_QUALITY_KINDS)
+        busy = bank.raised[slots] | (bank.alarms[slots] != 0)
+        per_signal = busy.reshape(slots.shape[0], -1, kinds)
+        out: NDArray[np.bool_] = per_signal[np.arange(slots.shape[0]), signals].any(axis=1)
+        return out
 
     # -- read-out -----------------------------------------------------------
     def active(self, asset_id: str) -> dict[str, str]:

@@ -94,7 +94,7 @@ from arxwatch.daemon.align import AddOutcome, AlignConfig, _mode_label
 from arxwatch.estimators.detect.evidence import Evidence
 from arxwatch.estimators.detect.quality import QualityConfig
 
-__all__ = ["IntakeBank", "IntakeOutcome", "RowBatch", "cells_for"]
+__all__ = ["OUTCOMES", "IntakeBank", "IntakeOutcome", "RowBatch", "cells_for"]
 
 IntakeOutcome = Literal[
     AddOutcome, "superseded", "mode_label_limit", "time_out_of_range", "out_of_range"
@@ -117,6 +117,9 @@ The values of :data:`~arxwatch.daemon.align.AddOutcome` keep their meaning
 _FORMAT = "arxwatch.intake"
 _STATE_VERSION = 1
 _OUTCOMES: tuple[IntakeOutcome, ...] = get_args(IntakeOutcome)
+#: Outcomes in the order of the codes :meth:`IntakeBank.add_many` returns.
+OUTCOMES: tuple[IntakeOutcome, ...] = _OUTCOMES
+_OUTCOME_CODE = {outcome: code for code, outcome in enumerate(_OUTCOMES)}
 #: Grid indices stay within +-2**50 (exact in float64, with room for corrections).
 _GRID_LIMIT = 2.0**50
 #: ``last_index`` before any grid point was closed.
@@ -188,6 +191,10 @@ class RowBatch:
 # Python object per sample): slot, checked-signal index, value, interval, interval in
 # periods, gap (0/1), flat-run length, flat-run range, has moved (0/1), gap count, gap total.
 _CHECK_FIELDS = 11
+
+#: ``needed(slots, qs)``: whether the evidence of each quiet check (asset slot, index of
+#: the checked signal) is wanted anyway; see :meth:`IntakeBank.take_quality`.
+Needed = Callable[[NDArray[np.intp], NDArray[np.intp]], NDArray[np.bool_]]
 
 
 def _first_index(time_s: float, period: float) -> int:
@@ -389,6 +396,28 @@ class IntakeBank:
         self._stale_after = np.array(
             [q.stale_after_s for q in self._quality_configs], dtype=np.float64
         )
+        self._quality_of_array = np.array(self._quality_of, dtype=np.intp)
+        # plausible range and flat-run window per checked signal (rows), for take_quality
+        self._range_table = (
+            np.array(
+                [[q.minimum, q.maximum, q.stuck_window_s] for q in self._quality_configs],
+                dtype=np.float64,
+            )
+            .reshape(-1, 3)
+            .T
+        )
+        # expected period, gap factor and flat-run tolerance per checked signal (rows)
+        self._quality_table = (
+            np.array(
+                [
+                    [q.expected_period_s, q.gap_factor, q.stuck_epsilon]
+                    for q in self._quality_configs
+                ],
+                dtype=np.float64,
+            )
+            .reshape(-1, 3)
+            .T
+        )
         self._mode_index = len(self.signals) - 1 if config.mode is not None else -1
         self._count_keys = (
             *(o for o in _OUTCOMES if o != "unknown_signal"),
@@ -438,6 +467,11 @@ class IntakeBank:
     def capacity(self) -> int:
         """Asset slots allocated."""
         return self._capacity
+
+    @property
+    def mode_signal(self) -> int:
+        """Index of the mode signal in :attr:`signals`, -1 when the class has none."""
+        return self._mode_index
 
     @property
     def n_assets(self) -> int:
@@ -546,6 +580,183 @@ class IntakeBank:
         outcome = self._take(slot, signal, time_s, value, usable)
         self._flat["counts"][slot * self._n_counts + self._column[outcome]] += 1
         return outcome
+
+    def add_many(
+        self,
+        slots: NDArray[np.intp],
+        signals: NDArray[np.intp],
+        time_s: float,
+        values: NDArray[np.float64],
+        usable: NDArray[np.bool_],
+    ) -> NDArray[np.intp]:
+        """Take one sample of each (slot, signal) pair, all at ``time_s``: :meth:`add` in order.
+
+        A row of a trend export: the state, counters, :attr:`crowded` and the
+        quality evidence left for :meth:`take_quality` are those of calling
+        :meth:`add` for each element in turn (``tests/property``). The usual
+        case (numbers for distinct output or input pairs, each newer than
+        anything accepted for its pair and after the last closed grid point)
+        is done on arrays; anything else goes through :meth:`add` one by one.
+
+        Parameters
+        ----------
+        slots, signals : ndarray of intp, shape (k,)
+            Asset slot and signal index of each sample.
+        time_s : float
+            The samples' time, epoch seconds.
+        values : ndarray of float64, shape (k,)
+            The values.
+        usable : ndarray of bool, shape (k,)
+            As :meth:`add`'s ``usable``.
+
+        Returns
+        -------
+        ndarray of intp, shape (k,)
+            Index into :data:`OUTCOMES` of each sample's outcome.
+
+        Raises
+        ------
+        IndexError, ValueError, TypeError
+            As :meth:`add`; samples before the bad one are taken.
+        """
+        k = slots.shape[0]
+        if not k:
+            return np.empty(0, dtype=np.intp)
+        if not self._vector_ready(slots, signals, time_s, values):
+            return np.array(
+                [
+                    _OUTCOME_CODE[self.add(int(s), int(q), time_s, float(v), usable=bool(u))]
+                    for s, q, v, u in zip(
+                        slots.tolist(),
+                        signals.tolist(),
+                        values.tolist(),
+                        usable.tolist(),
+                        strict=True,
+                    )
+                ],
+                dtype=np.intp,
+            )
+        arrays = self._arrays
+        period = self.config.sample_period_s
+        cell = _first_index(time_s, period)
+        old_newest = arrays["newest"][slots, signals]
+        if usable.any() and cell * period <= time_s + self.config.staleness_s:
+            self._hold_many(slots[usable], signals[usable], time_s, values[usable], cell)
+        first = arrays["first_index"]
+        opening = arrays["last_index"][slots] == _OPEN
+        np.minimum.at(first, slots[opening], cell)
+        arrays["newest"][slots, signals] = time_s
+        quality_of = self._quality_of_array[signals]
+        checked = quality_of >= 0
+        if checked.any():
+            self._check_many(
+                slots[checked], quality_of[checked], time_s, values[checked], old_newest[checked]
+            )
+        outcome = np.where(usable, _OUTCOME_CODE["accepted"], _OUTCOME_CODE["out_of_range"])
+        columns = np.where(usable, self._column["accepted"], self._column["out_of_range"])
+        np.add.at(arrays["counts"], (slots, columns), 1)
+        return outcome
+
+    def _vector_ready(
+        self,
+        slots: NDArray[np.intp],
+        signals: NDArray[np.intp],
+        time_s: float,
+        values: NDArray[np.float64],
+    ) -> bool:
+        """Whether :meth:`add_many` can take these samples on arrays (see there)."""
+        period = self.config.sample_period_s
+        if not math.isfinite(time_s) or abs(time_s) > _GRID_LIMIT * period:
+            return False
+        n_signals = len(self.signals)
+        if (
+            slots.min() < 0
+            or slots.max() >= self._capacity
+            or signals.min() < 0
+            or signals.max() >= n_signals
+            or (self._mode_index >= 0 and bool((signals == self._mode_index).any()))
+            or not self._arrays["in_use"][slots].all()
+            or not np.isfinite(values).all()
+        ):
+            return False
+        pairs = slots * n_signals + signals
+        if np.unique(pairs).shape[0] != pairs.shape[0]:
+            return False
+        newest = self._arrays["newest"][slots, signals]
+        if not (np.isnan(newest) | (newest < time_s)).all():
+            return False  # duplicates and older samples: as add decides, one by one
+        last = self._arrays["last_index"][slots]
+        cell = _first_index(time_s, period)
+        return bool(((last == _OPEN) | (cell > last)).all())
+
+    def _hold_many(
+        self,
+        slots: NDArray[np.intp],
+        signals: NDArray[np.intp],
+        time_s: float,
+        values: NDArray[np.float64],
+        cell: int,
+    ) -> None:
+        """Hold usable samples newer than all held for their pairs (_take, on arrays)."""
+        period = self.config.sample_period_s
+        times = self._arrays["time"]
+        held = times[slots, signals]  # (k, cells)
+        same_cell = ((cell - 1) * period < held) & (held <= cell * period)
+        empty = np.isnan(held)
+        last_col = self.cells - 1
+        # _take keeps the last matching entry of each kind
+        same = np.where(same_cell.any(axis=1), last_col - np.argmax(same_cell[:, ::-1], axis=1), -1)
+        free = np.where(empty.any(axis=1), last_col - np.argmax(empty[:, ::-1], axis=1), -1)
+        crowded = (same < 0) & (empty.sum(axis=1) <= 1)
+        if crowded.any():
+            self.crowded.update(
+                zip(slots[crowded].tolist(), signals[crowded].tolist(), strict=True)
+            )
+        target = np.where(same >= 0, same, free)
+        overflow = target < 0
+        if overflow.any():  # every entry holds an older cell: the oldest goes
+            np.add.at(self._arrays["counts"][:, self._column["overflow"]], slots[overflow], 1)
+            target[overflow] = np.argmin(held[overflow], axis=1)
+        times[slots, signals, target] = time_s
+        self._arrays["value"][slots, signals, target] = values
+
+    def _check_many(
+        self,
+        slots: NDArray[np.intp],
+        qs: NDArray[np.intp],
+        time_s: float,
+        values: NDArray[np.float64],
+        last: NDArray[np.float64],
+    ) -> None:
+        """:meth:`_check_quality` for samples of distinct pairs at one time, on arrays."""
+        a = self._arrays
+        expected, gap_factor, epsilon = self._quality_table[:, qs]
+        first = np.isnan(last)
+        interval = np.where(first, 0.0, time_s - last)
+        periods = interval / expected
+        gap = periods > gap_factor
+        gap_count = a["gap_count"][slots, qs] + gap
+        gap_total = np.where(
+            gap, a["gap_total_s"][slots, qs] + interval, a["gap_total_s"][slots, qs]
+        )
+        a["gap_count"][slots, qs] = gap_count
+        a["gap_total_s"][slots, qs] = gap_total
+        low = np.where(first, values, np.minimum(a["run_min"][slots, qs], values))
+        high = np.where(first, values, np.maximum(a["run_max"][slots, qs], values))
+        restart = ~first & (high - low > epsilon)
+        moved = a["has_moved"][slots, qs] | restart
+        a["has_moved"][slots, qs] = moved
+        run_start = np.where(first | restart, time_s, a["run_start_s"][slots, qs])
+        low = np.where(restart, values, low)
+        high = np.where(restart, values, high)
+        a["run_start_s"][slots, qs] = run_start
+        a["run_min"][slots, qs] = low
+        a["run_max"][slots, qs] = high
+        block = np.column_stack(
+            (slots, qs, values, interval, periods, gap, time_s - run_start, high - low, moved,
+             gap_count, gap_total)
+        ).astype(np.float64)  # fmt: skip
+        self._pending.frombytes(block.tobytes())
 
     def _signal(self, signal: int) -> int:
         index = _index_argument("signal", signal)
@@ -669,19 +880,18 @@ class IntakeBank:
         )
         self._pending.extend((gap_count, gap_total))
 
-    def take_quality(
-        self, needed: Callable[[int, int], bool] | None = None
-    ) -> list[tuple[int, Evidence]]:
+    def take_quality(self, needed: Needed | None = None) -> list[tuple[int, Evidence]]:
         """Return the data-quality evidence of the samples added since the last take.
 
         Parameters
         ----------
         needed : callable, optional
-            ``needed(slot, q)`` for a check of quality signal ``q`` in which
-            nothing alarms: whether its evidence is wanted anyway (its alert
-            is raised or has alarms pending). Returning False skips building
-            the three Evidence objects, the bulk of the cost; a quiet
-            evaluation of a quiet alert changes nothing. None builds all.
+            ``needed(slots, qs)`` for the checks (slot, quality signal
+            index, as arrays) in which nothing alarms: whether each one's
+            evidence is wanted anyway (its alert is raised or has alarms
+            pending). False skips building the three Evidence objects, the
+            bulk of the cost; a quiet evaluation of a quiet alert changes
+            nothing. None builds all.
 
         Returns
         -------
@@ -693,21 +903,29 @@ class IntakeBank:
             part of :meth:`to_state`: take it before a checkpoint.
         """
         out: list[tuple[int, Evidence]] = []
-        pending = self._pending.tolist()
-        for i in range(0, len(pending), _CHECK_FIELDS):
+        table = np.frombuffer(self._pending, dtype=np.float64).reshape(-1, _CHECK_FIELDS)
+        self._pending = array("d")
+        if not table.shape[0]:
+            return out
+        keep = np.ones(table.shape[0], dtype=np.bool_)
+        if needed is not None:
+            q_all = table[:, 1].astype(np.intp)
+            value, flat_s = table[:, 2], table[:, 6]
+            low, high, window = self._range_table[:, q_all]
+            quiet = (
+                (table[:, 5] == 0.0)
+                & (low <= value)
+                & (value <= high)
+                & ~((table[:, 8] == 1.0) & (flat_s >= window))
+            )
+            if quiet.any():
+                keep[quiet] = needed(table[quiet, 0].astype(np.intp), q_all[quiet])
+        for row in table[keep].tolist():
             slot_f, q_f, value, interval, periods, gap_f, flat_s, spread, moved_f, count, total = (
-                pending[i : i + _CHECK_FIELDS]
+                row
             )
             slot, q, gap, moved = int(slot_f), int(q_f), gap_f == 1.0, moved_f == 1.0
             config = self._quality_configs[q]
-            if (
-                needed is not None
-                and not gap
-                and config.minimum <= value <= config.maximum
-                and not (moved and flat_s >= config.stuck_window_s)
-                and not needed(slot, q)
-            ):
-                continue
             signal = self.quality_signals[q]
             if value < config.minimum:
                 side, limit, outside = "low", config.minimum, True
@@ -765,7 +983,6 @@ class IntakeBank:
                     ),
                 ),
             ]
-        self._pending = array("d")
         return out
 
     # -------------------------------------------------------------- advance
@@ -935,9 +1152,7 @@ class IntakeBank:
 
     # ---------------------------------------------------------------- stale
 
-    def stale(
-        self, now_s: float, needed: Callable[[int, int], bool] | None = None
-    ) -> list[tuple[int, Evidence]]:
+    def stale(self, now_s: float, needed: Needed | None = None) -> list[tuple[int, Evidence]]:
         """Stale check (:meth:`SignalQuality.check`) of every asset and checked signal.
 
         All pairs are evaluated (and, before their first sample, start their
@@ -952,8 +1167,8 @@ class IntakeBank:
         now_s : float
             Current time, epoch seconds.
         needed : callable, optional
-            ``needed(slot, q)`` for a pair quiet now and at its previous
-            evaluation: whether its evidence is wanted anyway, as in
+            ``needed(slots, qs)`` for the pairs quiet now and at their
+            previous evaluation: whether their evidence is wanted anyway, as in
             :meth:`take_quality`. An alert lifecycle clears only after
             several quiet evaluations in a row, so a raised stale alert needs
             them all, not only the first.
@@ -984,9 +1199,9 @@ class IntakeBank:
         alarm = age > self._stale_after
         report = alarm | arrays["stale_alarm"][slots]
         arrays["stale_alarm"][slots] = alarm
-        if needed is not None:
-            for row, q in zip(*np.nonzero(~report), strict=True):
-                report[row, q] = needed(int(slots[row]), int(q))
+        if needed is not None and not report.all():
+            rows, qs = np.nonzero(~report)
+            report[rows, qs] = needed(slots[rows], qs)
         out: list[tuple[int, Evidence]] = []
         for row, q in zip(*np.nonzero(report), strict=True):
             values: dict[str, float] = {}

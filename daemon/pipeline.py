@@ -47,6 +47,7 @@ from __future__ import annotations
 
 import io
 import json
+import operator
 import sys
 from collections import Counter, deque
 from collections.abc import Callable, Mapping, Sequence
@@ -57,13 +58,13 @@ import numpy as np
 from numpy.typing import NDArray
 
 from arxwatch.daemon.config import AssetClassConfig, Config
-from arxwatch.daemon.decode import PayloadFormat, Rejected, decode
+from arxwatch.daemon.decode import DECIMAL_CHARS, PayloadFormat, Rejected, decode
 from arxwatch.daemon.fleet import FleetMonitor
-from arxwatch.daemon.intake import IntakeBank, RowBatch, cells_for
+from arxwatch.daemon.intake import OUTCOMES, IntakeBank, RowBatch, cells_for
 from arxwatch.daemon.route import Refused, Router
 from arxwatch.estimators.baseline import BaselineSet, LiveBaselineLearner
 
-__all__ = ["FITS_PER_ADVANCE", "BaselineEvent", "Checkpoint", "Counts", "Pipeline"]
+__all__ = ["FITS_PER_ADVANCE", "BaselineEvent", "Checkpoint", "Counts", "Pipeline", "TrendColumns"]
 
 #: Receiver of closed rows: asset class, asset id per row, the rows, mode label per row.
 RowTap = Callable[[str, list[str], RowBatch, list[str | None]], None]
@@ -75,6 +76,11 @@ FITS_PER_ADVANCE = 2
 #: Topic refusals that point at the config or the site, not at unrelated
 #: traffic under the subscription (``no matching rule`` is usually that).
 NOTEWORTHY_REFUSALS = frozenset({"asset limit", "asset class conflict"})
+
+#: str.translate table deleting the characters of a plain decimal number (as the decoder allows)
+_DECIMAL_DELETE = str.maketrans("", "", DECIMAL_CHARS)
+_ACCEPTED = OUTCOMES.index("accepted")
+_OUT_OF_RANGE = OUTCOMES.index("out_of_range")
 
 _STATE_VERSION = 1
 _META = "__meta__"
@@ -201,7 +207,7 @@ class Checkpoint:
 class _Class:
     """Everything of one asset class: alignment, learners, the fleet."""
 
-    def __init__(self, config: AssetClassConfig, *, from_file: bool) -> None:
+    def __init__(self, config: AssetClassConfig, *, from_file: bool, extra_cells: int = 0) -> None:
         self.config = config
         self.signals = config.signals
         self.signal_index = {signal: i for i, signal in enumerate(self.signals)}
@@ -227,7 +233,7 @@ class _Class:
         # as many cells per signal as the lateness needs; feed() advances an
         # asset whose cells filled (IntakeBank.crowded), so none overflows
         align = config.align_config()
-        self.intake = IntakeBank(align, quality, cells=cells_for(align))
+        self.intake = IntakeBank(align, quality, cells=cells_for(align) + extra_cells)
         self.fleet = FleetMonitor(
             config.signal_names(), config.monitor_config(), quality_signals=tuple(quality)
         )
@@ -281,12 +287,72 @@ class _Class:
                 if slot is not None:
                     self.fleet_slot[slot] = fleet_slot
 
-    def needed(self, slot: int, q: int) -> bool:
-        fleet_slot = int(self.fleet_slot[slot])
-        if fleet_slot < 0:
-            return False
-        busy = self.fleet.quality_busy(fleet_slot)
-        return bool(busy[4 * q : 4 * q + 4].any())
+    def needed(self, slots: NDArray[np.intp], qs: NDArray[np.intp]) -> NDArray[np.bool_]:
+        """Whether each quiet quality check (intake slot, checked signal) has a busy alert."""
+        fleet_slots = self.fleet_slot[slots]
+        out = np.zeros(slots.shape, dtype=np.bool_)
+        judged = fleet_slots >= 0
+        if judged.any():
+            out[judged] = self.fleet.quality_busy(fleet_slots[judged].astype(np.intp), qs[judged])
+        return out
+
+
+@dataclass(eq=False)
+class _ColumnPlan:
+    """The numeric columns of a trend export routed to one asset class, as arrays."""
+
+    state: _Class
+    index: NDArray[np.intp]  # column positions in a row's cells
+    topics: list[str]
+    slots: NDArray[np.intp]
+    signals: NDArray[np.intp]
+    scale: NDArray[np.float64]
+    offset: NDArray[np.float64]
+    low: NDArray[np.float64]
+    high: NDArray[np.float64]
+    max_chars: int
+    take: Callable[[Sequence[str]], Any] = field(init=False)
+
+    def __post_init__(self) -> None:
+        self.take = operator.itemgetter(*self.index.tolist())
+
+
+class TrendColumns:
+    """How the columns of one trend export reach the pipeline (see :meth:`Pipeline.feed_row`).
+
+    A column is routed at its first value: to a class's numeric signal
+    (fed on arrays), to a mode signal or a refusal worth a log line (fed
+    message by message), or refused quietly (counted).
+    """
+
+    def __init__(self, topics: Sequence[str]) -> None:
+        self.topics = list(topics)
+        self.unrouted: list[int] = list(range(len(self.topics)))
+        self.by_message: list[int] = []
+        self.refused: dict[str, list[int]] = {}
+        self.plans: list[_ColumnPlan] = []
+        self._columns: dict[str, list[tuple[int, int, int]]] = {}
+
+    def add(self, name: str, state: _Class, columns: list[tuple[int, int, int]]) -> None:
+        """Add numeric columns (position, slot, signal) of class ``name``; rebuild its plan."""
+        known = self._columns.setdefault(name, [])
+        known += columns
+        known.sort()
+        index, slots, signals = (np.array(c, dtype=np.intp) for c in zip(*known, strict=True))
+        formats = [state.bare_formats[state.signals[q]] for q in signals.tolist()]
+        plan = _ColumnPlan(
+            state=state,
+            index=index,
+            topics=[self.topics[i] for i in index.tolist()],
+            slots=slots,
+            signals=signals,
+            scale=np.array([f.scale for f in formats]),
+            offset=np.array([f.offset for f in formats]),
+            low=np.array([state.ranges[q][0] for q in signals.tolist()], dtype=np.float64),
+            high=np.array([state.ranges[q][1] for q in signals.tolist()], dtype=np.float64),
+            max_chars=min(f.max_payload_bytes for f in formats),
+        )
+        self.plans = [p for p in self.plans if p.state is not state] + [plan]
 
 
 class Pipeline:
@@ -304,22 +370,35 @@ class Pipeline:
         parsed objects are freed above the restored state and their memory
         can go back to the OS.
 
+    extra_cells : int, optional
+        Samples held per signal beyond what a live feed needs
+        (:func:`~arxwatch.daemon.intake.cells_for`). A replay of a trend
+        export gives some, so that the grid closes (and the fleet steps)
+        every few rows rather than every row: the same rows, in fewer and
+        larger steps. Default 0.
+
     Raises
     ------
     ValueError
-        If a class that loads baselines from a file has no library.
+        If a class that loads baselines from a file has no library, or
+        ``extra_cells`` is negative.
     """
 
     def __init__(
         self,
         config: Config,
         libraries: Libraries | Callable[[], Libraries] | None = None,
+        *,
+        extra_cells: int = 0,
     ) -> None:
+        if extra_cells < 0:
+            raise ValueError(f"extra_cells must be >= 0, got {extra_cells!r}")
         self.config = config
         self.router: Router = config.router()
         self._libraries = libraries
         self._classes: dict[str, _Class] = {
-            c.name: _Class(c, from_file=c.baseline.file is not None) for c in config.asset_classes
+            c.name: _Class(c, from_file=c.baseline.file is not None, extra_cells=extra_cells)
+            for c in config.asset_classes
         }
         if not callable(libraries):
             self._check_libraries(libraries or {})
@@ -395,6 +474,133 @@ class Pipeline:
             quality = state.fleet.quality(fleet_slot, [ev for _, ev in taken], sample.time_s)
             self._count_transitions(quality)
             records += quality
+        return records
+
+    def feed_row(
+        self, columns: TrendColumns, time_s: float, cells: Sequence[str]
+    ) -> list[dict[str, Any]]:
+        """Take one row of a trend export; return the data-quality alert records it causes.
+
+        The same as :meth:`feed` with ``bare=True`` for each non-empty cell
+        in turn (topic from ``columns``, payload the cell, arrival
+        ``time_s``): the same counts, state and alert records, possibly in
+        another order within the row. Numeric cells of output and input
+        signals go through the intake a class at a time
+        (:meth:`IntakeBank.add_many`); mode labels, and any row with a cell
+        that is not a plain decimal number, go through :meth:`feed` cell by
+        cell.
+
+        Parameters
+        ----------
+        columns : TrendColumns
+            Made for the file's header (``TrendColumns(reader.topics)``); it learns each
+            column's route at the column's first value.
+        time_s : float
+            The row time, epoch seconds.
+        cells : sequence of str
+            The point columns' cells, stripped; ``""`` for no value.
+        """
+        if not self._admitted:
+            self._admit()
+        records: list[dict[str, Any]] = []
+        if columns.unrouted:
+            self._route_columns(columns, cells)
+        for i in columns.by_message:
+            if cells[i]:
+                records += self.feed(columns.topics[i], cells[i].encode("utf-8"), time_s, bare=True)
+        for reason, refused in columns.refused.items():
+            present = sum(1 for i in refused if cells[i])
+            self.counts.messages += present
+            self.counts.refused[reason] += present
+        for plan in columns.plans:
+            records += self._feed_plan(plan, time_s, cells)
+        return records
+
+    def _route_columns(self, columns: TrendColumns, cells: Sequence[str]) -> None:
+        """Route the columns that have their first value in ``cells``."""
+        new = [i for i in columns.unrouted if cells[i]]
+        if not new:
+            return
+        by_class: dict[str, list[tuple[int, int, int]]] = {}
+        for i in new:
+            columns.unrouted.remove(i)
+            route = self.router.route(columns.topics[i])
+            if isinstance(route, Refused):
+                if route.reason in NOTEWORTHY_REFUSALS:
+                    columns.by_message.append(i)  # feed() names it for the log, each time
+                else:
+                    columns.refused.setdefault(route.reason, []).append(i)
+                continue
+            state = self._classes[route.asset_class]
+            slot = state.slot_of.get(route.asset_id)
+            if slot is None:
+                slot = state.add(route.asset_id)
+            signal = state.signal_index[route.signal]
+            if signal == state.intake.mode_signal:
+                columns.by_message.append(i)
+            else:
+                by_class.setdefault(route.asset_class, []).append((i, slot, signal))
+        columns.by_message.sort()
+        for name, added in by_class.items():
+            columns.add(name, self._classes[name], added)
+
+    def _feed_plan(
+        self, plan: _ColumnPlan, time_s: float, cells: Sequence[str]
+    ) -> list[dict[str, Any]]:
+        """Feed the numeric cells of one class's columns in a row (see :meth:`feed_row`)."""
+        texts = plan.take(cells)
+        if len(plan.index) == 1:
+            texts = (texts,)
+        text = np.array(texts)
+        present = text != ""
+        n = int(np.count_nonzero(present))
+        if not n:
+            return []
+        joined = "".join(texts)
+        plain = not joined.translate(_DECIMAL_DELETE) and text.dtype.itemsize // 4 <= plan.max_chars
+        if plain:
+            try:
+                raw = text[present].astype(np.float64)
+            except ValueError:
+                plain = False
+        if plain:
+            values = raw * plan.scale[present] + plan.offset[present]
+            plain = bool(np.isfinite(values).all())
+        if not plain:  # something a decoder must look at: cell by cell
+            records: list[dict[str, Any]] = []
+            for i in np.flatnonzero(present).tolist():
+                column = int(plan.index[i])
+                records += self.feed(
+                    plan.topics[i], cells[column].encode("utf-8"), time_s, bare=True
+                )
+            return records
+        state = plan.state
+        counts = self.counts
+        counts.messages += n
+        slots, signals = plan.slots[present], plan.signals[present]
+        usable = (plan.low[present] <= values) & (values <= plan.high[present])
+        records = []
+        crowded = state.intake.crowded
+        if crowded and not crowded.isdisjoint(zip(slots.tolist(), signals.tolist(), strict=True)):
+            records = self._advance_class(state, time_s)  # a burst: close what it can first
+        outcomes = state.intake.add_many(slots, signals, time_s, values, usable)
+        for code, many in enumerate(np.bincount(outcomes, minlength=len(OUTCOMES)).tolist()):
+            if many:
+                counts.samples[OUTCOMES[code]] += many
+        taken = (outcomes == _ACCEPTED) | (outcomes == _OUT_OF_RANGE)
+        if taken.any():
+            if self.last_sample_s is None or time_s > self.last_sample_s:
+                self.last_sample_s = time_s
+            np.maximum.at(state.frontier, slots[taken], time_s)
+        evidence = state.intake.take_quality(state.needed)
+        for k in range(0, len(evidence), 3):  # a checked sample's three Evidence
+            fleet_slot = int(state.fleet_slot[evidence[k][0]])
+            if fleet_slot >= 0:
+                quality = state.fleet.quality(
+                    fleet_slot, [ev for _, ev in evidence[k : k + 3]], time_s
+                )
+                self._count_transitions(quality)
+                records += quality
         return records
 
     # -- the grid -------------------------------------------------------------

@@ -28,7 +28,7 @@ from typing import IO, Any, Literal
 from arxwatch.daemon.config import ConfigError, load_config
 from arxwatch.daemon.history import BadLinePolicy, HistoryError, HistoryReader, Recorded
 from arxwatch.daemon.library import BaselineFileError, read_site_baselines
-from arxwatch.daemon.pipeline import Counts, Pipeline
+from arxwatch.daemon.pipeline import Counts, Pipeline, TrendColumns
 from arxwatch.daemon.report import ReportCollector, ReportError, check_report, write_report
 
 __all__ = [
@@ -42,6 +42,11 @@ __all__ = [
 
 #: Values fed between two closings of the grid (crowded assets close sooner).
 ADVANCE_EVERY = 2000
+#: Samples held per signal beyond a live feed's, for a replay of a trend export: the grid
+#: closes every dozen rows or so instead of every row (same rows, fewer and larger steps).
+REPLAY_EXTRA_CELLS = 12
+#: Trend export rows between two progress reports.
+PROGRESS_ROWS = 64
 #: Alert records printed when they are not written to a file.
 SHOWN_RECORDS = 40
 
@@ -124,27 +129,66 @@ def replay(
                 summary.transitions[(record["family"], record["severity"], record["state"])] += 1
             on_records(records)
 
-    for n, value in enumerate(source, start=1):
-        if value.time_s > latest:
-            latest = value.time_s
-        if value.time_s < earliest or n == 1:
-            earliest = value.time_s
-        emit(pipeline.feed(value.topic, value.payload, value.time_s, bare=value.bare))
-        if n % ADVANCE_EVERY == 0:
-            emit(pipeline.advance(latest if capped else None))
-            if progress is not None:
-                progress(n, latest)
-        if latest - last_stale >= stale_every_s:
-            emit(pipeline.advance(latest if capped else None))
-            emit(pipeline.check_stale(latest))
-            last_stale = latest
-        summary.values = n
+    if isinstance(source, HistoryReader) and source.kind == "csv":
+        messages = pipeline.counts.messages
+        latest, earliest = _replay_rows(pipeline, source, emit, stale_every_s, progress)
+        summary.values = pipeline.counts.messages - messages
+    else:
+        for n, value in enumerate(source, start=1):
+            if value.time_s > latest:
+                latest = value.time_s
+            if value.time_s < earliest or n == 1:
+                earliest = value.time_s
+            emit(pipeline.feed(value.topic, value.payload, value.time_s, bare=value.bare))
+            if n % ADVANCE_EVERY == 0:
+                emit(pipeline.advance(latest if capped else None))
+                if progress is not None:
+                    progress(n, latest)
+            if latest - last_stale >= stale_every_s:
+                emit(pipeline.advance(latest if capped else None))
+                emit(pipeline.check_stale(latest))
+                last_stale = latest
+            summary.values = n
     emit(pipeline.advance(latest if capped else None))
     if summary.values:
         summary.first_time_s, summary.last_time_s = earliest, latest
     summary.assets = pipeline.asset_states()
     summary.elapsed_s = time.monotonic() - started
     return summary
+
+
+def _replay_rows(
+    pipeline: Pipeline,
+    reader: HistoryReader,
+    emit: Callable[[list[dict[str, Any]]], None],
+    stale_every_s: float,
+    progress: Callable[[int, float], None] | None,
+) -> tuple[float, float]:
+    """Feed a trend export a row at a time (:meth:`Pipeline.feed_row`); return (latest, earliest).
+
+    The clock is the row time: before a row whose time is ``stale_every_s``
+    past the last check, staleness is checked at that time, as the live
+    loop's clock would before the row's samples arrive. The grid closes
+    whenever an asset's held samples fill up (``IntakeBank.crowded``), so a
+    pipeline made with :data:`REPLAY_EXTRA_CELLS` steps its fleet every
+    few rows.
+    """
+    latest, earliest, last_stale = -math.inf, math.inf, -math.inf
+    columns: TrendColumns | None = None
+    for n, row in enumerate(reader.rows(), start=1):
+        if columns is None:
+            columns = TrendColumns(reader.topics)
+        time_s = row.time_s
+        earliest = min(earliest, time_s)
+        if time_s > latest:
+            latest = time_s
+            if latest - last_stale >= stale_every_s:
+                emit(pipeline.check_stale(latest))
+                last_stale = latest
+        emit(pipeline.feed_row(columns, time_s, row.cells))
+        if progress is not None and n % PROGRESS_ROWS == 0:
+            progress(pipeline.counts.messages, latest)
+    return latest, earliest
 
 
 def write_records(out: IO[str], records: list[dict[str, Any]]) -> None:
@@ -293,7 +337,8 @@ def run_replay(
             shown.extend(_line(record) for record in records)
 
     progress = ProgressLine(reader, err, lambda: written) if err.isatty() else None
-    pipeline = Pipeline(config, libraries)
+    extra = REPLAY_EXTRA_CELLS if reader.kind == "csv" else 0
+    pipeline = Pipeline(config, libraries, extra_cells=extra)
     collector = ReportCollector(pipeline) if report_path is not None else None
     try:
         summary = replay(

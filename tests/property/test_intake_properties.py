@@ -18,7 +18,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from arxwatch.daemon.align import AlignConfig, Aligner, Row
-from arxwatch.daemon.intake import IntakeBank, RowBatch
+from arxwatch.daemon.intake import OUTCOMES, IntakeBank, RowBatch
 from arxwatch.estimators.detect import Evidence, QualityConfig, SignalQuality
 
 T0 = 1_767_225_600.0  # 2026-01-01T00:00:00Z
@@ -407,3 +407,69 @@ def test_only_the_latest_sample_of_a_grid_cell_ever_fills_a_grid_point(
         thinned.add(signal, t, value)
     for now in sorted(data.draw(st.lists(st.integers(0, 20), min_size=1, max_size=3))):
         assert thinned.advance(T0 + now * period) == everything.advance(T0 + now * period)
+
+
+@st.composite
+def rows_of_samples(draw: st.DrawFn, setup: Setup) -> list[Op]:
+    """Draw trend-export-like rows: at one time, a sample of some (asset, signal) pairs.
+
+    Rows mostly move forward a period or less, sometimes repeat or go back
+    (duplicates and late samples: the one-by-one path); some values are bad
+    or out of the caller's range, a pair may repeat within a row, and the
+    grid is advanced, stale-checked and read between rows.
+    """
+    period = setup.config.sample_period_s
+    signals = setup.config.signals
+    ops: list[Op] = []
+    t = T0 + draw(st.sampled_from([0.0, 0.5, 1.0])) * period
+    for _ in range(draw(st.integers(1, 14))):
+        t += draw(st.sampled_from([1.0, 1.0, 1.0, 0.5, 0.25, 0.0, -1.0, 2.5])) * period
+        pairs = [(a, s) for a in range(setup.assets) for s in range(len(signals))]
+        messy = draw(st.sampled_from([False, False, False, True]))
+        chosen = draw(st.lists(st.sampled_from(pairs), max_size=len(pairs) + 1, unique=not messy))
+        row = []
+        for asset, signal in chosen:
+            if signals[signal] == setup.config.mode:
+                if not messy:
+                    continue
+                value: Any = draw(LABELS)
+            else:
+                value = draw(st.one_of(NUMBERS, st.just(math.nan)) if messy else NUMBERS)
+            row.append((asset, signal, value, draw(st.sampled_from([True, True, True, False]))))
+        ops.append(("row", t, row))
+        ops.append((draw(st.sampled_from(["advance", "stale", "none", "none"])), t))
+    return ops
+
+
+@settings(max_examples=150, deadline=None)
+@given(data=st.data())
+def test_add_many_is_add_one_by_one(data: st.DataObject) -> None:
+    # The array path of a trend export row against the per-sample path it stands for.
+    setup = data.draw(setups())
+    ops = data.draw(rows_of_samples(setup))
+    many = IntakeBank(setup.config, setup.quality, capacity=1, cells=setup.cells)
+    one = IntakeBank(setup.config, setup.quality, capacity=1, cells=setup.cells)
+    slots = [many.add_asset() for _ in range(setup.assets)]
+    assert slots == [one.add_asset() for _ in range(setup.assets)]
+    for op in ops:
+        if op[0] == "row":
+            _, t, row = op
+            numbers = [(a, s, v, u) for a, s, v, u in row if not isinstance(v, str)]
+            got = many.add_many(
+                np.array([slots[a] for a, *_ in numbers], dtype=np.intp),
+                np.array([s for _, s, _, _ in numbers], dtype=np.intp),
+                t,
+                np.array([v for *_, v, _ in numbers], dtype=np.float64),
+                np.array([u for *_, u in numbers], dtype=np.bool_),
+            )
+            expected = [one.add(slots[a], s, t, v, usable=u) for a, s, v, u in numbers]
+            assert [OUTCOMES[code] for code in got] == expected
+            assert many.crowded == one.crowded
+            assert many.take_quality() == one.take_quality()
+        elif op[0] == "advance":
+            a, b = many.advance(op[1]), one.advance(op[1])
+            for name in RowBatch.__dataclass_fields__:
+                assert np.array_equal(getattr(a, name), getattr(b, name), equal_nan=True), name
+        elif op[0] == "stale":
+            assert many.stale(op[1]) == one.stale(op[1])
+    assert_same_arrays(many.to_state()["arrays"], one.to_state()["arrays"])

@@ -428,9 +428,9 @@ def test_stale_gives_the_quiet_evaluations_a_raised_alert_needs_to_clear() -> No
     b.stale(T0 + 305.0)  # the evaluation that ends the alarm
     asked: list[tuple[int, int]] = []
 
-    def needed(s: int, signal: int) -> bool:
-        asked.append((s, signal))
-        return signal == q  # the tracker of the valve still holds its alert
+    def needed(slots: np.ndarray, signals: np.ndarray) -> np.ndarray:
+        asked.extend(zip(slots.tolist(), signals.tolist(), strict=True))
+        return signals == q  # the tracker of the valve still holds its alert
 
     got = b.stale(T0 + 310.0, needed)
     assert (slot, q) in asked
@@ -577,9 +577,9 @@ def test_take_quality_skips_quiet_checks_the_caller_does_not_need() -> None:
     slot = bank.add_asset()
     asked: list[tuple[int, int]] = []
 
-    def needed(s: int, q: int) -> bool:
-        asked.append((s, q))
-        return False
+    def needed(slots: np.ndarray, qs: np.ndarray) -> np.ndarray:
+        asked.extend(zip(slots.tolist(), qs.tolist(), strict=True))
+        return np.zeros(slots.shape, dtype=bool)
 
     bank.add(slot, 0, 1.7e9, 20.0)
     bank.add(slot, 0, 1.7e9 + 60.0, 55.0)  # out of range: always built

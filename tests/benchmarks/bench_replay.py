@@ -1,0 +1,155 @@
+"""Benchmark of ``arxwatch replay`` on a trend export: a month of 60 s data for 200 assets.
+
+Prints figures; asserts nothing. Run from the repository root:
+
+    python tests/benchmarks/bench_replay.py [--assets N] [--days D] [--repeat R]
+
+An invented site of N VAV boxes (zone temperature and reheat valve, one
+column each, 60 s apart: a first-order loop with dead time from
+:mod:`arxwatch.daemon.simulate`, one box in ten losing 40 % of its valve
+gain half-way) is written as a wide CSV trend export with a baseline file,
+then replayed in-process through the same code as ``arxwatch replay``
+(config, baseline file, :class:`HistoryReader`, :class:`Pipeline`,
+:func:`replay`), alert records written as JSON Lines. In the same run, the
+reference is the floor any replay pays: reading the same file with the
+standard library's ``csv`` module and converting every cell to float. The
+figures: wall time, values (cells) per second, rows per second, the ratio
+to the reference, and the alerts raised (a sanity check that the faults
+were seen). Best of R runs.
+"""
+
+from __future__ import annotations
+
+import argparse
+import csv
+import io
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+from arxwatch.daemon.config import parse_config
+from arxwatch.daemon.history import HistoryReader
+from arxwatch.daemon.library import read_site_baselines, write_baselines
+from arxwatch.daemon.pipeline import Pipeline
+from arxwatch.daemon.replay import REPLAY_EXTRA_CELLS, replay, write_records
+from arxwatch.daemon.simulate import REFERENCE_LOOPS, Fault, daily_operation
+from arxwatch.estimators.baseline import BaselineSet, fit_baseline
+
+PERIOD = 60.0
+START = 1_767_225_600.0  # 2026-01-01T00:00:00Z
+LOOP = REFERENCE_LOOPS["first-order+dead-time"]
+SITE = """
+broker: {{host: 127.0.0.1, client_id: arxwatch-bench}}
+state: {{path: {state}}}
+asset_classes:
+  - name: vav
+    pattern: "larkspur/{{building}}/vav/{{asset}}/{{signal}}"
+    asset_id: "{{building}}/{{asset}}"
+    sample_period_s: 60
+    output: {{signal: zone-temp, name: zone temperature, unit: degC, min: -10, max: 40}}
+    inputs:
+      - {{signal: valve, name: reheat valve, unit: "%", min: 0, max: 100}}
+    model: auto
+    baseline: {{file: {library}}}
+"""
+
+
+def asset_name(a: int) -> str:
+    """Asset id ``block-x/vav-n`` of box ``a``."""
+    return f"block-{'abcd'[a % 4]}/vav-{a}"
+
+
+def write_site(folder: Path, assets: int, days: float) -> tuple[Path, Path]:
+    """Write the trend export and the site config (with its baseline file); return both paths."""
+    n = int(days * 86400 / PERIOD)
+    u_base = daily_operation(2 * 1440, PERIOD, seed=1)
+    t_base = START - 3 * 86400.0 + np.arange(len(u_base)) * PERIOD
+    fit = fit_baseline(
+        LOOP.simulate(u_base, seed=2), u_base[:, None], t_base, sample_period_s=PERIOD
+    )
+    assert fit.baseline is not None, fit.reason
+    library = folder / "vav.json"
+    baselines = {asset_name(a): BaselineSet((fit.baseline,)) for a in range(assets)}
+    write_baselines(library, baselines, START)
+    columns = []
+    header = ["time"]
+    for a in range(assets):
+        u = daily_operation(n, PERIOD, seed=100 + a)
+        faults = (Fault("gain_loss", start_s=n * PERIOD / 2, magnitude=0.4),) if a % 10 == 0 else ()
+        y = LOOP.simulate(u, faults, seed=1000 + a)
+        building, box = asset_name(a).split("/")
+        header += [
+            f"larkspur/{building}/vav/{box}/zone-temp",
+            f"larkspur/{building}/vav/{box}/valve",
+        ]
+        columns += [np.round(y, 3), np.round(u, 2)]
+    table = np.column_stack([START + np.arange(n) * PERIOD, *columns])
+    trend = folder / "trend.csv"
+    with trend.open("w", encoding="utf-8") as out:
+        out.write(",".join(header) + "\n")
+        np.savetxt(out, table, delimiter=",", fmt="%.10g")
+    config = folder / "site.yaml"
+    config.write_text(SITE.format(state=folder / "state.db", library=library))
+    return trend, config
+
+
+def run_replay_once(trend: Path, config_path: Path) -> tuple[float, int, int, int]:
+    """Replay as ``arxwatch replay`` does; return (seconds, values, rows, alert records)."""
+    started = time.perf_counter()
+    config = parse_config(config_path.read_text(), str(config_path))
+    pipeline = Pipeline(config, read_site_baselines(config), extra_cells=REPLAY_EXTRA_CELLS)
+    reader = HistoryReader(trend)
+    sink = io.StringIO()
+    written = 0
+
+    def on_records(records: list[dict]) -> None:
+        nonlocal written
+        written += len(records)
+        write_records(sink, records)
+
+    summary = replay(pipeline, reader, on_records, capped=False)
+    return time.perf_counter() - started, summary.values, summary.counts.rows, written
+
+
+def read_reference(trend: Path) -> tuple[float, int]:
+    """The floor: csv.reader over the file, every cell to float; return (seconds, values)."""
+    started = time.perf_counter()
+    values = 0
+    with trend.open(newline="", encoding="utf-8") as handle:
+        rows = csv.reader(handle)
+        next(rows)
+        for row in rows:
+            values += len([float(cell) for cell in row[1:]])
+    return time.perf_counter() - started, values
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--assets", type=int, default=200)
+    parser.add_argument("--days", type=float, default=30.0)
+    parser.add_argument("--repeat", type=int, default=1)
+    args = parser.parse_args()
+    with tempfile.TemporaryDirectory(prefix="arxwatch-bench-replay-") as tmp:
+        folder = Path(tmp)
+        t0 = time.perf_counter()
+        trend, config = write_site(folder, args.assets, args.days)
+        size = trend.stat().st_size
+        print(
+            f"site: {args.assets} VAV boxes x 2 points, {args.days:g} days at 60 s; "
+            f"trend export {size / 2**20:.0f} MiB written in {time.perf_counter() - t0:.1f} s"
+        )
+        best_ref = min(read_reference(trend)[0] for _ in range(args.repeat))
+        runs = [run_replay_once(trend, config) for _ in range(args.repeat)]
+        seconds, values, rows, alerts = min(runs)
+        print(f"reference (csv.reader + float per cell): {best_ref:.1f} s")
+        print(
+            f"replay: {seconds:.1f} s for {values:,} values ({values / seconds:,.0f} values/s), "
+            f"{rows:,} rows ({rows / seconds:,.0f} rows/s), {alerts:,} alert records"
+        )
+        print(f"replay / reference: {seconds / best_ref:.1f}x")
+
+
+if __name__ == "__main__":
+    main()
