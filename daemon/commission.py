@@ -24,7 +24,7 @@ from __future__ import annotations
 
 import math
 import time
-from collections.abc import Iterable, Iterator, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import IO, Literal
@@ -43,14 +43,13 @@ from arxwatch.daemon.history import (
     BadLinePolicy,
     HistoryError,
     HistoryReader,
-    Recorded,
     parse_time,
     time_zone,
 )
 from arxwatch.daemon.intake import RowBatch
 from arxwatch.daemon.library import write_baselines
 from arxwatch.daemon.pipeline import Pipeline
-from arxwatch.daemon.replay import ProgressLine, replay
+from arxwatch.daemon.replay import REPLAY_EXTRA_CELLS, ProgressLine, replay
 from arxwatch.estimators.baseline import GAP_FACTOR, BaselineResult, BaselineSet, fit_baseline
 
 __all__ = [
@@ -134,49 +133,46 @@ def _fitting_config(config: Config) -> Config:
     return replace(config, asset_classes=classes)
 
 
-def _between(source: Iterable[Recorded], start_s: float, end_s: float) -> Iterator[Recorded]:
-    for value in source:
-        if start_s <= value.time_s <= end_s:
-            yield value
-
-
 def collect_rows(
     config: Config,
-    source: Iterable[Recorded],
+    reader: HistoryReader,
     *,
-    capped: bool,
     start_s: float = -math.inf,
     end_s: float = math.inf,
     progress: ProgressLine | None = None,
 ) -> RowCollector:
-    """Feed the recorded values in [start_s, end_s] through the pipeline; return the rows.
+    """Replay the whole file through the pipeline; return the rows in [start_s, end_s].
+
+    The whole file goes through, as ``arxwatch replay`` feeds it (a trend
+    export a row at a time), so a row at the start of the range is aligned
+    with the samples just before it, as live.
 
     Parameters
     ----------
     config : Config
         The site configuration (its baseline sources are ignored).
-    source : iterable of Recorded
-        The recorded file (a :class:`HistoryReader`).
-    capped : bool
-        As for :func:`arxwatch.daemon.replay.replay` (True for a capture).
+    reader : HistoryReader
+        The recorded file.
     start_s, end_s : float, optional
-        Time range, epoch seconds, inclusive.
+        Grid times kept, epoch seconds, inclusive.
     progress : ProgressLine, optional
         Progress display on a terminal.
 
     Raises
     ------
     HistoryError
-        At an unreadable line of the source, when it stops there.
+        At an unreadable line of the file, when it stops there.
     """
     fitting = _fitting_config(config)
-    pipeline = Pipeline(fitting, {c.name: {} for c in fitting.asset_classes})
+    trend = reader.kind == "csv"
+    pipeline = Pipeline(
+        fitting,
+        {c.name: {} for c in fitting.asset_classes},
+        extra_cells=REPLAY_EXTRA_CELLS if trend else 0,
+    )
     collector = RowCollector(start_s, end_s)
     pipeline.on_rows = collector
-    replay(
-        pipeline, _between(source, start_s, end_s), lambda _: None, capped=capped,
-        progress=progress,
-    )  # fmt: skip
+    replay(pipeline, reader, lambda _: None, capped=not trend, progress=progress)
     return collector
 
 
@@ -433,10 +429,7 @@ def run_baselines(
             return 1
     progress = _ReadProgress(reader, err, lambda: 0) if err.isatty() else None
     try:
-        collector = collect_rows(
-            config, reader, capped=reader.kind == "capture", start_s=start_s, end_s=end_s,
-            progress=progress,
-        )  # fmt: skip
+        collector = collect_rows(config, reader, start_s=start_s, end_s=end_s, progress=progress)
     except HistoryError as error:
         print(f"{name}: {error}", file=err)
         print("  (--on-bad-line skip counts such lines and goes on)", file=err)
