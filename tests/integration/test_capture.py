@@ -35,6 +35,19 @@ __all__ = ["baseline_set", "site"]  # fixtures of test_service.py used here
 
 CAPTURE_ID = "arxwatch-it-capture"  # the service's client id with the default suffix
 
+NO_BROKER = """
+broker: {host: 127.0.0.1, port: 9, client_id: arxwatch-it}
+state: {path: /tmp/unused.db}
+asset_classes:
+  - name: vav
+    pattern: "larkspur/{building}/vav/{asset}/{signal}"
+    asset_id: "{building}/{asset}"
+    sample_period_s: 60
+    output: {signal: zone-temp, name: zone temperature, unit: degC, min: -10, max: 40}
+    inputs: [{signal: valve, name: reheat valve, unit: "%", min: 0, max: 100}]
+    baseline: {learn_for_s: 86400}
+"""
+
 
 class Capture:
     """``arxwatch capture`` in a child process, stopped by PID in teardown."""
@@ -187,3 +200,22 @@ def test_a_gzip_capture_cut_short_is_an_unreadable_line(tmp_path: Path) -> None:
         list(HistoryReader(path))
     skipping = HistoryReader(path, on_bad_line="skip")
     assert len(list(skipping)) == 4 and skipping.bad_lines == 1
+
+
+@pytest.mark.parametrize(
+    ("args", "message"),
+    [
+        (["--client-id", "arxwatch-it"], "is the service's own: the capture would take over"),
+        (["--client-id", "capture/1"], "expected 1 to 64 characters from [A-Za-z0-9_-]"),
+        (["--output", "/nonexistent/dir/cap.jsonl"], "cannot write: No such file or directory"),
+    ],
+)
+def test_capture_refuses_bad_options_before_connecting(
+    tmp_path: Path, capsys: pytest.CaptureFixture, args: list[str], message: str
+) -> None:
+    config = tmp_path / "site.yaml"  # port 9: nothing listens; the command must stop sooner
+    config.write_text(NO_BROKER)
+    output = ["--output", str(tmp_path / "cap.jsonl")]
+    assert main(["capture", "--config", str(config), *output, *args]) == 2
+    err = capsys.readouterr().err
+    assert err.startswith("arxwatch capture: ") and message in err
