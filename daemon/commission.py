@@ -47,7 +47,7 @@ from arxwatch.daemon.history import (
     time_zone,
 )
 from arxwatch.daemon.intake import RowBatch
-from arxwatch.daemon.library import write_baselines
+from arxwatch.daemon.library import BaselineFileError, read_baselines, write_baselines
 from arxwatch.daemon.pipeline import Pipeline
 from arxwatch.daemon.replay import REPLAY_EXTRA_CELLS, ProgressLine, replay
 from arxwatch.estimators.baseline import GAP_FACTOR, BaselineResult, BaselineSet, fit_baseline
@@ -451,6 +451,17 @@ def run_baselines(
     return _fit_and_write(config, collector, places, notes, out, err)
 
 
+def _dropped(path: Path, sets: dict[str, BaselineSet]) -> list[str]:
+    """Assets of the existing file at ``path`` that ``sets`` lacks (none if it is unreadable)."""
+    if not path.exists():
+        return []
+    try:
+        old = read_baselines(path)
+    except BaselineFileError:
+        return []
+    return sorted(set(old) - set(sets))
+
+
 def _iso(time_s: float) -> str:
     if not math.isfinite(time_s):
         return "the start" if time_s < 0 else "the end"
@@ -493,6 +504,7 @@ def _fit_and_write(
         )
         path = places.get(asset_class.name)
         if path is not None and sets:
+            dropped = _dropped(path, sets)
             try:
                 path.parent.mkdir(parents=True, exist_ok=True)
                 write_baselines(path, sets, time.time())
@@ -501,6 +513,13 @@ def _fit_and_write(
                 status = 1
             else:
                 print(f"wrote {path} ({len(sets)} assets)", file=out)
+                if dropped:
+                    shown = ", ".join(dropped[:5]) + (" ..." if len(dropped) > 5 else "")
+                    print(
+                        f"  {len(dropped)} asset(s) of the file it replaced have no baseline in "
+                        f"it now (not fitted or refused this time): {shown}",
+                        file=out,
+                    )
         elif path is not None:
             print(f"nothing accepted: {path} not written", file=out)
         print(file=out)

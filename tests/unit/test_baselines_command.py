@@ -3,6 +3,7 @@
 import contextlib
 import csv
 import io
+import json
 import re
 from dataclasses import replace
 from pathlib import Path
@@ -150,10 +151,15 @@ def test_files_are_not_overwritten_without_force(
     assert f"will not overwrite {library} (--force replaces it)" in capsys.readouterr().err
     assert library.read_bytes() == before
     copy = tmp_path / "copy.json"
-    copy.write_bytes(before)
+    document = json.loads(before)
+    document["assets"]["block-z/vav-0"] = document["assets"]["block-a/vav-1"]  # not in the CSV
+    copy.write_text(json.dumps(document))
     write_site(tmp_path, f"{{file: {copy}}}")
     assert main([*args, "--force"]) == 0
-    assert f"wrote {copy} (2 assets)" in capsys.readouterr().out
+    out = capsys.readouterr().out
+    assert f"wrote {copy} (2 assets)" in out
+    assert "1 asset(s) of the file it replaced have no baseline in it now" in out
+    assert out.rstrip().endswith("block-z/vav-0")
 
 
 def test_without_a_destination_nothing_is_written(
