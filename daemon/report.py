@@ -715,6 +715,7 @@ def _figure(
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
     from matplotlib.patches import Patch
+    from matplotlib.ticker import MaxNLocator, NullLocator
 
     names = trace.names
     assert names is not None  # a bound trace has them
@@ -857,13 +858,16 @@ def _figure(
     height = 1.55 * len(panels) + 0.9
     fig = Figure(figsize=(11.5, height), dpi=100)
     FigureCanvasAgg(fig)
-    axes = fig.subplots(len(panels), 1, sharex=True)
+    # no shared x axis: ticks are costly to make, so only the bottom plot has them
+    axes = fig.subplots(len(panels), 1)
     axes_list: list[Axes] = list(np.atleast_1d(axes))
     fig.subplots_adjust(
         left=0.085, right=0.765, top=1 - 0.45 / height, bottom=0.55 / height, hspace=0.32
     )
     first, last = span
     lo, hi = _days(np.array([first, last]))
+    if not hi > lo:
+        lo, hi = lo - 0.01, hi + 0.01
     spans = [
         (family, severity, *_days(np.array([a, b])))
         for family in ("behaviour", "data_quality")
@@ -886,7 +890,10 @@ def _figure(
                     lw=0,
                     zorder=0,
                 )
-        ax.grid(True, color="#e4e4e4", lw=0.6)
+        ax.set_xlim(lo, hi)
+        ax.grid(True, axis="y", color="#e4e4e4", lw=0.6)
+        if ax.get_yscale() == "linear":
+            ax.yaxis.set_major_locator(MaxNLocator(nbins=4))
         ax.tick_params(labelsize=8)
         ax.yaxis.label.set_fontsize(8.5)
         handles, labels = ax.get_legend_handles_labels()
@@ -911,12 +918,17 @@ def _figure(
             borderaxespad=0.0,
         )
     bottom = axes_list[-1]
-    if hi > lo:
-        bottom.set_xlim(lo, hi)
     # (matplotlib's date helpers carry no type hints)
     locator = dates.AutoDateLocator(tz="UTC", minticks=5, maxticks=12)  # type: ignore[no-untyped-call]
     bottom.xaxis.set_major_locator(locator)
     bottom.xaxis.set_major_formatter(dates.ConciseDateFormatter(locator, tz="UTC"))  # type: ignore[no-untyped-call]
+    times = bottom.xaxis.get_majorticklocs()
+    for ax in axes_list:
+        if ax is not bottom:  # the bottom plot's time grid, without tick objects
+            ax.xaxis.set_major_locator(NullLocator())
+        ax.vlines(
+            times, 0, 1, transform=ax.get_xaxis_transform(), colors="#e4e4e4", lw=0.6, zorder=0.5
+        )
     bottom.set_xlabel("time (UTC)", fontsize=8.5)
     fig.suptitle(asset, x=0.085, ha="left", fontsize=10, fontweight="bold")
     buffer = io.BytesIO()

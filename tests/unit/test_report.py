@@ -119,6 +119,16 @@ def test_the_report_holds_the_numbers_of_the_alert_file(reported: dict[str, Path
     assert len(re.findall(r'\bsrc="', text)) == len(images)
 
 
+def test_the_report_changes_no_alert(
+    site: dict[str, Path], reported: dict[str, Path], tmp_path: Path
+) -> None:
+    alerts = tmp_path / "alerts.jsonl"
+    code = main(["replay", "--config", str(site["config"]), "--input", str(site["trend"]),
+                 "--alerts", str(alerts)])  # fmt: skip
+    assert code == 0
+    assert alerts.read_text() == reported["alerts"].read_text()
+
+
 def test_alert_records_pair_into_intervals() -> None:
     def record(id_: str, state: str, severity: str, minute: int) -> dict:
         return {"id": id_, "asset": "block-a/vav-2", "detector": "physical_band",
