@@ -950,6 +950,10 @@ class DetectorsConfig:
         Relative bands of the gain and the time constant.
     evaluate_every : int or None
         Samples between parameter-based evaluations.
+    reference_samples : int or None
+        Samples at the start of monitoring (and after a restart of the
+        histories) from which the normal correlation of the innovations is
+        learned; the innovation detectors judge nothing before.
     """
 
     cusum_h: float | None = None
@@ -959,6 +963,7 @@ class DetectorsConfig:
     gain_tolerance: float | None = None
     time_constant_tolerance: float | None = None
     evaluate_every: int | None = None
+    reference_samples: int | None = None
 
 
 _DETECTOR_NUMBERS = (
@@ -969,14 +974,15 @@ _DETECTOR_NUMBERS = (
     "gain_tolerance",
     "time_constant_tolerance",
 )
+_DETECTOR_COUNTS = ("evaluate_every", "reference_samples")
 
 
 def _detectors(r: _Reader, parent: Mapping[str, object], path: str) -> DetectorsConfig:
-    raw = r.section(parent, path, "detectors", (*_DETECTOR_NUMBERS, "evaluate_every"))
+    raw = r.section(parent, path, "detectors", (*_DETECTOR_NUMBERS, *_DETECTOR_COUNTS))
     path = _key(path, "detectors")
     numbers = {key: r.optional_number(raw, path, key) for key in _DETECTOR_NUMBERS}
-    every = r.integer(raw, path, "evaluate_every", low=1) if "evaluate_every" in raw else None
-    return DetectorsConfig(**numbers, evaluate_every=every)
+    counts = {key: r.integer(raw, path, key, low=1) for key in _DETECTOR_COUNTS if key in raw}
+    return DetectorsConfig(**numbers, **counts)
 
 
 @dataclass(frozen=True)
@@ -1125,6 +1131,11 @@ class AssetClassConfig:
                 ),
             ),
             evaluate_every=base.evaluate_every if d.evaluate_every is None else d.evaluate_every,
+            prewhiten=(
+                base.prewhiten
+                if d.reference_samples is None
+                else replace(base.prewhiten, reference_samples=d.reference_samples)
+            ),
         )
 
     def learner_config(self) -> LearnerConfig:
@@ -1271,7 +1282,7 @@ def _asset_class(r: _Reader, value: object, path: str, limits: LimitsConfig) -> 
         needs_labels = config.mode is not None and config.mode.values is None
         where = "mode.values" if needs_labels else "baseline.learn_for_s"
         r.build(_key(path, where), config.learner_config)
-    for key in (*_DETECTOR_NUMBERS, "evaluate_every"):
+    for key in (*_DETECTOR_NUMBERS, *_DETECTOR_COUNTS):
         if getattr(config.detectors, key) is not None:
             alone = DetectorsConfig(**{key: getattr(config.detectors, key)})
             r.build(f"{path}.detectors.{key}", replace(config, detectors=alone).monitor_config)

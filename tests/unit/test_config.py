@@ -336,3 +336,14 @@ def test_alignment_windows_can_be_set_per_class() -> None:
     bad = text.replace("gap_restart_s: 600", "gap_restart_s: 30")
     with pytest.raises(ConfigError, match=r"asset_classes\[1\]\.align: gap_restart_s must be >="):
         parse_config(bad, "site.yaml")
+
+
+def test_reference_samples_sets_the_start_of_judging_and_is_checked() -> None:
+    data = base()
+    data["asset_classes"][0]["detectors"] = {"reference_samples": 120}
+    config = parse_config(yaml.safe_dump(data, sort_keys=False), "site.yaml")
+    assert config.asset_classes[0].monitor_config().prewhiten.reference_samples == 120
+    # the prewhitening filter (AR order 6) needs more than 10 samples per coefficient
+    data["asset_classes"][0]["detectors"] = {"reference_samples": 50}
+    with pytest.raises(ConfigError, match=r"detectors\.reference_samples: .*must exceed 10"):
+        parse(data)
