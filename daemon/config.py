@@ -981,8 +981,14 @@ def _detectors(r: _Reader, parent: Mapping[str, object], path: str) -> Detectors
     raw = r.section(parent, path, "detectors", (*_DETECTOR_NUMBERS, *_DETECTOR_COUNTS))
     path = _key(path, "detectors")
     numbers = {key: r.optional_number(raw, path, key) for key in _DETECTOR_NUMBERS}
-    counts = {key: r.integer(raw, path, key, low=1) for key in _DETECTOR_COUNTS if key in raw}
-    return DetectorsConfig(**numbers, **counts)
+    counts = {
+        key: r.integer(raw, path, key, low=1) if key in raw else None for key in _DETECTOR_COUNTS
+    }
+    return DetectorsConfig(
+        **numbers,
+        evaluate_every=counts["evaluate_every"],
+        reference_samples=counts["reference_samples"],
+    )
 
 
 @dataclass(frozen=True)
