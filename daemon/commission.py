@@ -399,15 +399,9 @@ def run_baselines(
     """
     name = "arxwatch baselines"
     try:
-        config = load_config(config_path)
+        config = load_config(config_path, baseline_files_exist=False)  # written here
     except ConfigError as error:
         print(f"{name}: {error}", file=err)
-        if error.path.endswith(".baseline.file") and "does not exist" in error.problem:
-            print(
-                "  (the config must name an existing baseline file; to fit the first ones, "
-                "use baseline: {learn_for_s: ...} meanwhile and --output-dir DIR)",
-                file=err,
-            )
         return 2
     try:
         start_s = _range(start, zone, -math.inf, "--from")

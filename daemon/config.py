@@ -204,8 +204,9 @@ _REQUIRED = object()
 class _Reader:
     """Typed access to the parsed YAML, raising :class:`ConfigError` with paths."""
 
-    def __init__(self, source: str) -> None:
+    def __init__(self, source: str, *, baseline_files_exist: bool = True) -> None:
         self.source = source
+        self.baseline_files_exist = baseline_files_exist
 
     def fail(self, path: str, problem: str) -> ConfigError:
         return ConfigError(self.source, path, problem)
@@ -930,9 +931,13 @@ def _baseline(r: _Reader, parent: Mapping[str, object], path: str) -> BaselineCo
     raw = r.mapping(parent["baseline"], path, ("learn_for_s", "file"))
     if ("learn_for_s" in raw) == ("file" in raw):
         raise r.expected(path, raw, "exactly one of learn_for_s and file")
+    if r.baseline_files_exist or raw.get("file") is None:
+        file = r.existing_file(raw, path, "file")
+    else:  # a file ``arxwatch baselines`` is about to write
+        file = Path(r.string(raw, path, "file", what="a file path"))
     return BaselineConfig(
         learn_for_s=r.optional_number(raw, path, "learn_for_s", positive=True),
-        file=r.existing_file(raw, path, "file"),
+        file=file,
     )
 
 
@@ -1335,7 +1340,7 @@ class Config:
 _TOP_KEYS = ("broker", "topics", "metrics", "state", "logging", "limits", "asset_classes")
 
 
-def parse_config(text: str, source_name: str) -> Config:
+def parse_config(text: str, source_name: str, *, baseline_files_exist: bool = True) -> Config:
     """Parse and validate configuration text.
 
     Parameters
@@ -1344,6 +1349,9 @@ def parse_config(text: str, source_name: str) -> Config:
         YAML document.
     source_name : str
         Name used in error messages, normally the file name.
+    baseline_files_exist : bool, optional
+        Whether every ``baseline.file`` must exist (True, for every command
+        but ``arxwatch baselines``, which may write them for the first time).
 
     Returns
     -------
@@ -1355,7 +1363,7 @@ def parse_config(text: str, source_name: str) -> Config:
         On any YAML, type or value problem; the message names
         ``source_name``, the key path, the value found and what was expected.
     """
-    r = _Reader(source_name)
+    r = _Reader(source_name, baseline_files_exist=baseline_files_exist)
     document = _load_yaml(text, source_name)
     if document is None:
         raise r.fail("", "the file is empty; expected a mapping with a broker section")
@@ -1396,13 +1404,15 @@ def parse_config(text: str, source_name: str) -> Config:
     return config
 
 
-def load_config(path: str | Path) -> Config:
+def load_config(path: str | Path, *, baseline_files_exist: bool = True) -> Config:
     """Read and validate a configuration file.
 
     Parameters
     ----------
     path : str or Path
         YAML file (UTF-8).
+    baseline_files_exist : bool, optional
+        As :func:`parse_config`.
 
     Returns
     -------
@@ -1420,7 +1430,7 @@ def load_config(path: str | Path) -> Config:
         raise ConfigError(source, "", "is not UTF-8 text") from None
     except OSError as err:
         raise ConfigError(source, "", f"cannot read the file: {err.strerror}") from None
-    return parse_config(text, source)
+    return parse_config(text, source, baseline_files_exist=baseline_files_exist)
 
 
 def read_secret(config: Config, environ: Mapping[str, str]) -> str | None:

@@ -114,7 +114,7 @@ def run_replay_once(trend: Path, config_path: Path) -> tuple[float, int, int, in
 
 
 def read_reference(trend: Path) -> tuple[float, int]:
-    """The floor: csv.reader over the file, every cell to float; return (seconds, values)."""
+    """Read the file with csv.reader, every cell to float (the floor); return (seconds, values)."""
     started = time.perf_counter()
     values = 0
     with trend.open(newline="", encoding="utf-8") as handle:

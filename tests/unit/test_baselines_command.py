@@ -205,10 +205,20 @@ def test_missing_or_bad_files_exit_2(tmp_path: Path, capsys: pytest.CaptureFixtu
     bad.write_text("time,larkspur/a/vav/v1/zone-temp\n1767225600,21\nnoon,22\n")
     assert main(["baselines", "--config", str(config), "--input", str(bad)]) == 2
     assert f"{bad}:3: first column: time 'noon'" in capsys.readouterr().err
-    gone = write_site(tmp_path, f"{{file: {tmp_path / 'vav.json'}}}")
-    assert main(["baselines", "--config", str(gone), "--input", str(bad)]) == 2
-    err = capsys.readouterr().err
-    assert "baseline.file: file" in err and "--output-dir DIR" in err
+
+
+def test_the_first_fit_writes_the_baseline_file_the_config_names(
+    trend: Path, tmp_path: Path, capsys: pytest.CaptureFixture
+) -> None:
+    # A new site: the config points at a baseline file that does not exist yet.
+    library = tmp_path / "vav.json"
+    config = write_site(tmp_path, f"{{file: {library}}}")
+    assert main(["check", "--config", str(config)]) == 2  # run and replay need the file
+    assert "baseline.file: file" in capsys.readouterr().err
+    args = ["baselines", "--config", str(config), "--input", str(trend), "--to", FIT_END]
+    assert main([*args, "--write"]) == 0
+    assert f"wrote {library}" in capsys.readouterr().out
+    assert main(["check", "--config", str(config)]) == 0
 
 
 def test_longest_stretch_picks_the_longest_gap_free_run() -> None:
