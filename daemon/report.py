@@ -74,6 +74,8 @@ MAX_SECTIONS = 50
 MAX_LISTED = 300
 #: Points per plotted series at most (a min/max envelope beyond that).
 PLOT_POINTS = 1600
+#: Evaluations up to which each is marked with a dot (beyond, the dots merge into a smear).
+_DOTTED = 200
 
 CAUTION_HTML = (
     "<strong>Advisory only.</strong> arxwatch gives maintenance information. It is "
@@ -841,8 +843,10 @@ def _figure(
             )
             captions.append(_band_caption(feature, label, shown_unit))
 
+        dots: dict[str, Any] = {"marker": ".", "ms": 2.5} if et.shape[0] <= _DOTTED else {}
+
         def draw_distance(ax: Axes) -> None:
-            ax.plot(et, dist, color="#9467bd", lw=0.9, marker=".", ms=2.5, label="Wald distance")
+            ax.plot(et, dist, color="#9467bd", lw=0.9, label="Wald distance", **dots)
             ax.step(et, limit, where="post", color="#000000", lw=0.9, ls="--", label="limit")
             if float(np.nanmax(dist, initial=0.0)) > 20 * float(np.nanmax(limit, initial=1.0)):
                 ax.set_yscale("symlog", linthresh=float(np.nanmax(limit, initial=1.0)))
@@ -999,7 +1003,8 @@ def _band_drawer(
                 label="tolerance band",
             )
         ax.step(t, base, where="post", color="#2ca02c", lw=1.0, ls="--", label="baseline")
-        ax.plot(t, value, color="#ff7f0e", lw=1.0, marker=".", ms=2.5, label="live model")
+        dots: dict[str, Any] = {"marker": ".", "ms": 2.5} if t.shape[0] <= _DOTTED else {}
+        ax.plot(t, value, color="#ff7f0e", lw=1.0, label="live model", **dots)
         short = label.split(" of ")[0].split(" on ")[0]
         ax.set_ylabel(f"{short}\n({unit})")
         limits = _robust_limits(value, base, lower, upper)

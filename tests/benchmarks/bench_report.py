@@ -35,7 +35,7 @@ from arxwatch.daemon.history import HistoryReader  # noqa: E402
 from arxwatch.daemon.library import read_site_baselines  # noqa: E402
 from arxwatch.daemon.monitor import MonitorConfig  # noqa: E402
 from arxwatch.daemon.pipeline import Pipeline  # noqa: E402
-from arxwatch.daemon.replay import replay  # noqa: E402
+from arxwatch.daemon.replay import REPLAY_EXTRA_CELLS, replay  # noqa: E402
 from arxwatch.daemon.report import MAX_SECTIONS, ReportCollector, write_report  # noqa: E402
 from arxwatch.daemon.simulate import Fault, daily_operation  # noqa: E402
 from arxwatch.daemon.trace import FleetTrace  # noqa: E402
@@ -114,10 +114,11 @@ def main() -> None:
         config = load_config(config_path)
         libraries = read_site_baselines(config)
         t0 = time.perf_counter()
-        plain = replay(Pipeline(config, libraries), HistoryReader(trend), lambda r: None,
-                       capped=False)  # fmt: skip
+        # as `arxwatch replay` runs a trend export
+        plain = replay(Pipeline(config, libraries, extra_cells=REPLAY_EXTRA_CELLS),
+                       HistoryReader(trend), lambda r: None, capped=False)  # fmt: skip
         bare_s = time.perf_counter() - t0
-        pipeline = Pipeline(config, libraries)
+        pipeline = Pipeline(config, libraries, extra_cells=REPLAY_EXTRA_CELLS)
         collector = ReportCollector(pipeline)
         reader = HistoryReader(trend)
         t0 = time.perf_counter()
