@@ -31,6 +31,7 @@ import importlib
 import io
 import math
 import os
+import textwrap
 import time
 from collections import Counter
 from collections.abc import Iterable, Mapping, Sequence
@@ -739,7 +740,7 @@ def _figure(
     def draw_output(ax: Axes) -> None:
         line(ax, td, y, color="#222222", lw=0.9, label=f"measured {out}")
         line(ax, td, p, color="#1f77b4", lw=0.9, alpha=0.85, label="predicted one step ahead")
-        ax.set_ylabel(f"{out}\n({unit})")
+        ax.set_ylabel(_axis_label(out, unit))
         limits = _robust_limits(y, p)
         if limits is not None:
             ax.set_ylim(*limits)
@@ -985,6 +986,11 @@ def _bounds(i: AlertInterval, end_s: float) -> tuple[float, float]:
     return i.raised_s, max(end, i.raised_s + 60.0)
 
 
+def _axis_label(name: str, unit: str) -> str:
+    """Return an axis label that fits beside a plot: the name on two lines at most, the unit."""
+    return "\n".join([*textwrap.wrap(name, 22, max_lines=2, placeholder="…"), f"({unit})"])
+
+
 def _band_drawer(
     t: Series, value: Series, base: Series, lower: Series, upper: Series, label: str, unit: str
 ) -> Any:
@@ -1005,8 +1011,10 @@ def _band_drawer(
         ax.step(t, base, where="post", color="#2ca02c", lw=1.0, ls="--", label="baseline")
         dots: dict[str, Any] = {"marker": ".", "ms": 2.5} if t.shape[0] <= _DOTTED else {}
         ax.plot(t, value, color="#ff7f0e", lw=1.0, label="live model", **dots)
-        short = label.split(" of ")[0].split(" on ")[0]
-        ax.set_ylabel(f"{short}\n({unit})")
+        # "gain of reheat valve on zone temperature" -> "reheat valve gain"
+        quantity, _, rest = label.partition(" of ")
+        short = f"{rest.split(' on ')[0]} gain" if quantity == "gain" else quantity
+        ax.set_ylabel(_axis_label(short, unit))
         limits = _robust_limits(value, base, lower, upper)
         if limits is not None:
             ax.set_ylim(*limits)
