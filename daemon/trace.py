@@ -448,10 +448,6 @@ class FleetTrace:
         cusum_low: Float,
     ) -> None:
         """Record one judged row for each of ``slots`` (distinct fleet slots), shape (k,)."""
-        if not slots.shape[0]:
-            return
-        index = self._asset_index(slots)
-        keep = index >= 0
         values = {
             "time_s": time_s,
             "output": output,
@@ -460,9 +456,7 @@ class FleetTrace:
             "cusum_high": cusum_high,
             "cusum_low": cusum_low,
         }
-        if not keep.all():
-            values = {name: v[keep] for name, v in values.items()}
-        self._rows.add(index[keep], values)
+        self._offer(self._rows, slots, values)
 
     def add_evaluations(
         self,
@@ -480,11 +474,8 @@ class FleetTrace:
 
         ``modes`` are the fleet's mode codes (:attr:`FleetMonitor.mode_labels`).
         """
-        store = self._evaluations
-        if store is None or not slots.shape[0]:
+        if self._evaluations is None:
             return
-        index = self._asset_index(slots)
-        keep = index >= 0
         values = {
             "time_s": time_s,
             "mode": modes,
@@ -495,6 +486,14 @@ class FleetTrace:
             "distance": distance,
             "distance_limit": distance_limit,
         }
+        self._offer(self._evaluations, slots, values)
+
+    def _offer(self, store: _Store, slots: NDArray[Any], values: dict[str, NDArray[Any]]) -> None:
+        """Hand ``store`` the rows of the traced assets among ``slots``."""
+        if not slots.shape[0]:
+            return
+        index = self._asset_index(slots)
+        keep = index >= 0
         if not keep.all():
             values = {name: v[keep] for name, v in values.items()}
         store.add(index[keep], values)
