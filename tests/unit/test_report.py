@@ -14,10 +14,14 @@ import sys
 from collections import Counter
 from pathlib import Path
 
+import numpy as np
 import pytest
 
+from arxwatch.daemon.alert import SignalNames
 from arxwatch.daemon.cli import main
+from arxwatch.daemon.fleet import FleetMonitor
 from arxwatch.daemon.history import HistoryReader
+from arxwatch.daemon.monitor import MonitorConfig
 from arxwatch.daemon.pipeline import Pipeline
 from arxwatch.daemon.replay import replay
 from arxwatch.daemon.report import (
@@ -27,7 +31,11 @@ from arxwatch.daemon.report import (
     alert_intervals,
     write_report,
 )
+from arxwatch.daemon.report import _figure as render
 from arxwatch.daemon.report import _merged_spans as merged_spans
+from arxwatch.daemon.simulate import REFERENCE_LOOPS, daily_operation
+from arxwatch.daemon.trace import FleetTrace
+from arxwatch.estimators.baseline import Baseline, BaselineSet, fit_baseline
 from tests.unit.test_pipeline import (
     PERIOD,
     SITE,
@@ -225,3 +233,45 @@ def test_the_report_renders_in_headless_chromium(reported: dict[str, Path], tmp_
     data = shot.read_bytes()
     assert png_size(data) == (1400, 4000)
     assert len(data) > 100_000  # tables and plots, not a blank page (a blank one is about 26 kB)
+
+
+def test_a_two_input_asset_gets_a_gain_plot_per_input() -> None:
+    # An invented air handler at Larkspur Yard: supply-air temperature from a
+    # cooling and a heating valve, one baseline per operating mode.
+    loop = REFERENCE_LOOPS["first-order+dead-time"]
+
+    def plant(n: int, seed: int) -> tuple[np.ndarray, np.ndarray]:
+        u = np.column_stack([daily_operation(n, PERIOD, seed=seed + i) for i in (0, 50)])
+        y = loop.simulate(u[:, 0], seed=seed + 1) + 0.5 * (
+            loop.simulate(u[:, 1], seed=seed + 2) - 20
+        )
+        return y, u
+
+    y, u = plant(2 * 1440, 1)
+    fit = fit_baseline(y, u, START - 3 * 86400 + np.arange(len(y)) * PERIOD, sample_period_s=PERIOD)
+    assert fit.baseline is not None
+    names = SignalNames("supply-air temperature", "degC", ("cooling valve", "heating valve"),
+                        ("%", "%"))  # fmt: skip
+    fleet = FleetMonitor(names, MonitorConfig())
+    per_mode = [Baseline.from_dict({**fit.baseline.to_dict(), "mode": m}) for m in ("day", "night")]
+    slot = fleet.add_asset("larkspur/ahu-1", BaselineSet(tuple(per_mode)))
+    fleet.trace = trace = FleetTrace()
+    y, u = plant(1100, 7)
+    for k in range(1100):
+        mode = "day" if 6 <= (k // 60) % 24 < 20 else "night"
+        fleet.step([slot], [START + k * PERIOD], [float(y[k])], [[float(u[k, 0]), float(u[k, 1])]],
+                   [mode], [False])  # fmt: skip
+    png, captions = render("larkspur/ahu-1", trace, [], (START, START + 1100 * PERIOD))
+    assert png_size(png)[0] > 800
+    titles = [re.sub(r"<[^>]+>", "", c).split("(")[0].strip() for c in captions]
+    assert titles[3:7] == [
+        "Gain of cooling valve on supply-air temperature",
+        "Gain of heating valve on supply-air temperature",
+        "Time constant of supply-air temperature",
+        "Offset of supply-air temperature",
+    ]
+    dead = fit.baseline.order.nk
+    assert captions[-1].endswith(
+        f"dead time of cooling valve: {dead[0] * PERIOD:g} s; "
+        f"dead time of heating valve: {dead[1] * PERIOD:g} s."
+    )
