@@ -236,8 +236,16 @@ class ReportCollector:
     """What the report needs, gathered during a replay.
 
     Attaches a trace to the fleet monitor of every asset class of
-    ``pipeline`` (sharing ``max_bytes``) and keeps the alert episodes of the
-    records handed to :meth:`add_records`.
+    ``pipeline`` and keeps the alert episodes of the records handed to
+    :meth:`add_records`.
+
+    Parameters
+    ----------
+    pipeline : Pipeline
+        The replay's pipeline, before the replay starts.
+    max_bytes : int
+        Memory budget of all the traces together (shared equally among the
+        asset classes); beyond it the traces thin their rows.
     """
 
     def __init__(self, pipeline: Pipeline, *, max_bytes: int = DEFAULT_MAX_BYTES) -> None:
