@@ -31,7 +31,7 @@ from __future__ import annotations
 import math
 from collections import deque
 from dataclasses import dataclass
-from typing import Literal
+from typing import Literal, TypeVar
 
 import numpy as np
 from numpy.typing import NDArray
@@ -107,6 +107,34 @@ class Fault:
         return min(max((t_s - self.start_s) / self.ramp_s, 0.0), 1.0)
 
 
+_Plant = TypeVar("_Plant", float, NDArray[np.float64])
+
+
+def _effect(
+    fault: Fault, level: _Plant, plant: tuple[_Plant, _Plant, _Plant, _Plant, _Plant]
+) -> tuple[_Plant, _Plant, _Plant, _Plant, _Plant]:
+    """Apply a fault other than a stuck actuator at ``level`` (0..1, one time or many).
+
+    ``plant`` is (gain, time constant, load, sensor bias, noise std); the same
+    operations serve :meth:`Loop.simulate` (arrays) and :class:`LoopRun` (floats).
+    """
+    gain, tau, load, bias, noise = plant
+    m = fault.magnitude
+    if fault.kind == "gain_loss":
+        gain = gain * (1.0 - m * level)
+    elif fault.kind == "slow_response":
+        tau = tau * (1.0 + m * level)
+    elif fault.kind == "offset":
+        load = load + m * level
+    elif fault.kind == "sensor_bias":
+        bias = bias + m * level
+    elif fault.kind == "noise_increase":
+        noise = noise * (1.0 + m * level)
+    else:
+        raise ValueError(f"{fault.kind!r} is not a change of the plant's parameters")
+    return gain, tau, load, bias, noise
+
+
 @dataclass(frozen=True)
 class Loop:
     """One simulated control loop (actuator -> measured output).
@@ -171,20 +199,13 @@ class Loop:
         noise = np.full(n, self.noise_std)
         u_eff = u.copy()
         for fault in faults:
-            p = fault.profile(t)
-            if fault.kind == "gain_loss":
-                gain = gain * (1.0 - fault.magnitude * p)
-            elif fault.kind == "slow_response":
-                tau = tau * (1.0 + fault.magnitude * p)
-            elif fault.kind == "offset":
-                load = load + fault.magnitude * p
-            elif fault.kind == "sensor_bias":
-                bias = bias + fault.magnitude * p
-            elif fault.kind == "noise_increase":
-                noise = noise * (1.0 + fault.magnitude * p)
-            else:  # stuck_actuator
+            if fault.kind == "stuck_actuator":
                 start = min(int(math.ceil(fault.start_s / ts)), n - 1)
                 u_eff[start:] = u[start]
+            else:
+                gain, tau, load, bias, noise = _effect(
+                    fault, fault.profile(t), (gain, tau, load, bias, noise)
+                )
         a1 = np.exp(-ts / tau)
         a2 = math.exp(-ts / self.second_time_constant_s) if self.second_time_constant_s else 0.0
         d = self.delay_samples
@@ -245,19 +266,12 @@ class LoopRun:
         bias, noise = 0.0, loop.noise_std
         stuck = False
         for fault in self.faults:
-            p = fault.level(t_s)
-            if fault.kind == "gain_loss":
-                gain = gain * (1.0 - fault.magnitude * p)
-            elif fault.kind == "slow_response":
-                tau = tau * (1.0 + fault.magnitude * p)
-            elif fault.kind == "offset":
-                load = load + fault.magnitude * p
-            elif fault.kind == "sensor_bias":
-                bias = bias + fault.magnitude * p
-            elif fault.kind == "noise_increase":
-                noise = noise * (1.0 + fault.magnitude * p)
-            else:  # stuck_actuator: frozen where it was commanded when it stuck
+            if fault.kind == "stuck_actuator":  # frozen where it was commanded when it stuck
                 stuck = stuck or t_s >= fault.start_s
+            else:
+                gain, tau, load, bias, noise = _effect(
+                    fault, fault.level(t_s), (gain, tau, load, bias, noise)
+                )
         if stuck and self._stuck is None:
             self._stuck = u
         u_eff = self._stuck if stuck and self._stuck is not None else u
