@@ -931,10 +931,17 @@ def _baseline(r: _Reader, parent: Mapping[str, object], path: str) -> BaselineCo
     raw = r.mapping(parent["baseline"], path, ("learn_for_s", "file"))
     if ("learn_for_s" in raw) == ("file" in raw):
         raise r.expected(path, raw, "exactly one of learn_for_s and file")
-    if r.baseline_files_exist or raw.get("file") is None:
-        file = r.existing_file(raw, path, "file")
-    else:  # a file ``arxwatch baselines`` is about to write
+    if raw.get("file") is None:
+        file = None
+    else:
         file = Path(r.string(raw, path, "file", what="a file path"))
+        if r.baseline_files_exist and not file.is_file():
+            problem = "is not a regular file" if file.exists() else "does not exist"
+            raise r.fail(
+                _key(path, "file"),
+                f"file {str(file)!r} {problem}; 'arxwatch baselines --config FILE --input "
+                "HISTORY --write' fits and writes it from recorded data",
+            )
     return BaselineConfig(
         learn_for_s=r.optional_number(raw, path, "learn_for_s", positive=True),
         file=file,

@@ -214,7 +214,7 @@ def test_the_first_fit_writes_the_baseline_file_the_config_names(
     library = tmp_path / "vav.json"
     config = write_site(tmp_path, f"{{file: {library}}}")
     assert main(["check", "--config", str(config)]) == 2  # run and replay need the file
-    assert "baseline.file: file" in capsys.readouterr().err
+    assert "does not exist; 'arxwatch baselines --config FILE" in capsys.readouterr().err
     args = ["baselines", "--config", str(config), "--input", str(trend), "--to", FIT_END]
     assert main([*args, "--write"]) == 0
     assert f"wrote {library}" in capsys.readouterr().out
