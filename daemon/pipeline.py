@@ -4,6 +4,7 @@
 
     feed(topic, payload, arrival_s)   route -> decode -> align (IntakeBank)
                                       -> data-quality lifecycle
+    feed_row(columns, time_s, cells)  the same for a trend export row at once
     advance(now_s)                    close grid points -> rows
                                       -> live baseline learners, until a mode is accepted
                                       -> FleetMonitor: drift detectors and alert lifecycle
