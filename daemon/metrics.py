@@ -43,6 +43,10 @@ Counters, incremented as events happen
     Aligned rows produced (one per asset and grid point).
 ``arxwatch_grid_points_skipped_total``
     Grid points without a complete row.
+``arxwatch_sample_gaps_total``
+    Gaps in a checked signal's samples (an interval longer than its
+    ``gap_factor`` expected periods): outages, or messages a broker dropped
+    past its queue limit.
 ``arxwatch_rows_judged_total``
     Rows that went through the detectors.
 ``arxwatch_rows_not_judged_total`` (``reason``)
@@ -372,7 +376,7 @@ class DaemonMetrics:
     Attributes
     ----------
     messages_received, queue_overflows, topics_refused, payloads_rejected, samples,
-    rows, grid_points_skipped, rows_judged, rows_not_judged, alert_transitions,
+    rows, grid_points_skipped, sample_gaps, rows_judged, rows_not_judged, alert_transitions,
     alerts_published, baselines, mqtt_connects, mqtt_disconnects,
     mqtt_session_takeovers, mqtt_sessions_lost, checkpoints, checkpoint_failures : Counter
         Event counters, incremented by the daemon (labelled ones through
@@ -444,6 +448,10 @@ class DaemonMetrics:
         self.rows = counter("arxwatch_rows_total", "Aligned rows produced.")
         self.grid_points_skipped = counter(
             "arxwatch_grid_points_skipped_total", "Grid points without a complete row."
+        )
+        self.sample_gaps = counter(
+            "arxwatch_sample_gaps_total",
+            "Gaps in a checked signal's samples (longer than gap_factor expected periods).",
         )
         self.rows_judged = counter("arxwatch_rows_judged_total", "Rows judged by the detectors.")
         self.rows_not_judged = counter(

@@ -64,6 +64,7 @@ from arxwatch.daemon.fleet import FleetMonitor
 from arxwatch.daemon.intake import OUTCOMES, IntakeBank, RowBatch, cells_for
 from arxwatch.daemon.route import Refused, Router
 from arxwatch.estimators.baseline import BaselineSet, LiveBaselineLearner
+from arxwatch.estimators.detect.evidence import Evidence
 
 __all__ = ["FITS_PER_ADVANCE", "BaselineEvent", "Checkpoint", "Counts", "Pipeline", "TrendColumns"]
 
@@ -138,6 +139,10 @@ class Counts:
         Aligned rows produced.
     grid_points_skipped : int
         Grid points without a complete row.
+    sample_gaps : int
+        Gaps in the samples of a checked signal: an interval longer than its
+        ``gap_factor`` expected periods (a controller or network outage, or
+        messages a broker dropped past its queue limit).
     rows_judged : int
         Rows that reached a detector.
     rows_not_judged : Counter
@@ -154,6 +159,7 @@ class Counts:
     samples: Counter[str] = field(default_factory=Counter)
     rows: int = 0
     grid_points_skipped: int = 0
+    sample_gaps: int = 0
     rows_judged: int = 0
     rows_not_judged: Counter[str] = field(default_factory=Counter)
     transitions: Counter[tuple[str, str]] = field(default_factory=Counter)
@@ -469,7 +475,7 @@ class Pipeline:
             self.last_sample_s = sample.time_s
         if sample.time_s > state.frontier[slot]:
             state.frontier[slot] = sample.time_s
-        taken = state.intake.take_quality(state.needed)
+        taken = self._take_quality(state)
         fleet_slot = int(state.fleet_slot[slot])
         if taken and fleet_slot >= 0:
             quality = state.fleet.quality(fleet_slot, [ev for _, ev in taken], sample.time_s)
@@ -593,7 +599,7 @@ class Pipeline:
             if self.last_sample_s is None or time_s > self.last_sample_s:
                 self.last_sample_s = time_s
             np.maximum.at(state.frontier, slots[taken], time_s)
-        evidence = state.intake.take_quality(state.needed)
+        evidence = self._take_quality(state)
         for k in range(0, len(evidence), 3):  # a checked sample's three Evidence
             fleet_slot = int(state.fleet_slot[evidence[k][0]])
             if fleet_slot >= 0:
@@ -603,6 +609,12 @@ class Pipeline:
                 self._count_transitions(quality)
                 records += quality
         return records
+
+    def _take_quality(self, state: _Class) -> list[tuple[int, Evidence]]:
+        """Return the intake's quality evidence since the last take; count the gaps in it."""
+        taken = state.intake.take_quality(state.needed)
+        self.counts.sample_gaps += sum(1 for _, ev in taken if ev.alarm and ev.detector == "gap")
+        return taken
 
     # -- the grid -------------------------------------------------------------
     def advance(self, now_s: float | None = None) -> list[dict[str, Any]]:

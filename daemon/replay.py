@@ -256,6 +256,8 @@ def describe(summary: ReplaySummary, reader: HistoryReader) -> list[str]:
         f"row {counts.grid_points_skipped:,}"
     )
     lines.append("samples: " + _tally(counts.samples))
+    if counts.sample_gaps:
+        lines.append(f"gaps in the samples of checked signals: {counts.sample_gaps:,}")
     if counts.rejected:
         lines.append("payloads rejected: " + _tally(counts.rejected))
     if counts.refused:

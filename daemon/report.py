@@ -534,6 +534,7 @@ def _summary_tables(summary: ReplayFacts, c: ReportCollector) -> str:
     quality.update({f"payload rejected: {k}": v for k, v in counts.rejected.items()})
     quality.update({f"topic refused: {k}": v for k, v in counts.refused.items()})
     quality["grid points without a complete row"] = counts.grid_points_skipped
+    quality["gaps in a checked signal's samples"] = counts.sample_gaps
     judged = {"judged": counts.rows_judged, **dict(counts.rows_not_judged)}
     return (
         "<h2>Summary</h2>"

@@ -183,6 +183,7 @@ class _Meter:
             m.samples.labels(outcome).inc(n)
         _inc(m.rows, counts.rows - seen.rows)
         _inc(m.grid_points_skipped, counts.grid_points_skipped - seen.grid_points_skipped)
+        _inc(m.sample_gaps, counts.sample_gaps - seen.sample_gaps)
         _inc(m.rows_judged, counts.rows_judged - seen.rows_judged)
         for reason, n in (counts.rows_not_judged - seen.rows_not_judged).items():
             m.rows_not_judged.labels(reason).inc(n)
@@ -197,6 +198,7 @@ class _Meter:
             samples=counts.samples.copy(),
             rows=counts.rows,
             grid_points_skipped=counts.grid_points_skipped,
+            sample_gaps=counts.sample_gaps,
             rows_judged=counts.rows_judged,
             rows_not_judged=counts.rows_not_judged.copy(),
             transitions=counts.transitions.copy(),

@@ -323,3 +323,44 @@ def test_bad_config_and_missing_baselines_fail_clearly(tmp_path: Path) -> None:
     )
     assert done.returncode == 2
     assert "asset_classes: expected a list of at least 1 entry" in done.stderr
+
+
+def test_messages_the_broker_drops_while_down_show_as_gaps(
+    tmp_path: Path, make_broker: MakeBroker, make_probe: Any, baseline_set: BaselineSet
+) -> None:
+    # mosquitto keeps at most max_queued_messages for an offline client and drops the
+    # rest silently (its documented default is 1000; 5 here): the daemon cannot know
+    # what was lost, but sees the hole in each signal's samples and counts it.
+    broker = make_broker(persistence=True, max_queued_messages=5)
+    baselines = tmp_path / "vav-baselines.json"
+    write_baselines(baselines, dict.fromkeys(ASSETS, baseline_set), time.time())
+    metrics = free_port()
+    config = tmp_path / "site.yaml"
+    config.write_text(
+        SITE.format(
+            port=broker.port, metrics=metrics, state=tmp_path / "state.db", baselines=baselines
+        )
+    )
+    daemon = Daemon(config, metrics, tmp_path / "daemon.log")
+    start = float(int(time.time())) - SAMPLES - 60
+    items = messages(start)[: 6 * 200]  # 200 grid points of the three boxes
+    publisher = make_probe(broker)
+    try:
+        daemon.start()
+        publish(publisher, items[: 6 * 100])
+        assert wait_for(lambda: daemon.value("arxwatch_rows_total") >= 3 * 99, 30.0), daemon.log()
+        assert daemon.value("arxwatch_sample_gaps_total") == 0
+        assert daemon.terminate() == 0
+        publish(publisher, items[6 * 100 : 6 * 140])  # 240 messages while down: 5 are kept
+        daemon.start()
+        publish(publisher, items[6 * 140 :])
+        # counters start again with the process: the rows after the restart
+        assert wait_for(lambda: daemon.value("arxwatch_rows_total") >= 3 * 50, 30.0), daemon.log()
+        # every signal of every box has a hole of about 40 samples: six gaps
+        assert wait_for(lambda: daemon.value("arxwatch_sample_gaps_total") >= 6, 10.0)
+        assert daemon.value("arxwatch_sample_gaps_total") == 6
+        assert daemon.value("arxwatch_mqtt_messages_received_total") <= 5 + 6 * 60
+        assert daemon.terminate() == 0
+        assert "Traceback" not in daemon.log()
+    finally:
+        daemon.kill()

@@ -121,6 +121,7 @@ EXPECTED = {  # family name as parsed -> (type, label names)
     "arxwatch_samples": ("counter", {"outcome"}),
     "arxwatch_rows": ("counter", set()),
     "arxwatch_grid_points_skipped": ("counter", set()),
+    "arxwatch_sample_gaps": ("counter", set()),
     "arxwatch_rows_judged": ("counter", set()),
     "arxwatch_rows_not_judged": ("counter", {"reason"}),
     "arxwatch_alert_transitions": ("counter", {"detector", "state"}),

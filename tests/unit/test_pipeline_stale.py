@@ -63,6 +63,8 @@ def test_a_stale_alert_clears_after_the_point_comes_back(tmp_path: Path) -> None
         for check_s in (time_s + 10.0, time_s + 40.0):  # a stale check twice a period
             got += [(r["detector"], r["state"]) for r in pipeline.check_stale(check_s)]
             expected += [(r["detector"], r["state"]) for r in reference.check_stale(check_s)]
+    # the zone temperature's return after 21 periods is one gap in its samples
+    assert pipeline.counts.sample_gaps == 1
     stale = [state for detector, state in got if detector == "stale"]
     assert stale[0] == "raised" and stale[-1] == "cleared", got
     assert [g for g in got if g[0] == "stale"] == [e for e in expected if e[0] == "stale"]
