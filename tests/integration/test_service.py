@@ -142,22 +142,28 @@ def baseline_set() -> BaselineSet:
     return BaselineSet((result.baseline,))
 
 
-@pytest.fixture
-def site(tmp_path: Path, make_broker: MakeBroker, baseline_set: BaselineSet) -> Iterator[dict]:
-    broker = make_broker(persistence=True, max_queued_messages=100_000)
-    baselines = tmp_path / "vav-baselines.json"
+def write_site(folder: Path, broker: Broker, baseline_set: BaselineSet) -> Daemon:
+    """Write the site config and its baseline file into ``folder``; return its daemon."""
+    baselines = folder / "vav-baselines.json"
     write_baselines(baselines, dict.fromkeys(ASSETS, baseline_set), time.time())
     metrics = free_port()
-    config = tmp_path / "site.yaml"
+    config = folder / "site.yaml"
     config.write_text(
         SITE.format(
             port=broker.port,
             metrics=metrics,
-            state=tmp_path / "state" / "state.db",
+            state=folder / "state" / "state.db",
             baselines=baselines,
         )
     )
-    daemon = Daemon(config, metrics, tmp_path / "daemon.log")
+    return Daemon(config, metrics, folder / "daemon.log")
+
+
+@pytest.fixture
+def site(tmp_path: Path, make_broker: MakeBroker, baseline_set: BaselineSet) -> Iterator[dict]:
+    broker = make_broker(persistence=True, max_queued_messages=100_000)
+    daemon = write_site(tmp_path, broker, baseline_set)
+    config = daemon.config
     try:
         yield {"broker": broker, "daemon": daemon, "config": config}
     finally:
@@ -332,16 +338,7 @@ def test_messages_the_broker_drops_while_down_show_as_gaps(
     # rest silently (its documented default is 1000; 5 here): the daemon cannot know
     # what was lost, but sees the hole in each signal's samples and counts it.
     broker = make_broker(persistence=True, max_queued_messages=5)
-    baselines = tmp_path / "vav-baselines.json"
-    write_baselines(baselines, dict.fromkeys(ASSETS, baseline_set), time.time())
-    metrics = free_port()
-    config = tmp_path / "site.yaml"
-    config.write_text(
-        SITE.format(
-            port=broker.port, metrics=metrics, state=tmp_path / "state.db", baselines=baselines
-        )
-    )
-    daemon = Daemon(config, metrics, tmp_path / "daemon.log")
+    daemon = write_site(tmp_path, broker, baseline_set)
     start = float(int(time.time())) - SAMPLES - 60
     items = messages(start)[: 6 * 200]  # 200 grid points of the three boxes
     publisher = make_probe(broker)
