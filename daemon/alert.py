@@ -55,12 +55,17 @@ class SignalNames:
         Input points in model order, e.g. ``("cooling valve",)``.
     input_units : tuple of str
         Their units, e.g. ``("%",)``.
+    points : tuple of str, optional
+        The signals as the topics name them (``"sat"``, ``"chw-valve"``),
+        output then inputs, so that data-quality readings can give the site
+        name beside it; empty: readings give the topic's name alone.
     """
 
     output: str
     output_unit: str
     inputs: tuple[str, ...]
     input_units: tuple[str, ...]
+    points: tuple[str, ...] = ()
 
     def __post_init__(self) -> None:
         if len(self.inputs) != len(self.input_units):
@@ -68,6 +73,18 @@ class SignalNames:
                 f"inputs and input_units need one entry each, got {len(self.inputs)} "
                 f"and {len(self.input_units)}"
             )
+        if self.points and len(self.points) != 1 + len(self.inputs):
+            raise ValueError(
+                f"points need one entry for the output and each input, got {len(self.points)} "
+                f"for {1 + len(self.inputs)} signals"
+            )
+
+    def describe(self, point: str) -> str:
+        """Return ``"site name (point)"`` for a known point, else the point itself."""
+        if point in self.points:
+            name = (self.output, *self.inputs)[self.points.index(point)]
+            return f"{name} ({point})"
+        return point
 
 
 def iso_utc(time_s: float) -> str:
@@ -133,7 +150,7 @@ def reading(evidence: Evidence, names: SignalNames, sigma: float) -> str:
         )
     if kind == "physical_band":
         return _band_reading(evidence, names)
-    return _quality_reading(evidence)
+    return _quality_reading(evidence, names)
 
 
 def _band_reading(evidence: Evidence, names: SignalNames) -> str:
@@ -185,8 +202,8 @@ def _band_reading(evidence: Evidence, names: SignalNames) -> str:
     )
 
 
-def _quality_reading(evidence: Evidence) -> str:
-    v, signal, kind = evidence.values, evidence.signal, evidence.detector
+def _quality_reading(evidence: Evidence, names: SignalNames) -> str:
+    v, signal, kind = evidence.values, names.describe(evidence.signal), evidence.detector
     if kind == "stale":
         return (
             f"{signal}: no sample for {v['age_s']:.0f} s: check the controller, the "

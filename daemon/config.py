@@ -1192,6 +1192,7 @@ class AssetClassConfig:
             self.output.unit,
             tuple(s.name for s in self.inputs),
             tuple(s.unit for s in self.inputs),
+            points=(self.output.signal, *(s.signal for s in self.inputs)),
         )
 
     def quality_configs(self) -> dict[str, QualityConfig]:

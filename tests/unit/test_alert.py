@@ -64,6 +64,12 @@ def test_readings_per_detector() -> None:
         "stale", "data_quality", 900.0, 300.0, True, "ahu-1/sat", {"age_s": 900.0}, "stale"
     )
     assert reading(stale, NAMES, 0.05).startswith("ahu-1/sat: no sample for 900 s")
+    # with the topics' signal names known, the site name comes first
+    named = SignalNames("supply-air temperature", "degC", ("cooling valve",), ("%",), ("sat", "cv"))
+    stale = Evidence("stale", "data_quality", 900.0, 300.0, True, "sat", {"age_s": 900.0}, "stale")
+    assert reading(stale, named, 0.05).startswith("supply-air temperature (sat): no sample")
+    with pytest.raises(ValueError, match="points need one entry for the output and each input"):
+        SignalNames("supply-air temperature", "degC", ("cooling valve",), ("%",), ("sat",))
     with pytest.raises(ValueError, match="no reading for detector 'mystery'"):
         reading(Evidence("mystery", "behaviour", 1.0, 1.0, True, "x"), NAMES, 0.05)
 
