@@ -1,5 +1,6 @@
 """The pipeline: messages in, records out, as the per-asset reference objects give them."""
 
+import csv
 import json
 from collections.abc import Iterable, Iterator
 from pathlib import Path
@@ -93,6 +94,21 @@ def messages(plant: dict, lo: int, hi: int) -> Iterator[tuple[str, bytes, float,
             for signal, value, delay in (("zone-temp", y[k], 3.0), ("valve", u[k], 7.0)):
                 payload = json.dumps({"value": float(value), "ts": t}).encode()
                 yield f"larkspur/{building}/vav/{box}/{signal}", payload, t + delay, k
+
+
+def write_trend(path: Path, plant: dict, n: int) -> Path:
+    """Write the plant's first ``n`` grid points as a wide trend export (a column per topic)."""
+    topics = sorted({topic for topic, *_ in messages(plant, 0, 1)})
+    with path.open("w", newline="", encoding="utf-8") as handle:
+        out = csv.writer(handle)
+        out.writerow(["time", *topics])
+        row: dict[str, str] = {}
+        for topic, payload, _, k in messages(plant, 0, n):
+            row[topic] = repr(json.loads(payload)["value"])
+            if len(row) == len(topics):
+                out.writerow([f"{START + k * PERIOD:.0f}", *(row[t] for t in topics)])
+                row = {}
+    return path
 
 
 def run(pipe: Pipeline, plant: dict, lo: int, hi: int) -> list[dict]:

@@ -3,42 +3,16 @@
 import json
 from pathlib import Path
 
-import numpy as np
-
-from arxwatch.daemon.config import parse_config
-from arxwatch.daemon.library import read_baselines, write_baselines
+from arxwatch.daemon.library import read_baselines
 from arxwatch.daemon.monitor import AssetMonitor
 from arxwatch.daemon.pipeline import Pipeline
-from arxwatch.daemon.simulate import REFERENCE_LOOPS, daily_operation
-from arxwatch.estimators.baseline import BaselineSet, fit_baseline
-
-PERIOD = 60.0
-START = 1_767_225_600.0  # 2026-01-01T00:00:00Z
-LOOP = REFERENCE_LOOPS["first-order+dead-time"]
-SITE = """
-broker: {{host: 127.0.0.1, client_id: arxwatch-test}}
-state: {{path: /tmp/unused.db}}
-asset_classes:
-  - name: vav
-    pattern: "larkspur/{{building}}/vav/{{asset}}/{{signal}}"
-    asset_id: "{{building}}/{{asset}}"
-    sample_period_s: 60
-    output: {{signal: zone-temp, name: zone temperature, unit: degC, min: -10, max: 40}}
-    inputs:
-      - {{signal: valve, name: reheat valve, unit: "%", min: 0, max: 100}}
-    model: auto
-    baseline: {{file: {path}}}
-"""
+from arxwatch.daemon.simulate import daily_operation
+from tests.unit.test_pipeline import LOOP, PERIOD, START, site, write_library
 
 
 def test_a_stale_alert_clears_after_the_point_comes_back(tmp_path: Path) -> None:
-    u = daily_operation(2 * 1440, PERIOD, seed=1)
-    t = START - 3 * 86400.0 + np.arange(len(u)) * PERIOD
-    fit = fit_baseline(LOOP.simulate(u, seed=2), u[:, None], t, sample_period_s=PERIOD)
-    assert fit.baseline is not None
-    path = tmp_path / "vav.json"
-    write_baselines(path, {"block-a/vav-1": BaselineSet((fit.baseline,))}, START)
-    config = parse_config(SITE.format(path=path), "site.yaml")
+    path = write_library(tmp_path / "vav.json", ["block-a/vav-1"])
+    config = site(f"{{file: {path}}}")
     pipeline = Pipeline(config, {"vav": read_baselines(path)})
     asset_class = config.asset_classes[0]
     reference = AssetMonitor(

@@ -1,6 +1,5 @@
 """Replay: a capture and the same data as a trend export give the alerts live processing gives."""
 
-import csv
 import json
 from pathlib import Path
 
@@ -11,14 +10,13 @@ from arxwatch.daemon.history import CaptureWriter, HistoryReader
 from arxwatch.daemon.pipeline import Pipeline
 from arxwatch.daemon.replay import replay
 from tests.unit.test_pipeline import (
-    PERIOD,
     SITE,
-    START,
     file_site,
     make_plant,
     messages,
     run,
     write_library,
+    write_trend,
 )
 
 N = 900  # grid points: 15 h, past the gain loss of block-a/vav-2 at noon
@@ -48,17 +46,7 @@ def recorded(tmp_path_factory: pytest.TempPathFactory, plant: dict) -> dict[str,
     with CaptureWriter(capture) as writer:
         for topic, payload, arrival, _ in messages(plant, 0, N):
             writer.write(arrival, topic, payload)
-    topics = sorted({topic for topic, *_ in messages(plant, 0, 1)})
-    trend = folder / "trend.csv"
-    with trend.open("w", newline="", encoding="utf-8") as handle:
-        out = csv.writer(handle)
-        out.writerow(["time", *topics])
-        row: dict[str, str] = {}
-        for topic, payload, _, k in messages(plant, 0, N):
-            row[topic] = repr(json.loads(payload)["value"])
-            if len(row) == len(topics):
-                out.writerow([f"{START + k * PERIOD:.0f}", *(row[t] for t in topics)])
-                row = {}
+    trend = write_trend(folder / "trend.csv", plant, N)
     return {"capture": capture, "csv": trend}
 
 

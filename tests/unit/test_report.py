@@ -2,7 +2,6 @@
 
 import base64
 import contextlib
-import csv
 import json
 import os
 import re
@@ -42,8 +41,8 @@ from tests.unit.test_pipeline import (
     START,
     file_site,
     make_plant,
-    messages,
     write_library,
+    write_trend,
 )
 
 N = 1100  # grid points: 18 h, past the gain loss of block-a/vav-2 at noon and its read-out alerts
@@ -65,17 +64,7 @@ def site(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
     library = write_library(folder / "vav.json", plant)
     config = folder / "site.yaml"
     config.write_text(SITE.format(baseline=f"{{file: {library}}}", model="auto"))
-    topics = sorted({topic for topic, *_ in messages(plant, 0, 1)})
-    trend = folder / "trend.csv"
-    with trend.open("w", newline="", encoding="utf-8") as handle:
-        out = csv.writer(handle)
-        out.writerow(["time", *topics])
-        row: dict[str, str] = {}
-        for topic, payload, _, k in messages(plant, 0, N):
-            row[topic] = repr(json.loads(payload)["value"])
-            if len(row) == len(topics):
-                out.writerow([f"{START + k * PERIOD:.0f}", *(row[t] for t in topics)])
-                row = {}
+    trend = write_trend(folder / "trend.csv", plant, N)
     return {"config": config, "trend": trend, "library": library, "folder": folder}
 
 
