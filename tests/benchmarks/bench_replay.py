@@ -23,75 +23,46 @@ from __future__ import annotations
 import argparse
 import csv
 import io
+import sys
 import tempfile
 import time
 from pathlib import Path
 
 import numpy as np
 
-from arxwatch.daemon.config import parse_config
-from arxwatch.daemon.history import HistoryReader
-from arxwatch.daemon.library import read_site_baselines, write_baselines
-from arxwatch.daemon.pipeline import Pipeline
-from arxwatch.daemon.replay import REPLAY_EXTRA_CELLS, replay, write_records
-from arxwatch.daemon.simulate import REFERENCE_LOOPS, Fault, daily_operation
-from arxwatch.estimators.baseline import BaselineSet, fit_baseline
+sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
 
-PERIOD = 60.0
-START = 1_767_225_600.0  # 2026-01-01T00:00:00Z
-LOOP = REFERENCE_LOOPS["first-order+dead-time"]
-SITE = """
-broker: {{host: 127.0.0.1, client_id: arxwatch-bench}}
-state: {{path: {state}}}
-asset_classes:
-  - name: vav
-    pattern: "larkspur/{{building}}/vav/{{asset}}/{{signal}}"
-    asset_id: "{{building}}/{{asset}}"
-    sample_period_s: 60
-    output: {{signal: zone-temp, name: zone temperature, unit: degC, min: -10, max: 40}}
-    inputs:
-      - {{signal: valve, name: reheat valve, unit: "%", min: 0, max: 100}}
-    model: auto
-    baseline: {{file: {library}}}
-"""
-
-
-def asset_name(a: int) -> str:
-    """Asset id ``block-x/vav-n`` of box ``a``."""
-    return f"block-{'abcd'[a % 4]}/vav-{a}"
+from arxwatch.daemon.config import parse_config  # noqa: E402
+from arxwatch.daemon.history import HistoryReader  # noqa: E402
+from arxwatch.daemon.library import read_site_baselines  # noqa: E402
+from arxwatch.daemon.pipeline import Pipeline  # noqa: E402
+from arxwatch.daemon.replay import REPLAY_EXTRA_CELLS, replay, write_records  # noqa: E402
+from arxwatch.daemon.simulate import Fault, daily_operation  # noqa: E402
+from tests.unit.test_pipeline import LOOP, PERIOD, SITE, START, write_library  # noqa: E402
 
 
 def write_site(folder: Path, assets: int, days: float) -> tuple[Path, Path]:
-    """Write the trend export and the site config (with its baseline file); return both paths."""
+    """Write the trend export, the baseline file and the config; return (trend, config).
+
+    The loop, baseline and config are those of ``tests/unit/test_pipeline.py``.
+    """
     n = int(days * 86400 / PERIOD)
-    u_base = daily_operation(2 * 1440, PERIOD, seed=1)
-    t_base = START - 3 * 86400.0 + np.arange(len(u_base)) * PERIOD
-    fit = fit_baseline(
-        LOOP.simulate(u_base, seed=2), u_base[:, None], t_base, sample_period_s=PERIOD
-    )
-    assert fit.baseline is not None, fit.reason
-    library = folder / "vav.json"
-    baselines = {asset_name(a): BaselineSet((fit.baseline,)) for a in range(assets)}
-    write_baselines(library, baselines, START)
-    columns = []
-    header = ["time"]
-    for a in range(assets):
+    names = [f"block-{'abcd'[a % 4]}/vav-{a}" for a in range(assets)]
+    library = write_library(folder / "vav.json", names)
+    header, columns = ["time"], []
+    for a, name in enumerate(names):
         u = daily_operation(n, PERIOD, seed=100 + a)
         faults = (Fault("gain_loss", start_s=n * PERIOD / 2, magnitude=0.4),) if a % 10 == 0 else ()
-        y = LOOP.simulate(u, faults, seed=1000 + a)
-        building, box = asset_name(a).split("/")
-        header += [
-            f"larkspur/{building}/vav/{box}/zone-temp",
-            f"larkspur/{building}/vav/{box}/valve",
-        ]
-        columns += [np.round(y, 3), np.round(u, 2)]
-    table = np.column_stack([START + np.arange(n) * PERIOD, *columns])
+        columns += [np.round(LOOP.simulate(u, faults, seed=1000 + a), 3), np.round(u, 2)]
+        building, box = name.split("/")
+        header += [f"larkspur/{building}/vav/{box}/{s}" for s in ("zone-temp", "valve")]
     trend = folder / "trend.csv"
     with trend.open("w", encoding="utf-8") as out:
         out.write(",".join(header) + "\n")
+        table = np.column_stack([START + np.arange(n) * PERIOD, *columns])
         np.savetxt(out, table, delimiter=",", fmt="%.10g")
     config = folder / "site.yaml"
-    config.write_text(SITE.format(state=folder / "state.db", library=library))
+    config.write_text(SITE.format(baseline=f"{{file: {library}}}", model="auto"))
     return trend, config
 
 

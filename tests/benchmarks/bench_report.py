@@ -37,17 +37,10 @@ from arxwatch.daemon.monitor import MonitorConfig  # noqa: E402
 from arxwatch.daemon.pipeline import Pipeline  # noqa: E402
 from arxwatch.daemon.replay import REPLAY_EXTRA_CELLS, replay  # noqa: E402
 from arxwatch.daemon.report import MAX_SECTIONS, ReportCollector, write_report  # noqa: E402
-from arxwatch.daemon.simulate import Fault, daily_operation  # noqa: E402
 from arxwatch.daemon.trace import FleetTrace  # noqa: E402
 from arxwatch.estimators.baseline import BaselineSet  # noqa: E402
-from tests.unit.test_pipeline import (  # noqa: E402
-    LOOP,
-    PERIOD,
-    SITE,
-    START,
-    reference_baseline,
-    write_library,
-)
+from tests.benchmarks.bench_replay import write_site  # noqa: E402
+from tests.unit.test_pipeline import PERIOD, START, reference_baseline  # noqa: E402
 
 
 def fill_trace(assets: int, days: float) -> None:
@@ -71,28 +64,6 @@ def fill_trace(assets: int, days: float) -> None:
         f"one stored row per {trace.every}, {len(trace.rows('vav-0')):,} rows an asset; "
         f"{seconds:.1f} s, {seconds / (n * assets) * 1e9:.0f} ns a row"
     )
-
-
-def write_site(folder: Path, assets: int, days: float) -> tuple[Path, Path]:
-    """Write the trend export, the baseline file and the config; return (trend, config)."""
-    n = int(days * 86400 / PERIOD)
-    names = [f"block-{'abcd'[a % 4]}/vav-{a}" for a in range(assets)]
-    library = write_library(folder / "vav.json", names)
-    header, columns = ["time"], []
-    for a, name in enumerate(names):
-        u = daily_operation(n, PERIOD, seed=100 + a)
-        faults = (Fault("gain_loss", start_s=n * PERIOD / 2, magnitude=0.4),) if a % 10 == 0 else ()
-        columns += [np.round(LOOP.simulate(u, faults, seed=1000 + a), 3), np.round(u, 2)]
-        building, box = name.split("/")
-        header += [f"larkspur/{building}/vav/{box}/{s}" for s in ("zone-temp", "valve")]
-    trend = folder / "trend.csv"
-    with trend.open("w", encoding="utf-8") as out:
-        out.write(",".join(header) + "\n")
-        table = np.column_stack([START + np.arange(n) * PERIOD, *columns])
-        np.savetxt(out, table, delimiter=",", fmt="%.10g")
-    config = folder / "site.yaml"
-    config.write_text(SITE.format(baseline=f"{{file: {library}}}", model="auto"))
-    return trend, config
 
 
 def main() -> None:
