@@ -117,6 +117,20 @@ def wait_online(watcher: Probe, capture: Capture) -> None:
             return
 
 
+def until_offline(watcher: Probe, capture: Capture) -> list[Any]:
+    """Return the messages the watcher got up to and including the capture's offline status."""
+    received = []
+    while True:
+        try:
+            message = watcher.next(20.0)
+        except queue.Empty:
+            pytest.fail(f"no offline status from the capture:\n{capture.log()}")
+        received.append(message)
+        if message.topic == f"arxwatch/{CAPTURE_ID}/status":
+            assert json.loads(message.payload)["state"] == "offline"
+            return received
+
+
 @pytest.mark.integration
 def test_capture_records_every_message_once_and_publishes_only_its_status(
     site: dict, make_probe: Any, start_capture: Any, tmp_path: Path
@@ -135,8 +149,9 @@ def test_capture_records_every_message_once_and_publishes_only_its_status(
 
     recorded = Counter((v.topic, v.payload) for v in HistoryReader(output))
     assert recorded == Counter(items)  # each once, nothing else
-    # on the broker: the published points and the capture's own status, nothing else
-    seen = set()
+    # on the broker: the published points and the capture's own status, nothing else;
+    # its offline status left with its last packets, so wait for it before draining
+    seen = {message.topic for message in until_offline(watcher, capture)}
     while not watcher.received.empty():
         seen.add(watcher.next(0.1).topic)
     assert seen - {topic for topic, _ in items} == {f"arxwatch/{CAPTURE_ID}/status"}
