@@ -9,7 +9,8 @@ Each (detector, signal) pair of an asset has its own episode state:
   ``raise_n`` evaluations reached ``critical_ratio`` times the threshold;
 * **raised -> cleared** after ``clear_n`` consecutive evaluations below
   ``clear_ratio`` times the threshold (hysteresis: a statistic hovering at
-  the threshold neither clears nor re-raises).
+  the threshold neither clears nor re-raises); an inconclusive evaluation
+  (``Evidence.conclusive`` false) never counts toward clearing.
 
 A statistic that wanders around its threshold therefore produces one raised
 record and, once it has settled clearly below, one cleared record, not a
@@ -163,7 +164,11 @@ class AlertTracker:
         episode.evaluations += 1
         if evidence.alarm and episode.first_seen_s is None:
             episode.first_seen_s = sample_time_s
-        quiet = evidence.statistic < policy.clear_ratio * evidence.threshold and not evidence.alarm
+        quiet = (
+            evidence.statistic < policy.clear_ratio * evidence.threshold
+            and not evidence.alarm
+            and evidence.conclusive
+        )
         episode.quiet_run = episode.quiet_run + 1 if quiet else 0
 
         if not episode.raised:
@@ -391,6 +396,7 @@ class TrackerBank:
         threshold: float,
         alarm: bool,
         time_s: float,
+        conclusive: bool = True,
     ) -> BankTransition | None:
         """Account one evaluation of one pair (the scalar path of :meth:`observe`).
 
@@ -417,7 +423,7 @@ class TrackerBank:
         first = float(self.first_seen_s[row, key])
         if alarm and math.isnan(first):
             first = time_s
-        quiet = statistic < policy.clear_ratio * threshold and not alarm
+        quiet = statistic < policy.clear_ratio * threshold and not alarm and conclusive
         run = min(int(self.quiet_run[row, key]), policy.clear_n) + 1 if quiet else 0
         severe = bool(self.critical[row, key])
         state: State | None = None
@@ -459,6 +465,7 @@ class TrackerBank:
         threshold: NDArray[np.float64] | float,
         alarm: NDArray[np.bool_],
         time_s: NDArray[np.float64] | float,
+        conclusive: NDArray[np.bool_] | None = None,
     ) -> list[BankTransition]:
         """Account one evaluation of key ``key`` for each of ``rows`` (distinct).
 
@@ -473,6 +480,8 @@ class TrackerBank:
             The evaluations, as the fields of :class:`Evidence`.
         time_s : array of shape (k,) or float
             Sample times.
+        conclusive : array of bool, shape (k,), optional
+            As :attr:`Evidence.conclusive`; all true when omitted.
 
         Returns
         -------
@@ -494,7 +503,13 @@ class TrackerBank:
                 rows = np.arange(rows.start, rows.stop, dtype=np.intp)
             picked = np.flatnonzero(busy)
             found = self.observe(
-                rows[picked], key, stat[picked], limit[picked], alarm[picked], when[picked]
+                rows[picked],
+                key,
+                stat[picked],
+                limit[picked],
+                alarm[picked],
+                when[picked],
+                None if conclusive is None else conclusive[picked],
             )
             return [
                 BankTransition(int(picked[t.position]), t.state, t.severity, t.first_seen_s)
@@ -510,6 +525,8 @@ class TrackerBank:
         first = self.first_seen_s[rows, key]
         first = np.where(alarm & np.isnan(first), when, first)
         quiet = (stat < policy.clear_ratio * limit) & ~alarm
+        if conclusive is not None:
+            quiet &= conclusive
         run = np.where(quiet, np.minimum(self.quiet_run[rows, key], policy.clear_n) + 1, 0)
         raised = self.raised[rows, key].copy()
         severe = self.critical[rows, key].copy()

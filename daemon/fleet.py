@@ -209,6 +209,10 @@ class _Group:
         # what the last step computed, by name, for a trace to read (FleetMonitor.trace):
         # references to arrays the step makes anyway, so keeping them costs nothing
         self.tap: dict[str, Any] = {}
+        # The baseline side of the evaluations by channel (first axis): tested
+        # features and their covariance, and the read-out features. It never
+        # changes for a channel, so add and load_state compute it once.
+        self.base_cache: dict[str, Float] = {}
         self._allocate(0)
 
     # -- storage ------------------------------------------------------------
@@ -267,6 +271,10 @@ class _Group:
             if name in self.arrays and keep:
                 grown[..., :keep] = self.arrays[name][..., :keep]
             self.arrays[name] = grown
+        for name, cached in self.base_cache.items():
+            resized = np.zeros((capacity, *cached.shape[1:]))
+            resized[:keep] = cached[:keep]
+            self.base_cache[name] = resized
         self.tracker.resize(capacity)
 
     @property
@@ -303,7 +311,25 @@ class _Group:
         )
         a["rls"][:, c] = estimator.to_state()["rls"]
         a["current"][:, c] = list(self.baseline_values(c).values())
+        self._cache_baselines(np.array([c], dtype=np.intp))
         return c
+
+    def _cache_baselines(self, channels: Index) -> None:
+        """Fill :attr:`base_cache` for ``channels`` (rows do not depend on their batch)."""
+        a = self.arrays
+        theta0 = a["theta0"][:, channels].T
+        cov0 = a["cov0"][:, channels].T[:, self.tri_index]
+        x0, c0 = self.drift.project(theta0, cov0)
+        computed = {
+            "x0": x0,
+            "c0": c0,
+            "features": feature_matrix(self.order, theta0, self.sample_period_s),
+        }
+        for name, values in computed.items():
+            cached = self.base_cache.get(name)
+            if cached is None:
+                cached = self.base_cache[name] = np.zeros((self.capacity, *values.shape[1:]))
+            cached[channels] = values
 
     def remove(self, c: int) -> None:
         self.arrays["used"][c] = False
@@ -359,6 +385,8 @@ class _Group:
             {k[len(prefix) :]: v for k, v in arrays.items() if k.startswith(prefix)}
         )
         self.free = [int(c) for c in meta["free"]]
+        self.base_cache = {}
+        self._cache_baselines(np.flatnonzero(self.arrays["used"]))
 
     # -- read-outs ----------------------------------------------------------
     def baseline_readout_values(self, c: int) -> tuple[Any, dict[str, float]]:
@@ -736,27 +764,28 @@ class _Group:
         if not settled.any():
             return []
         dp, dc, time_s = dp[settled], dc[settled], time_s[settled]
+        relearning = changing[settled]
         states = a["rls"][:, dc]
         thetas = states[layout.theta].T
         covs = parameter_covariances(layout, states)
         sigma2 = a["sigma2"][dc]
-        theta0 = a["theta0"][:, dc].T
-        cov0 = a["cov0"][:, dc].T[:, self.tri_index]
+        cache = self.base_cache
         found: list[tuple[int, int, Evidence, BankTransition]] = []
         # feature Wald test
-        x0, c0 = self.drift.project(theta0, cov0)
+        x0, c0 = cache["x0"][dc], cache["c0"][dc]
         x, cx = self.drift.project(thetas, covs)
         wald = self.drift.distances(x0, c0, x, cx)
         self.tap["evaluate"] = (dp, dc, wald)
+        # the reset covariance shrinks the distance: it cannot say "back to normal"
         transitions = self.tracker.observe(
-            dc, 3, wald.statistic, wald.threshold, wald.alarm, time_s
+            dc, 3, wald.statistic, wald.threshold, wald.alarm, time_s, ~relearning
         )
         for t in transitions:
             ev = self.drift.evidence(wald, x0, x, t.position)
             found.append((int(dp[t.position]), 3, ev, t))
         # physical bands (PhysicalBands.update, element-wise)
         live = feature_matrix(self.order, thetas, self.sample_period_s)
-        base = feature_matrix(self.order, theta0, self.sample_period_s)
+        base = cache["features"][dc]
         found += self._bands(dp, dc, live, base, np.sqrt(sigma2), time_s)
         # the live read-out the records show
         rss = a["rls"][layout.rss, dc]

@@ -32,7 +32,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
@@ -98,7 +98,9 @@ class MonitorConfig:
         multiplied by this (repeated covariance resetting) so that it
         follows the changing asset within a few hours instead of a whole
         memory, and its read-out does not wander through models that mix
-        the old and the new behaviour.
+        the old and the new behaviour. The Wald distance of such a reset
+        estimate is inconclusive (:attr:`Evidence.conclusive`): it can raise
+        ``feature_drift`` but not clear it.
     policy : AlertPolicy
         Persistence, hysteresis and severities.
     """
@@ -249,7 +251,8 @@ class _ModeMonitor:
         self.samples += 1
         if self.samples % config.evaluate_every != 0:
             return evidence
-        if any(key.split("/")[0] in CHANGE_DETECTORS for key in self.tracker.active()):
+        relearning = any(key.split("/")[0] in CHANGE_DETECTORS for key in self.tracker.active())
+        if relearning:
             # While an innovation alert stays up the asset is still changing:
             # keep the live estimate re-learning (repeated covariance resetting).
             self.estimator.inflate_covariance(config.reset_factor)
@@ -258,7 +261,8 @@ class _ModeMonitor:
             state = np.array(self.estimator.to_state()["rls"])[:, None]
             drift = self.drift.update(theta, parameter_covariances(self.estimator.layout, state)[0])
             if drift is not None:
-                evidence.append(drift)
+                # the reset covariance shrinks the distance: it cannot say "back to normal"
+                evidence.append(replace(drift, conclusive=not relearning))
             readout = read_out(self.baseline.order, theta, self.baseline.sample_period_s)
             evidence.extend(self.bands.update(readout))
             self.current_values = readout_values(

@@ -41,6 +41,12 @@ class Evidence:
     detail : str
         Short machine-readable qualifier, e.g. ``"high"``/``"low"`` for the
         side of a CUSUM, ``"stale"`` for a data-quality check; may be empty.
+    conclusive : bool
+        Whether a quiet statistic here means "no change" rather than "cannot
+        tell". A Wald distance taken while the live estimate's covariance is
+        being reset is small because the estimate is uncertain, not because
+        it is back at the baseline: such an evaluation may raise an alert but
+        must not count toward clearing one.
     """
 
     detector: str
@@ -51,6 +57,7 @@ class Evidence:
     signal: str
     values: Mapping[str, float] = field(default_factory=dict)
     detail: str = ""
+    conclusive: bool = True
 
     @property
     def ratio(self) -> float:

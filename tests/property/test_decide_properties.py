@@ -18,10 +18,12 @@ policies = st.builds(
     clear_ratio=st.sampled_from([0.5, 0.8, 1.0]),
     clear_n=st.integers(1, 6),
 )
-# statistic / threshold pairs around the decision levels, with zero thresholds
+# statistic / threshold pairs around the decision levels, with zero thresholds,
+# and whether the evaluation is conclusive (Evidence.conclusive)
 evaluations = st.tuples(
     st.sampled_from([0.0, 0.3, 0.79, 0.8, 0.95, 1.0, 1.7, 2.0, 3.5, 1e9]),
     st.sampled_from([1.0, 0.0, 2.5]),
+    st.sampled_from([True, True, False]),
 )
 
 
@@ -35,7 +37,7 @@ evaluations = st.tuples(
     ),
 )
 def test_bank_transitions_equal_per_asset_tracker(
-    policy: AlertPolicy, steps: list[list[tuple[int, tuple[float, float]]]]
+    policy: AlertPolicy, steps: list[list[tuple[int, tuple[float, float, bool]]]]
 ) -> None:
     if policy.raise_m > policy.raise_n or policy.critical_m > policy.raise_n:
         return
@@ -53,7 +55,8 @@ def test_bank_transitions_equal_per_asset_tracker(
             stat = np.array([chosen[r][0] * chosen[r][1] for r in idx.tolist()])
             limit = np.array([chosen[r][1] for r in idx.tolist()])
             alarm = stat >= limit
-            got = bank.observe(idx, key_index, stat, limit, alarm, float(t))
+            conclusive = np.array([chosen[r][2] for r in idx.tolist()])
+            got = bank.observe(idx, key_index, stat, limit, alarm, float(t), conclusive)
             expected = []
             for pos, row in enumerate(idx.tolist()):
                 detector, signal = KEYS[key_index].split("/")
@@ -64,6 +67,7 @@ def test_bank_transitions_equal_per_asset_tracker(
                     float(limit[pos]),
                     bool(alarm[pos]),
                     signal,
+                    conclusive=bool(conclusive[pos]),
                 )
                 tr = trackers[row].observe(ev, float(t))
                 if tr is not None:
@@ -80,6 +84,7 @@ def test_bank_transitions_equal_per_asset_tracker(
                         float(limit[pos]),
                         bool(alarm[pos]),
                         float(t),
+                        bool(conclusive[pos]),
                     )
                 )
                 is not None

@@ -1,6 +1,7 @@
 """Alert lifecycle: persistence, hysteresis, severities, no flapping, state."""
 
 import json
+from dataclasses import replace
 
 import numpy as np
 import pytest
@@ -30,6 +31,23 @@ def test_raise_after_m_of_n_and_clear_after_quiet_run() -> None:
     policy = AlertPolicy(raise_m=3, raise_n=5, clear_n=4)
     events = run(AlertTracker(policy), [6, 1, 6, 6, 6, 1, 1, 1, 1, 1])
     assert events == [(3, "raised", "warning"), (8, "cleared", "warning")]
+
+
+def test_inconclusive_quiet_evaluations_do_not_clear() -> None:
+    # A quiet statistic that cannot tell "no change" from "cannot tell" (a Wald
+    # distance under a reset covariance) neither clears nor counts toward it.
+    policy = AlertPolicy(raise_m=3, raise_n=5, clear_n=4)
+    tracker = AlertTracker(policy)
+    for k, s in enumerate([6, 6, 6]):
+        tracker.observe(ev(s), float(k))
+    unsure = replace(ev(0.0), conclusive=False)
+    assert all(tracker.observe(unsure, 3.0 + k) is None for k in range(50))
+    # three conclusive quiet ones, an inconclusive one, then four: the run starts over
+    quiet = [tracker.observe(ev(0.0), 60.0 + k) for k in range(3)]
+    quiet.append(tracker.observe(unsure, 63.0))
+    assert quiet == [None] * 4
+    states = [tracker.observe(ev(0.0), 64.0 + k) for k in range(4)]
+    assert [t.state if t else None for t in states] == [None, None, None, "cleared"]
 
 
 def test_escalates_to_critical_once() -> None:
