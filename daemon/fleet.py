@@ -764,6 +764,7 @@ class _Group:
         if not settled.any():
             return []
         dp, dc, time_s = dp[settled], dc[settled], time_s[settled]
+        relearning = changing[settled]
         states = a["rls"][:, dc]
         thetas = states[layout.theta].T
         covs = parameter_covariances(layout, states)
@@ -775,8 +776,9 @@ class _Group:
         x, cx = self.drift.project(thetas, covs)
         wald = self.drift.distances(x0, c0, x, cx)
         self.tap["evaluate"] = (dp, dc, wald)
+        # the reset covariance shrinks the distance: it cannot say "back to normal"
         transitions = self.tracker.observe(
-            dc, 3, wald.statistic, wald.threshold, wald.alarm, time_s
+            dc, 3, wald.statistic, wald.threshold, wald.alarm, time_s, ~relearning
         )
         for t in transitions:
             ev = self.drift.evidence(wald, x0, x, t.position)
