@@ -34,7 +34,7 @@ from collections.abc import Callable, Collection, Mapping, Sequence
 from dataclasses import dataclass, replace
 from functools import partial
 from pathlib import Path
-from typing import Literal, TypeVar, cast
+from typing import Any, Literal, TypeVar, cast
 
 import yaml
 
@@ -966,6 +966,10 @@ class DetectorsConfig:
         Samples at the start of monitoring (and after a restart of the
         histories) from which the normal correlation of the innovations is
         learned; the innovation detectors judge nothing before.
+    raise_m, raise_n, clear_n : int or None
+        Alert lifecycle (:class:`~arxwatch.daemon.decide.AlertPolicy`): raise
+        when ``raise_m`` of the last ``raise_n`` evaluations alarm, clear
+        after ``clear_n`` quiet evaluations in a row.
     """
 
     cusum_h: float | None = None
@@ -976,6 +980,9 @@ class DetectorsConfig:
     time_constant_tolerance: float | None = None
     evaluate_every: int | None = None
     reference_samples: int | None = None
+    raise_m: int | None = None
+    raise_n: int | None = None
+    clear_n: int | None = None
 
 
 _DETECTOR_NUMBERS = (
@@ -986,21 +993,18 @@ _DETECTOR_NUMBERS = (
     "gain_tolerance",
     "time_constant_tolerance",
 )
-_DETECTOR_COUNTS = ("evaluate_every", "reference_samples")
+_POLICY_COUNTS = ("raise_m", "raise_n", "clear_n")
+_DETECTOR_COUNTS = ("evaluate_every", "reference_samples", *_POLICY_COUNTS)
 
 
 def _detectors(r: _Reader, parent: Mapping[str, object], path: str) -> DetectorsConfig:
     raw = r.section(parent, path, "detectors", (*_DETECTOR_NUMBERS, *_DETECTOR_COUNTS))
     path = _key(path, "detectors")
-    numbers = {key: r.optional_number(raw, path, key) for key in _DETECTOR_NUMBERS}
-    counts = {
-        key: r.integer(raw, path, key, low=1) if key in raw else None for key in _DETECTOR_COUNTS
-    }
-    return DetectorsConfig(
-        **numbers,
-        evaluate_every=counts["evaluate_every"],
-        reference_samples=counts["reference_samples"],
+    settings: dict[str, Any] = {key: r.optional_number(raw, path, key) for key in _DETECTOR_NUMBERS}
+    settings.update(
+        {key: r.integer(raw, path, key, low=1) if key in raw else None for key in _DETECTOR_COUNTS}
     )
+    return DetectorsConfig(**settings)
 
 
 @dataclass(frozen=True)
@@ -1149,6 +1153,10 @@ class AssetClassConfig:
                 ),
             ),
             evaluate_every=base.evaluate_every if d.evaluate_every is None else d.evaluate_every,
+            policy=replace(
+                base.policy,
+                **{k: getattr(d, k) for k in _POLICY_COUNTS if getattr(d, k) is not None},
+            ),
             prewhiten=(
                 base.prewhiten
                 if d.reference_samples is None
@@ -1302,9 +1310,14 @@ def _asset_class(r: _Reader, value: object, path: str, limits: LimitsConfig) -> 
         where = "mode.values" if needs_labels else "baseline.learn_for_s"
         r.build(_key(path, where), config.learner_config)
     for key in (*_DETECTOR_NUMBERS, *_DETECTOR_COUNTS):
-        if getattr(config.detectors, key) is not None:
+        if getattr(config.detectors, key) is not None and key not in _POLICY_COUNTS:
             alone = DetectorsConfig(**{key: getattr(config.detectors, key)})
             r.build(f"{path}.detectors.{key}", replace(config, detectors=alone).monitor_config)
+    # the lifecycle counts are checked together: raise_m must not exceed raise_n
+    policy = {k: getattr(config.detectors, k) for k in _POLICY_COUNTS}
+    if any(v is not None for v in policy.values()):
+        together = DetectorsConfig(**policy)
+        r.build(f"{path}.detectors", replace(config, detectors=together).monitor_config)
     return config
 
 
