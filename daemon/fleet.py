@@ -40,6 +40,7 @@ from numpy.typing import NDArray
 
 from arxwatch.daemon.alert import SignalNames, build_record
 from arxwatch.daemon.decide import BankTransition, TrackerBank, Transition
+from arxwatch.daemon.fleetnative import FLOAT_OUT, INT_OUT, innovation_kernel
 from arxwatch.daemon.monitor import (
     CHANGE_DETECTORS,
     MonitorConfig,
@@ -54,7 +55,7 @@ from arxwatch.estimators.detect.evidence import Evidence
 from arxwatch.estimators.detect.parameter import FeatureDrift, FeatureDriftConfig
 from arxwatch.estimators.detect.prewhiten import fit_reference
 from arxwatch.estimators.detect.whiteness import block_statistics, evidence_of_block
-from arxwatch.estimators.estimator import ArxEstimator
+from arxwatch.estimators.estimator import ArxEstimator, Backend, resolve_backend
 from arxwatch.estimators.readout import feature_matrix, feature_names, read_out
 from arxwatch.estimators.rls import TRACE_CHECK_EVERY, StateLayout, build_kernel
 
@@ -169,7 +170,9 @@ def _grown(size: int, capacity: int) -> int:
 class _Group:
     """Every channel whose baseline has one model order, in arrays."""
 
-    def __init__(self, order: ArxOrder, sample_period_s: float, config: MonitorConfig) -> None:
+    def __init__(
+        self, order: ArxOrder, sample_period_s: float, config: MonitorConfig, compiled: bool
+    ) -> None:
         self.order = order
         self.sample_period_s = sample_period_s
         self.config = config
@@ -192,6 +195,33 @@ class _Group:
         self.variance_upper = config.variance.upper_limit
         self.variance_lower = config.variance.lower_limit
         self.settle = config.settle_samples()
+        # the compiled innovation path (fleetnative) and its settings, or None
+        self.kernel_compiled = innovation_kernel() if compiled else None
+        self.structure = np.array(
+            [
+                order.na,
+                order.constant,
+                self.depth,
+                config.prewhiten.reference_samples,
+                config.whiteness.window,
+                config.cusum.after_alarm == "restart",
+                config.variance.lower,
+            ],
+            dtype=np.int64,
+        )
+        self.settings = np.array(
+            [
+                config.clip_sigma,
+                config.cusum.k,
+                config.cusum.h,
+                config.variance.lam,
+                1.0 / self.variance_lower if config.variance.lower else math.inf,
+                self.variance_upper,
+            ],
+            dtype=np.float64,
+        )
+        self.nb = np.array(order.nb, dtype=np.int64)
+        self.nk = np.array(order.nk, dtype=np.int64)
         self.drift = FeatureDrift(
             FeatureDriftConfig(
                 order=order, sample_period_s=sample_period_s, alpha=config.drift_alpha, every=1
@@ -448,11 +478,49 @@ class _Group:
             that caused it.
         """
         a, config = self.arrays, self.config
-        found: list[tuple[int, int, Evidence, BankTransition]] = []
-        self.tap = tap = {}
-        k = ch.shape[0]
+        self.tap = {}
         sel = _as_slice(ch)
-        every: Sel = slice(0, k)
+        every: Sel = slice(0, ch.shape[0])
+        if self.kernel_compiled is not None:
+            found, changing = self._innovate_compiled(ch, time_s, y, u)
+        else:
+            found, changing = self._innovate(sel, time_s, y, u)
+        # 2. the live estimate (ArxEstimator.update)
+        ready = a["rls_count"][sel] >= self.depth
+        y_hist = y.copy()
+        if ready.any():
+            rp, rc = _narrow(every, ready), _narrow(sel, ready)
+            u_t = np.ascontiguousarray(u[rp].T)
+            phi = self._regressor("rls", rc, list(u_t))
+            state = a["rls"][:, rc]  # a view for a slice: the kernel updates it in place
+            due = state[self.layout.n_updates] / TRACE_CHECK_EVERY
+            check = due == np.floor(due)
+            prediction, e, _, w, _, _ = self.kernel(list(state), phi, y[rp], list(u_t), check)
+            if not isinstance(rc, slice):
+                a["rls"][:, rc] = state
+            y_hist[rp] = prediction + w * e
+            a["samples"][rc] += 1
+        self._push("rls", sel, y_hist, u)
+        # 3. parameter-based evaluations, every evaluate_every samples per channel
+        if ready.any():
+            rp, rc = _narrow(every, ready), _narrow(sel, ready)
+            due_eval = a["samples"][rc] % config.evaluate_every == 0
+            if due_eval.any():
+                dp = _indices(rp)[due_eval]
+                found += self._evaluate(dp, _indices(rc)[due_eval], time_s[dp], changing[dp])
+        return found
+
+    def _innovate(
+        self, sel: Sel, time_s: Float, y: Float, u: Float
+    ) -> tuple[list[tuple[int, int, Evidence, BankTransition]], NDArray[np.bool_]]:
+        """Step 1 of :meth:`step` in numpy: the baseline residual, then the innovation detectors.
+
+        Returns the transitions and, per row, whether an innovation alert
+        was up before the row (``changing``).
+        """
+        a, config, tap = self.arrays, self.config, self.tap
+        found: list[tuple[int, int, Evidence, BankTransition]] = []
+        every: Sel = slice(0, y.shape[0])
         # _ModeMonitor.step reads the tracker before this row's evidence is observed
         changing = self.tracker.raised[sel, 0] | self.tracker.raised[sel, 1]
         # 1. the baseline model's normalised residual, winsorised
@@ -486,30 +554,70 @@ class _Group:
                 z = np.where(big, np.copysign(clip, z), z)
             found += self._innovations(rp, rc, time_s[rp], z)
         self._push("base", sel, y_past, u)
-        # 2. the live estimate (ArxEstimator.update)
-        ready = a["rls_count"][sel] >= self.depth
-        y_hist = y.copy()
+        return found, changing
+
+    def _innovate_compiled(
+        self, ch: Index, time_s: Float, y: Float, u: Float
+    ) -> tuple[list[tuple[int, int, Evidence, BankTransition]], NDArray[np.bool_]]:
+        """:meth:`_innovate` in one compiled call (:mod:`arxwatch.daemon.fleetnative`).
+
+        The kernel updates the state arrays; the rare steps and the tracker's
+        episodes touched (busy) are taken here, by the numpy path's code.
+        """
+        a, k, tracker = self.arrays, ch.shape[0], self.tracker
+        out_f = np.empty((len(FLOAT_OUT), k))
+        out_i = np.zeros((len(INT_OUT), k), dtype=np.int64)
+        assert self.kernel_compiled is not None
+        self.kernel_compiled(
+            ch,
+            np.ascontiguousarray(y),
+            np.ascontiguousarray(u),
+            self.structure,
+            self.nb,
+            self.nk,
+            *(a[name] for name in ("base_y", "base_u", "base_count", "theta0", "cov0", "sigma2")),
+            self.tri_index,
+            *(a[name] for name in ("pw_count", "pw_sums", "pw_head", "pw_past", "pw_scale")),
+            *(a[name] for name in ("c_high", "c_low", "n_high", "n_low", "var_s")),
+            *(a[name] for name in ("wh_count", "wh_sums", "wh_head", "wh_past")),
+            tracker.raised,
+            tracker.alarms,
+            self.settings,
+            out_f,
+            out_i,
+        )
+        f = dict(zip(FLOAT_OUT, out_f, strict=True))
+        i = dict(zip(INT_OUT, out_i, strict=True))
+        ready = i["ready"] != 0
         if ready.any():
-            rp, rc = _narrow(every, ready), _narrow(sel, ready)
-            u_t = np.ascontiguousarray(u[rp].T)
-            phi = self._regressor("rls", rc, list(u_t))
-            state = a["rls"][:, rc]  # a view for a slice: the kernel updates it in place
-            due = state[self.layout.n_updates] / TRACE_CHECK_EVERY
-            check = due == np.floor(due)
-            prediction, e, _, w, _, _ = self.kernel(list(state), phi, y[rp], list(u_t), check)
-            if not isinstance(rc, slice):
-                a["rls"][:, rc] = state
-            y_hist[rp] = prediction + w * e
-            a["samples"][rc] += 1
-        self._push("rls", sel, y_hist, u)
-        # 3. parameter-based evaluations, every evaluate_every samples per channel
-        if ready.any():
-            rp, rc = _narrow(every, ready), _narrow(sel, ready)
-            due_eval = a["samples"][rc] % config.evaluate_every == 0
-            if due_eval.any():
-                dp = _indices(rp)[due_eval]
-                found += self._evaluate(dp, _indices(rc)[due_eval], time_s[dp], changing[dp])
-        return found
+            self.tap["base"] = (ready, f["prediction"][ready], f["z"][ready])
+        for c in ch[i["fit"] != 0].tolist():
+            self._fit_prewhitener(c)
+        found: list[tuple[int, int, Evidence, BankTransition]] = []
+        judged = i["judged"] != 0
+        if not judged.any():
+            return found, i["changing"] != 0
+        self.tap["cusum"] = (judged, f["c_high"][judged], f["c_low"][judged])
+        busy = np.flatnonzero(i["cusum_busy"])
+        if busy.shape[0]:
+            cusum_h = float(self.config.cusum.h)
+            alarm = i["cusum_alarm"][busy] != 0
+            statistic = f["cusum_statistic"][busy]
+            for t in tracker.observe(ch[busy], 0, statistic, cusum_h, alarm, time_s[busy]):
+                r = int(busy[t.position])
+                ev = self._cusum_evidence(f["c_high"], f["c_low"], i["n_high"], i["n_low"], r)
+                found.append((r, 0, ev, t))
+        busy = np.flatnonzero(i["variance_busy"])
+        if busy.shape[0]:
+            statistic, threshold = f["variance_statistic"][busy], f["variance_threshold"][busy]
+            alarm = i["variance_alarm"][busy] != 0
+            for t in tracker.observe(ch[busy], 1, statistic, threshold, alarm, time_s[busy]):
+                r = int(busy[t.position])
+                found.append((r, 1, self._variance_evidence(float(f["variance_s"][r])), t))
+        ended = np.flatnonzero(i["block_ended"])
+        if ended.shape[0]:
+            found += self._end_blocks(ended, ch[ended], time_s[ended])
+        return found, i["changing"] != 0
 
     def _innovations(
         self, rp: Sel, rc: Sel, time_s: Float, z: Float
@@ -526,14 +634,7 @@ class _Group:
             count = a["pw_count"][cc] + 1
             a["pw_count"][cc] = count
             for c in cc[count >= config.prewhiten.reference_samples].tolist():
-                phi, scale = fit_reference(
-                    a["pw_sums"][:, c].tolist(),
-                    a["pw_head"][:, c].tolist(),
-                    a["pw_past"][:, c].tolist(),
-                    int(a["pw_count"][c]),
-                )
-                a["pw_head"][:, c] = phi
-                a["pw_scale"][c] = scale
+                self._fit_prewhitener(c)
         if not fitted.any():
             return found
         if not fitted.all():
@@ -554,6 +655,18 @@ class _Group:
         found += self._variance(rp, rc, time_s, eps)
         found += self._whiteness(rp, rc, time_s, eps)
         return found
+
+    def _fit_prewhitener(self, c: int) -> None:
+        """Fit channel ``c``'s prewhitening filter on its complete reference."""
+        a = self.arrays
+        phi, scale = fit_reference(
+            a["pw_sums"][:, c].tolist(),
+            a["pw_head"][:, c].tolist(),
+            a["pw_past"][:, c].tolist(),
+            int(a["pw_count"][c]),
+        )
+        a["pw_head"][:, c] = phi
+        a["pw_scale"][c] = scale
 
     def _add_values(self, cc: Sel, x: Float, prefix: str) -> None:
         """:func:`arxwatch.estimators.detect._sums.add_value` for each channel of ``cc``."""
@@ -721,8 +834,13 @@ class _Group:
         ended = count >= self.config.whiteness.window
         if not ended.any():
             return []
-        ep, ec, et = _indices(rp)[ended], _indices(rc)[ended], time_s[ended]
-        config = self.config.whiteness
+        return self._end_blocks(_indices(rp)[ended], _indices(rc)[ended], time_s[ended])
+
+    def _end_blocks(
+        self, ep: Index, ec: Index, et: Float
+    ) -> list[tuple[int, int, Evidence, BankTransition]]:
+        """Test the complete whiteness blocks of channels ``ec`` (at ``ep``); restart them."""
+        a, config = self.arrays, self.config.whiteness
         centred = centred_sums(
             a["wh_sums"][:, ec], a["wh_head"][:, ec], a["wh_past"][:, ec], a["wh_count"][ec]
         )
@@ -901,6 +1019,20 @@ class FleetMonitor:
         Detector and lifecycle settings shared by the class.
     quality_signals : sequence of str, optional
         Signals whose data-quality evidence :meth:`quality` will be given.
+    backend : {"python", "compiled", "auto"}, optional
+        How the innovation path of each row runs: ``"python"`` (default),
+        numpy calls per sample time, always available; ``"compiled"``, one
+        call into code compiled by numba (:mod:`arxwatch.daemon.fleetnative`,
+        the optional ``fast`` extra; compiled at the first monitor of a
+        process, or read from numba's cache); ``"auto"``, compiled when numba
+        can be imported. The records and state are the same, bit for bit.
+
+    Raises
+    ------
+    ValueError
+        If ``backend`` is not one of these names.
+    ImportError
+        If ``backend`` is ``"compiled"`` and numba is not installed.
 
     Examples
     --------
@@ -923,9 +1055,11 @@ class FleetMonitor:
         names: SignalNames,
         config: MonitorConfig | None = None,
         quality_signals: Sequence[str] = (),
+        backend: Backend = "python",
     ) -> None:
         self.names = names
         self.config = config if config is not None else MonitorConfig()
+        self.backend = resolve_backend(backend)
         self._groups: list[_Group] = []
         self._group_of: dict[tuple[ArxOrder, float], int] = {}
         self._ids: list[str | None] = []
@@ -944,7 +1078,9 @@ class FleetMonitor:
         )
         self._quality_key = {key: i for i, key in enumerate(self.quality_keys)}
         self._quality = (
-            TrackerBank(self.config.policy, self.quality_keys, 0) if self.quality_keys else None
+            TrackerBank(self.config.quality_policy, self.quality_keys, 0)
+            if self.quality_keys
+            else None
         )
         self.skipped = 0
         self._trace: TraceSink | None = None
@@ -1081,7 +1217,9 @@ class FleetMonitor:
         g = self._group_of.get(key)
         if g is None:
             g = self._group_of[key] = len(self._groups)
-            self._groups.append(_Group(baseline.order, baseline.sample_period_s, self.config))
+            compiled = self.backend == "compiled"
+            group = _Group(baseline.order, baseline.sample_period_s, self.config, compiled)
+            self._groups.append(group)
         self._chan_group[slot, code] = g
         self._chan_index[slot, code] = self._groups[g].add(slot, code, baseline)
 
@@ -1473,16 +1611,18 @@ class FleetMonitor:
                 f"saved monitor checks quality of {meta['quality_keys']}, "
                 f"the configuration of {list(self.quality_keys)}"
             )
-        fresh = FleetMonitor(self.names, self.config, ())
+        fresh = FleetMonitor(self.names, self.config, (), self.backend)
         fresh.quality_keys = self.quality_keys
         fresh._quality_key = self._quality_key
         fresh._quality = (
-            TrackerBank(self.config.policy, self.quality_keys, 0) if self.quality_keys else None
+            TrackerBank(self.config.quality_policy, self.quality_keys, 0)
+            if self.quality_keys
+            else None
         )
         for g, group_meta in enumerate(meta["groups"]):
             order = decode_order(group_meta["order"], f"groups[{g}].order")
             period = float(group_meta["sample_period_s"])
-            group = _Group(order, period, self.config)
+            group = _Group(order, period, self.config, self.backend == "compiled")
             prefix = f"g{g}."
             group.load_state(
                 group_meta, {k[len(prefix) :]: v for k, v in arrays.items() if k.startswith(prefix)}

@@ -65,6 +65,7 @@ from arxwatch.daemon.intake import OUTCOMES, IntakeBank, RowBatch, cells_for
 from arxwatch.daemon.route import Refused, Router
 from arxwatch.estimators.baseline import BaselineSet, LiveBaselineLearner
 from arxwatch.estimators.detect.evidence import Evidence
+from arxwatch.estimators.estimator import Backend
 
 __all__ = ["FITS_PER_ADVANCE", "BaselineEvent", "Checkpoint", "Counts", "Pipeline", "TrendColumns"]
 
@@ -214,7 +215,14 @@ class Checkpoint:
 class _Class:
     """Everything of one asset class: alignment, learners, the fleet."""
 
-    def __init__(self, config: AssetClassConfig, *, from_file: bool, extra_cells: int = 0) -> None:
+    def __init__(
+        self,
+        config: AssetClassConfig,
+        *,
+        from_file: bool,
+        extra_cells: int = 0,
+        backend: Backend = "python",
+    ) -> None:
         self.config = config
         self.signals = config.signals
         self.signal_index = {signal: i for i, signal in enumerate(self.signals)}
@@ -242,7 +250,10 @@ class _Class:
         align = config.align_config()
         self.intake = IntakeBank(align, quality, cells=cells_for(align) + extra_cells)
         self.fleet = FleetMonitor(
-            config.signal_names(), config.monitor_config(), quality_signals=tuple(quality)
+            config.signal_names(),
+            config.monitor_config(),
+            quality_signals=tuple(quality),
+            backend=backend,
         )
         self.n_checked = len(quality)
         self.from_file = from_file
@@ -383,6 +394,10 @@ class Pipeline:
         export gives some, so that the grid closes (and the fleet steps)
         every few rows rather than every row: the same rows, in fewer and
         larger steps. Default 0.
+    backend : {"python", "compiled", "auto"}, optional
+        The fleet monitors' back end (:class:`FleetMonitor`): the same
+        records either way; ``"auto"`` compiles the per-row path when numba
+        is installed, for long runs such as a replay. Default ``"python"``.
 
     Raises
     ------
@@ -397,6 +412,7 @@ class Pipeline:
         libraries: Libraries | Callable[[], Libraries] | None = None,
         *,
         extra_cells: int = 0,
+        backend: Backend = "python",
     ) -> None:
         if extra_cells < 0:
             raise ValueError(f"extra_cells must be >= 0, got {extra_cells!r}")
@@ -404,7 +420,9 @@ class Pipeline:
         self.router: Router = config.router()
         self._libraries = libraries
         self._classes: dict[str, _Class] = {
-            c.name: _Class(c, from_file=c.baseline.file is not None, extra_cells=extra_cells)
+            c.name: _Class(
+                c, from_file=c.baseline.file is not None, extra_cells=extra_cells, backend=backend
+            )
             for c in config.asset_classes
         }
         if not callable(libraries):

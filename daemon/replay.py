@@ -340,7 +340,7 @@ def run_replay(
 
     progress = ProgressLine(reader, err, lambda: written) if err.isatty() else None
     extra = REPLAY_EXTRA_CELLS if reader.kind == "csv" else 0
-    pipeline = Pipeline(config, libraries, extra_cells=extra)
+    pipeline = Pipeline(config, libraries, extra_cells=extra, backend="auto")
     collector = ReportCollector(pipeline) if report_path is not None else None
     try:
         summary = replay(

@@ -6,7 +6,8 @@ compiles the *same* generated statements (:func:`~arxwatch.estimators.rls.
 kernel_source` with target ``"native"``) with numba, so an update costs one
 call into machine code. numba is an optional dependency (the ``fast``
 extra); it is imported on the first build, never when the package loads, and
-no other module of the package imports it.
+no other module of :mod:`arxwatch.estimators` imports it (the fleet monitor's
+compiled path, :mod:`arxwatch.daemon.fleetnative`, imports it the same way).
 
 Same bits as the pure kernel
 ----------------------------

@@ -66,11 +66,15 @@ def write_site(folder: Path, assets: int, days: float) -> tuple[Path, Path]:
     return trend, config
 
 
-def run_replay_once(trend: Path, config_path: Path) -> tuple[float, int, int, int]:
+def run_replay_once(
+    trend: Path, config_path: Path, backend: str = "auto"
+) -> tuple[float, int, int, int]:
     """Replay as ``arxwatch replay`` does; return (seconds, values, rows, alert records)."""
     started = time.perf_counter()
     config = parse_config(config_path.read_text(), str(config_path))
-    pipeline = Pipeline(config, read_site_baselines(config), extra_cells=REPLAY_EXTRA_CELLS)
+    pipeline = Pipeline(
+        config, read_site_baselines(config), extra_cells=REPLAY_EXTRA_CELLS, backend=backend
+    )
     reader = HistoryReader(trend)
     sink = io.StringIO()
     written = 0
@@ -101,6 +105,12 @@ def main() -> None:
     parser.add_argument("--assets", type=int, default=200)
     parser.add_argument("--days", type=float, default=30.0)
     parser.add_argument("--repeat", type=int, default=1)
+    parser.add_argument(
+        "--backend",
+        choices=("auto", "python", "compiled"),
+        default="auto",
+        help="the fleet's back end (arxwatch replay uses auto)",
+    )
     args = parser.parse_args()
     with tempfile.TemporaryDirectory(prefix="arxwatch-bench-replay-") as tmp:
         folder = Path(tmp)
@@ -112,7 +122,7 @@ def main() -> None:
             f"trend export {size / 2**20:.0f} MiB written in {time.perf_counter() - t0:.1f} s"
         )
         best_ref = min(read_reference(trend)[0] for _ in range(args.repeat))
-        runs = [run_replay_once(trend, config) for _ in range(args.repeat)]
+        runs = [run_replay_once(trend, config, args.backend) for _ in range(args.repeat)]
         seconds, values, rows, alerts = min(runs)
         print(f"reference (csv.reader + float per cell): {best_ref:.1f} s")
         print(

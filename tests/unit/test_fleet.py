@@ -15,12 +15,23 @@ from arxwatch.estimators.baseline import Baseline, BaselineSet, fit_baseline
 from arxwatch.estimators.detect.cusum import CusumConfig
 from arxwatch.estimators.detect.prewhiten import PrewhitenConfig
 from arxwatch.estimators.detect.quality import QualityConfig, SignalQuality
+from arxwatch.estimators.native import available
 
 LOOPS = ("first-order+dead-time", "second-order")
 SAMPLE_PERIOD_S = 60.0
 PER_DAY = 1440
 START_S = 1_767_225_600.0  # 2026-01-01T00:00:00Z
 NAMES = SignalNames("supply-air temperature", "degC", ("cooling valve",), ("%",))
+#: Both back ends of FleetMonitor; the compiled one needs the optional numba.
+BACKENDS = [
+    "python",
+    pytest.param(
+        "compiled",
+        marks=pytest.mark.skipif(
+            not available(), reason="numba is not installed (pip install '.[fast]')"
+        ),
+    ),
+]
 
 
 def _baseline(loop: str, mode: str | None, seed: int) -> Baseline:
@@ -89,11 +100,12 @@ def _run_both(
     assets: dict[str, tuple[BaselineSet, np.ndarray, np.ndarray, list[str | None]]],
     config: MonitorConfig,
     batch: Callable[[int], int],
+    backend: str = "python",
 ) -> tuple[dict[str, list[dict]], dict[str, list[dict]], FleetMonitor]:
     names = list(assets)
     n = len(next(iter(assets.values()))[1])
     scalar = {a: AssetMonitor(a, assets[a][0], NAMES, config) for a in names}
-    fleet = FleetMonitor(NAMES, config)
+    fleet = FleetMonitor(NAMES, config, backend=backend)
     slots = {a: fleet.add_asset(a, assets[a][0]) for a in names}
     expected: dict[str, list[dict]] = {a: [] for a in names}
     got: dict[str, list[dict]] = {a: [] for a in names}
@@ -134,8 +146,11 @@ def _run_both(
     ],
     ids=["defaults", "restart-cusum"],
 )
-def test_records_equal_per_asset_monitors(assets: dict, config: MonitorConfig) -> None:
-    expected, got, fleet = _run_both(assets, config, batch=lambda k: 1 + (k // 7) % 5)
+@pytest.mark.parametrize("backend", BACKENDS)
+def test_records_equal_per_asset_monitors(
+    assets: dict, config: MonitorConfig, backend: str
+) -> None:
+    expected, got, fleet = _run_both(assets, config, lambda k: 1 + (k // 7) % 5, backend)
     total = sum(len(v) for v in expected.values())
     assert total > 10  # the faults raise and clear alerts: the comparison is not vacuous
     kinds = {r["detector"] for v in expected.values() for r in v}
@@ -147,6 +162,27 @@ def test_records_equal_per_asset_monitors(assets: dict, config: MonitorConfig) -
         assert set(fleet.active(asset)) <= {
             f"{m}:{k}" for m in scalar_monitor._modes for k in fleet._groups[0].keys
         } | {f"{m}:{k}" for m in scalar_monitor._modes for k in fleet._groups[-1].keys}
+
+
+@pytest.mark.skipif(not available(), reason="numba is not installed (pip install '.[fast]')")
+def test_compiled_backend_leaves_the_same_state_bit_for_bit(assets: dict) -> None:
+    # The records agree (above); so must every state array, nan included,
+    # for a checkpoint of one back end to continue on the other.
+    config = MonitorConfig(cusum=CusumConfig(h=5.0, after_alarm="restart"))
+    states = []
+    for backend in ("python", "compiled"):
+        fleet = _run_both(assets, config, lambda k: 1 + k % 3, backend)[2]
+        states.append(fleet.to_state())
+    python, compiled = states
+    assert python["meta"] == compiled["meta"]
+    assert python["arrays"].keys() == compiled["arrays"].keys()
+    for name, array in python["arrays"].items():
+        assert array.tobytes() == compiled["arrays"][name].tobytes(), name
+
+
+def test_backend_is_checked() -> None:
+    with pytest.raises(ValueError, match="backend must be one of"):
+        FleetMonitor(NAMES, backend="fortran")  # type: ignore[arg-type]
 
 
 def test_quality_records_equal_per_asset_monitor(assets: dict) -> None:

@@ -1,0 +1,273 @@
+"""The fleet's per-row innovation path compiled with numba (optional).
+
+:meth:`FleetMonitor.step <arxwatch.daemon.fleet.FleetMonitor.step>` judges
+the rows of one sample time in about a hundred numpy calls per model order,
+whatever the number of assets: at a few hundred assets (a site's VAV boxes
+replayed from a trend export) the calls, not the arithmetic, take the time.
+This module does the innovation path of one group's rows in one call into
+machine code, a row at a time: the baseline model's residual and its
+winsorising, the regressor histories, prewhitening (the reference's running
+sums while it is collected, the AR filter after), CUSUM, the moving
+variance and the whiteness test's running sums, and which tracker episodes
+the evaluations touch. The rare steps (fitting a prewhitening filter, ending
+a whiteness block, the tracker's transitions, the evidence of a record) stay
+with the numpy code of :mod:`arxwatch.daemon.fleet`, as does the live RLS
+update.
+
+numba is the optional ``fast`` extra, as for
+:mod:`arxwatch.estimators.native`: it is imported on the first
+:func:`innovation_kernel` call, never when the package loads.
+
+Same bits as the numpy path
+---------------------------
+Every value is computed by the same IEEE-754 double operations in the same
+order as the element-wise numpy code of :class:`arxwatch.daemon.fleet._Group`
+(the sums over regressor entries in the same order, ``a - b + c * d / e``
+evaluated left to right as Python does), so the records and the state
+arrays agree to the last bit (``tests/unit/test_fleet.py`` runs both back
+ends against :class:`~arxwatch.daemon.monitor.AssetMonitor`). That holds
+because numba is used without ``fastmath`` (no reassociation, no fused
+multiply-add, see :mod:`arxwatch.estimators.native`), ``math.sqrt`` is
+correctly rounded like ``numpy.sqrt``, division follows numpy's rules
+(``error_model="numpy"``: a zero divisor gives inf or nan, not an
+exception), and the clamps spell out numpy's ``minimum``/``maximum``, which
+pass nan through.
+"""
+
+from __future__ import annotations
+
+import importlib
+import math
+from functools import lru_cache
+from typing import Any
+
+import numpy as np
+
+__all__ = ["FLOAT_OUT", "INT_OUT", "innovation_kernel"]
+
+#: Rows of the kernel's float output, by name.
+FLOAT_OUT = (
+    "prediction",
+    "z",
+    "c_high",
+    "c_low",
+    "cusum_statistic",
+    "variance_s",
+    "variance_statistic",
+    "variance_threshold",
+)
+#: Rows of the kernel's integer output, by name.
+INT_OUT = (
+    "changing",  # an innovation alert was up before the row (read before any update)
+    "ready",  # the baseline residual was computed
+    "judged",  # prewhitened: CUSUM, variance and whiteness were updated
+    "fit",  # the prewhitening reference is complete: fit the filter now
+    "n_high",
+    "n_low",
+    "cusum_alarm",
+    "cusum_busy",  # the CUSUM evaluation touches its tracker episode
+    "variance_alarm",
+    "variance_busy",
+    "block_ended",  # the whiteness block is complete: test it now
+)
+
+
+def _add_value(
+    sums: Any, head: Any, past: Any, c: int, count: int, x: float
+) -> None:  # pragma: no cover - compiled
+    """``_Group._add_values`` for one channel (``add_value`` of detect._sums)."""
+    lags = past.shape[0]
+    sums[0, c] += x
+    sums[1, c] += x * x
+    for lag in range(1, lags + 1):
+        if count >= lag:
+            sums[lag + 1, c] += x * past[lag - 1, c]
+    if count < lags:
+        head[count, c] = x
+    for q in range(lags - 1, 0, -1):
+        past[q, c] = past[q - 1, c]
+    if lags:
+        past[0, c] = x
+
+
+def _innovate(
+    ch: Any,
+    y: Any,
+    u: Any,
+    structure: Any,
+    nb: Any,
+    nk: Any,
+    base_y: Any,
+    base_u: Any,
+    base_count: Any,
+    theta0: Any,
+    cov0: Any,
+    sigma2: Any,
+    tri_index: Any,
+    pw_count: Any,
+    pw_sums: Any,
+    pw_head: Any,
+    pw_past: Any,
+    pw_scale: Any,
+    c_high: Any,
+    c_low: Any,
+    n_high: Any,
+    n_low: Any,
+    var_s: Any,
+    wh_count: Any,
+    wh_sums: Any,
+    wh_head: Any,
+    wh_past: Any,
+    raised: Any,
+    alarms: Any,
+    settings: Any,
+    out_f: Any,
+    out_i: Any,
+) -> None:  # pragma: no cover - compiled
+    """Run the innovation path for rows ``ch`` (see the module notes); fill ``out_f``/``out_i``.
+
+    ``structure`` holds (na, constant, depth, reference_samples, window,
+    cusum restart, variance lower); ``settings`` (clip, cusum k, cusum h,
+    variance lambda, 1 / lower limit, upper limit). The state arrays are
+    updated in place, channel on the last axis.
+    """
+    na, constant, depth = structure[0], structure[1], structure[2]
+    reference, window = structure[3], structure[4]
+    restart, lower = structure[5], structure[6]
+    clip, k_ref, h = settings[0], settings[1], settings[2]
+    lam, low_threshold, upper = settings[3], settings[4], settings[5]
+    keep = 1.0 - lam
+    m = nb.shape[0]
+    n = theta0.shape[0]
+    p = pw_past.shape[0]
+    hist_u = base_u.shape[1]
+    phi = np.empty(n)
+    for i in range(ch.shape[0]):
+        c = ch[i]
+        yi = y[i]
+        y_past = yi
+        out_i[0, i] = raised[c, 0] or raised[c, 1]
+        if base_count[c] >= depth:
+            # 1. the baseline model's normalised residual (_Group.step)
+            j = 0
+            for a in range(na):
+                phi[j] = -base_y[a, c]
+                j += 1
+            for q in range(m):
+                for lag in range(nk[q], nk[q] + nb[q]):
+                    phi[j] = u[i, q] if lag == 0 else base_u[q, lag - 1, c]
+                    j += 1
+            if constant:
+                phi[j] = 1.0
+            prediction = 0.0
+            spread = 0.0
+            for j in range(n):
+                prediction += phi[j] * theta0[j, c]
+                inner = 0.0
+                for a in range(n):
+                    inner += cov0[tri_index[j, a], c] * phi[a]
+                spread += phi[j] * inner
+            e = yi - prediction
+            z = e / math.sqrt(sigma2[c] + spread)
+            if abs(z) > clip:
+                y_past = yi - e + e * clip / abs(z)
+                z = math.copysign(clip, z)
+            out_i[1, i] = 1
+            out_f[0, i] = prediction
+            out_f[1, i] = z
+            # 2. prewhitening (_Group._innovations)
+            count = pw_count[c]
+            if count < reference:
+                _add_value(pw_sums, pw_head, pw_past, c, count, z)
+                pw_count[c] = count + 1
+                out_i[3, i] = count + 1 >= reference
+            else:
+                predicted = 0.0
+                for q in range(p):
+                    predicted += pw_head[q, c] * pw_past[q, c]
+                for q in range(p - 1, 0, -1):
+                    pw_past[q, c] = pw_past[q - 1, c]
+                if p:
+                    pw_past[0, c] = z
+                eps = (z - predicted) / pw_scale[c]
+                # np.maximum(-clip, np.minimum(clip, eps)): nan stays nan
+                if eps > clip:
+                    eps = clip
+                if eps < -clip:
+                    eps = -clip
+                out_i[2, i] = 1
+                # 3. CUSUM (_Group._cusum)
+                hi = c_high[c] + eps - k_ref
+                nh = n_high[c] + 1 if hi > 0.0 else 0
+                if not hi > 0.0:
+                    hi = 0.0
+                lo = c_low[c] - eps - k_ref
+                nl = n_low[c] + 1 if lo > 0.0 else 0
+                if not lo > 0.0:
+                    lo = 0.0
+                statistic = hi if hi >= lo else lo
+                alarm = statistic >= h
+                out_f[2, i], out_f[3, i], out_f[4, i] = hi, lo, statistic
+                out_i[4, i], out_i[5, i], out_i[6, i] = nh, nl, alarm
+                out_i[7, i] = alarm or raised[c, 0] or alarms[c, 0] != 0
+                if restart and alarm:
+                    hi, lo, nh, nl = 0.0, 0.0, 0, 0
+                c_high[c], c_low[c], n_high[c], n_low[c] = hi, lo, nh, nl
+                # 4. moving variance (_Group._variance)
+                s = keep * var_s[c] + lam * eps * eps
+                var_s[c] = s
+                statistic, threshold = s, upper
+                if lower and s < 1.0:
+                    statistic = 1.0 / s if s > 0.0 else np.inf
+                    threshold = low_threshold
+                alarm = statistic >= threshold
+                out_f[5, i], out_f[6, i], out_f[7, i] = s, statistic, threshold
+                out_i[8, i] = alarm
+                out_i[9, i] = alarm or raised[c, 1] or alarms[c, 1] != 0
+                # 5. whiteness sums (_Group._whiteness)
+                count = wh_count[c]
+                _add_value(wh_sums, wh_head, wh_past, c, count, eps)
+                wh_count[c] = count + 1
+                out_i[10, i] = count + 1 >= window
+        # 6. the baseline histories (_Group._push)
+        for a in range(na - 1, 0, -1):
+            base_y[a, c] = base_y[a - 1, c]
+        if na:
+            base_y[0, c] = y_past
+        if hist_u:
+            for q in range(m):
+                for a in range(hist_u - 1, 0, -1):
+                    base_u[q, a, c] = base_u[q, a - 1, c]
+                base_u[q, 0, c] = u[i, q]
+        base_count[c] = min(base_count[c] + 1, depth)
+
+
+@lru_cache(maxsize=1)
+def innovation_kernel() -> Any:
+    """Return the compiled innovation path.
+
+    It is compiled at its first call for each set of argument types (a few
+    seconds), then read from numba's cache on disk in later processes, where
+    the package's folder is writable.
+
+    Raises
+    ------
+    ImportError
+        If numba is not installed.
+    """
+    try:
+        numba = importlib.import_module("numba")
+    except ImportError as error:
+        raise ImportError(
+            "the compiled fleet back end needs numba: pip install 'arxwatch[fast]'"
+        ) from error
+    options: dict[str, Any] = {"fastmath": False, "error_model": "numpy", "cache": True}
+    try:
+        helper = numba.njit(**options)(_add_value)
+    except RuntimeError:  # no writable place for numba's cache (a read-only install)
+        options["cache"] = False
+        helper = numba.njit(**options)(_add_value)
+    # Compiled code calls only compiled functions: the kernel finds the
+    # compiled helper under the helper's own name, in this module's globals.
+    globals()["_add_value"] = helper
+    return numba.njit(**options)(_innovate)
