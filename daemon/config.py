@@ -970,6 +970,8 @@ class DetectorsConfig:
         Alert lifecycle (:class:`~arxwatch.daemon.decide.AlertPolicy`): raise
         when ``raise_m`` of the last ``raise_n`` evaluations alarm, clear
         after ``clear_n`` quiet evaluations in a row.
+    clear_after_s : float or None
+        Seconds that quiet run must also span before a behaviour alert clears.
     """
 
     cusum_h: float | None = None
@@ -983,6 +985,7 @@ class DetectorsConfig:
     raise_m: int | None = None
     raise_n: int | None = None
     clear_n: int | None = None
+    clear_after_s: float | None = None
 
 
 _DETECTOR_NUMBERS = (
@@ -992,9 +995,11 @@ _DETECTOR_NUMBERS = (
     "drift_alpha",
     "gain_tolerance",
     "time_constant_tolerance",
+    "clear_after_s",
 )
 _POLICY_COUNTS = ("raise_m", "raise_n", "clear_n")
 _DETECTOR_COUNTS = ("evaluate_every", "reference_samples", *_POLICY_COUNTS)
+_POLICY_KEYS = (*_POLICY_COUNTS, "clear_after_s")
 
 
 def _detectors(r: _Reader, parent: Mapping[str, object], path: str) -> DetectorsConfig:
@@ -1155,7 +1160,7 @@ class AssetClassConfig:
             evaluate_every=base.evaluate_every if d.evaluate_every is None else d.evaluate_every,
             policy=replace(
                 base.policy,
-                **{k: getattr(d, k) for k in _POLICY_COUNTS if getattr(d, k) is not None},
+                **{k: getattr(d, k) for k in _POLICY_KEYS if getattr(d, k) is not None},
             ),
             prewhiten=(
                 base.prewhiten
@@ -1310,11 +1315,11 @@ def _asset_class(r: _Reader, value: object, path: str, limits: LimitsConfig) -> 
         where = "mode.values" if needs_labels else "baseline.learn_for_s"
         r.build(_key(path, where), config.learner_config)
     for key in (*_DETECTOR_NUMBERS, *_DETECTOR_COUNTS):
-        if getattr(config.detectors, key) is not None and key not in _POLICY_COUNTS:
+        if getattr(config.detectors, key) is not None and key not in _POLICY_KEYS:
             alone = DetectorsConfig(**{key: getattr(config.detectors, key)})
             r.build(f"{path}.detectors.{key}", replace(config, detectors=alone).monitor_config)
-    # the lifecycle counts are checked together: raise_m must not exceed raise_n
-    policy = {k: getattr(config.detectors, k) for k in _POLICY_COUNTS}
+    # the lifecycle settings are checked together: raise_m must not exceed raise_n
+    policy = {k: getattr(config.detectors, k) for k in _POLICY_KEYS}
     if any(v is not None for v in policy.values()):
         together = DetectorsConfig(**policy)
         r.build(f"{path}.detectors", replace(config, detectors=together).monitor_config)

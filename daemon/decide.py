@@ -56,6 +56,11 @@ class AlertPolicy:
         Evaluations below ``clear_ratio * threshold`` count toward clearing.
     clear_n : int
         Consecutive such evaluations needed to clear.
+    clear_after_s : float
+        Seconds the quiet run must also span, from its first evaluation to
+        the clearing one (an off-delay): a detector judged every minute
+        would otherwise clear after ten quiet minutes, and an intermittent
+        fault would clear and re-raise all day. 0 clears on the count alone.
 
     Raises
     ------
@@ -69,6 +74,7 @@ class AlertPolicy:
     critical_m: int = 3
     clear_ratio: float = 0.8
     clear_n: int = 10
+    clear_after_s: float = 0.0
 
     def __post_init__(self) -> None:
         for name in ("raise_m", "raise_n", "critical_m", "clear_n"):
@@ -87,6 +93,8 @@ class AlertPolicy:
             raise ValueError(f"clear_ratio must be in (0, 1], got {self.clear_ratio!r}")
         if not self.critical_ratio > 1.0:
             raise ValueError(f"critical_ratio must be > 1, got {self.critical_ratio!r}")
+        if not 0.0 <= self.clear_after_s < math.inf:
+            raise ValueError(f"clear_after_s must be finite and >= 0, got {self.clear_after_s!r}")
 
 
 @dataclass(frozen=True)
@@ -126,6 +134,7 @@ class _Episode:
     raised: bool = False
     severity: Severity = "warning"
     first_seen_s: float | None = None
+    quiet_since_s: float | None = None  # first evaluation of the quiet run
 
 
 @dataclass
@@ -169,6 +178,10 @@ class AlertTracker:
             and not evidence.alarm
             and evidence.conclusive
         )
+        if quiet and episode.quiet_run == 0:
+            episode.quiet_since_s = sample_time_s
+        elif not quiet:
+            episode.quiet_since_s = None
         episode.quiet_run = episode.quiet_run + 1 if quiet else 0
 
         if not episode.raised:
@@ -183,7 +196,10 @@ class AlertTracker:
         if episode.severity == "warning" and episode.criticals.bit_count() >= policy.critical_m:
             episode.severity = "critical"
             return self._transition(key, "raised", episode, sample_time_s, evidence)
-        if episode.quiet_run >= policy.clear_n:
+        since = episode.quiet_since_s  # None only in state saved before it was kept
+        if episode.quiet_run >= policy.clear_n and (
+            since is None or sample_time_s - since >= policy.clear_after_s
+        ):
             transition = self._transition(key, "cleared", episode, sample_time_s, evidence)
             self._episodes[key] = _Episode()
             return transition
@@ -211,6 +227,7 @@ class AlertTracker:
                 "raised": e.raised,
                 "severity": e.severity,
                 "first_seen_s": e.first_seen_s,
+                "quiet_since_s": e.quiet_since_s,
             }
             for key, e in self._episodes.items()
         }
@@ -230,6 +247,7 @@ class AlertTracker:
                 if severity not in ("warning", "critical"):
                     raise ValueError(f"severity {severity!r}")
                 first = raw["first_seen_s"]
+                since = raw.get("quiet_since_s")
                 episodes[key] = _Episode(
                     alarms=int(raw["alarms"]),
                     criticals=int(raw["criticals"]),
@@ -238,11 +256,15 @@ class AlertTracker:
                     raised=bool(raw["raised"]),
                     severity=severity,
                     first_seen_s=None if first is None else float(first),
+                    quiet_since_s=None if since is None else float(since),
                 )
             except (KeyError, TypeError, ValueError) as exc:
                 raise ValueError(f"alert state {key!r}: malformed entry ({exc})") from None
         self._episodes = episodes
 
+
+#: TrackerBank arrays of sample times, nan when unset.
+_TIMES = ("first_seen_s", "quiet_since_s")
 
 #: Number of set bits of every byte value, for popcounts over any unsigned width.
 _BITS_IN_BYTE = np.array([bin(v).count("1") for v in range(256)], dtype=np.uint8)
@@ -325,6 +347,7 @@ class TrackerBank:
         self.raised = np.zeros(shape, dtype=np.bool_)
         self.critical = np.zeros(shape, dtype=np.bool_)
         self.first_seen_s = np.full(shape, np.nan)
+        self.quiet_since_s = np.full(shape, np.nan)
 
     @property
     def capacity(self) -> int:
@@ -340,10 +363,14 @@ class TrackerBank:
             "raised": self.raised,
             "critical": self.critical,
             "first_seen_s": self.first_seen_s,
+            "quiet_since_s": self.quiet_since_s,
         }
 
     def load_arrays(self, arrays: Mapping[str, NDArray[Any]]) -> None:
         """Restore arrays saved from :meth:`arrays` (same keys, any capacity).
+
+        State saved before ``quiet_since_s`` was kept lacks it; its quiet
+        runs then clear on their count alone, as they did.
 
         Raises
         ------
@@ -351,6 +378,8 @@ class TrackerBank:
             If a name is missing or a shape or dtype does not fit.
         """
         mine = self.arrays()
+        if "quiet_since_s" not in arrays and "first_seen_s" in arrays:
+            arrays = {**arrays, "quiet_since_s": np.full(np.shape(arrays["first_seen_s"]), np.nan)}
         if set(arrays) != set(mine):
             raise ValueError(f"tracker arrays must be {sorted(mine)}, got {sorted(arrays)}")
         rows = {int(np.shape(a)[0]) for a in arrays.values()}
@@ -371,14 +400,14 @@ class TrackerBank:
         for name, array in self.arrays().items():
             grown = np.resize(array, (capacity, len(self.keys)))
             if capacity > old:
-                grown[old:] = np.nan if name == "first_seen_s" else 0
+                grown[old:] = np.nan if name in _TIMES else 0
             setattr(self, name, grown)
 
     def clear(self, rows: NDArray[np.intp] | Sequence[int]) -> None:
         """Reset every episode of ``rows`` to quiet."""
         index = np.asarray(rows, dtype=np.intp)
         for name, array in self.arrays().items():
-            array[index] = np.nan if name == "first_seen_s" else 0
+            array[index] = np.nan if name in _TIMES else 0
 
     def active(self, row: int) -> dict[str, Severity]:
         """Return the raised alerts of ``row`` by key, with their severity."""
@@ -424,7 +453,10 @@ class TrackerBank:
         if alarm and math.isnan(first):
             first = time_s
         quiet = statistic < policy.clear_ratio * threshold and not alarm and conclusive
-        run = min(int(self.quiet_run[row, key]), policy.clear_n) + 1 if quiet else 0
+        before = int(self.quiet_run[row, key])
+        run = min(before, policy.clear_n) + 1 if quiet else 0
+        since = float(self.quiet_since_s[row, key])
+        since = (time_s if before == 0 else since) if quiet else math.nan
         severe = bool(self.critical[row, key])
         state: State | None = None
         if not raised:
@@ -435,8 +467,8 @@ class TrackerBank:
                 first = math.nan
         elif not severe and criticals.bit_count() >= policy.critical_m:
             severe, state = True, "raised"
-        elif run >= policy.clear_n:
-            state = "cleared"
+        elif run >= policy.clear_n and not time_s - since < policy.clear_after_s:
+            state = "cleared"  # (a nan since: state saved before it was kept)
         out = None
         if state is not None:
             out = BankTransition(
@@ -448,13 +480,14 @@ class TrackerBank:
         if state == "cleared":
             alarms = criticals = run = 0
             raised = severe = False
-            first = math.nan
+            first = since = math.nan
         self.alarms[row, key] = alarms
         self.criticals[row, key] = criticals
         self.quiet_run[row, key] = run
         self.raised[row, key] = raised
         self.critical[row, key] = severe
         self.first_seen_s[row, key] = first
+        self.quiet_since_s[row, key] = since
         return out
 
     def observe(
@@ -527,7 +560,9 @@ class TrackerBank:
         quiet = (stat < policy.clear_ratio * limit) & ~alarm
         if conclusive is not None:
             quiet &= conclusive
-        run = np.where(quiet, np.minimum(self.quiet_run[rows, key], policy.clear_n) + 1, 0)
+        before = self.quiet_run[rows, key]
+        run = np.where(quiet, np.minimum(before, policy.clear_n) + 1, 0)
+        since = np.where(quiet, np.where(before == 0, when, self.quiet_since_s[rows, key]), np.nan)
         raised = self.raised[rows, key].copy()
         severe = self.critical[rows, key].copy()
         n_alarms = _popcount(alarms)
@@ -538,7 +573,10 @@ class TrackerBank:
         severe = np.where(rise, n_criticals >= policy.critical_m, severe)
         escalate = raised & ~severe & (n_criticals >= policy.critical_m)
         severe |= escalate
-        clear = raised & ~escalate & (run >= policy.clear_n)
+        # a nan since (state saved before it was kept) clears on the count alone
+        clear = (
+            raised & ~escalate & (run >= policy.clear_n) & ~(when - since < policy.clear_after_s)
+        )
         raised |= rise
 
         out: list[BankTransition] = []
@@ -560,10 +598,12 @@ class TrackerBank:
         raised[clear] = False
         severe[clear] = False
         first[clear] = np.nan
+        since[clear] = np.nan
         self.alarms[rows, key] = alarms
         self.criticals[rows, key] = criticals
         self.quiet_run[rows, key] = run
         self.raised[rows, key] = raised
         self.critical[rows, key] = severe
         self.first_seen_s[rows, key] = first
+        self.quiet_since_s[rows, key] = since
         return out

@@ -102,7 +102,11 @@ class MonitorConfig:
         estimate is inconclusive (:attr:`Evidence.conclusive`): it can raise
         ``feature_drift`` but not clear it.
     policy : AlertPolicy
-        Persistence, hysteresis and severities.
+        Persistence, hysteresis and severities of the behaviour alerts; by
+        default an alert clears only after an hour of quiet evaluations
+        (``clear_after_s``), so that an intermittent fault does not clear
+        and re-raise every few minutes. Data-quality alerts use it without
+        that off-delay (:attr:`quality_policy`): a returning sensor is back.
     """
 
     rls: RlsConfig = field(default_factory=lambda: RlsConfig(forgetting=0.998))
@@ -116,7 +120,7 @@ class MonitorConfig:
     settle_memories: float = 1.0
     clip_sigma: float = 4.0
     reset_factor: float = 10.0
-    policy: AlertPolicy = field(default_factory=AlertPolicy)
+    policy: AlertPolicy = field(default_factory=lambda: AlertPolicy(clear_after_s=3600.0))
 
     def __post_init__(self) -> None:
         if isinstance(self.evaluate_every, bool) or not isinstance(self.evaluate_every, int):
@@ -129,6 +133,11 @@ class MonitorConfig:
             raise ValueError(f"clip_sigma must be >= 1, got {self.clip_sigma!r}")
         if not 0.0 < self.drift_alpha < 1.0:
             raise ValueError(f"drift_alpha must be in (0, 1), got {self.drift_alpha!r}")
+
+    @property
+    def quality_policy(self) -> AlertPolicy:
+        """Return the data-quality alerts' policy: :attr:`policy` without the off-delay."""
+        return replace(self.policy, clear_after_s=0.0)
 
     def settle_samples(self) -> int:
         """Return the samples to wait before parameter-based detectors are judged."""
@@ -344,7 +353,7 @@ class AssetMonitor:
         self._last_mode: str | None | object = _NO_MODE
         self.skipped = 0
         self._quality = {name: SignalQuality(name, cfg) for name, cfg in (quality or {}).items()}
-        self._quality_tracker = AlertTracker(self.config.policy)
+        self._quality_tracker = AlertTracker(self.config.quality_policy)
 
     def step(
         self, time_s: float, y: float, u: Sequence[float], mode: str | None = None

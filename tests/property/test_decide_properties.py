@@ -17,6 +17,7 @@ policies = st.builds(
     critical_m=st.integers(1, 3),
     clear_ratio=st.sampled_from([0.5, 0.8, 1.0]),
     clear_n=st.integers(1, 6),
+    clear_after_s=st.sampled_from([0.0, 2.0, 7.0]),
 )
 # statistic / threshold pairs around the decision levels, with zero thresholds,
 # and whether the evaluation is conclusive (Evidence.conclusive)

@@ -349,12 +349,20 @@ def test_reference_samples_sets_the_start_of_judging_and_is_checked() -> None:
         parse(data)
 
 
-def test_alert_lifecycle_counts_are_set_per_class_and_checked_together() -> None:
+def test_alert_lifecycle_is_set_per_class_and_checked_together() -> None:
     data = base()
     data["asset_classes"][0]["detectors"] = {"raise_m": 6, "raise_n": 8, "clear_n": 4}
     config = parse_config(yaml.safe_dump(data, sort_keys=False), "site.yaml")
     policy = config.asset_classes[0].monitor_config().policy
     assert (policy.raise_m, policy.raise_n, policy.clear_n) == (6, 8, 4)
+    assert policy.clear_after_s == 3600.0  # the default off-delay stays
+    data["asset_classes"][0]["detectors"] = {"clear_after_s": 900}
+    config = parse_config(yaml.safe_dump(data, sort_keys=False), "site.yaml")
+    monitor = config.asset_classes[0].monitor_config()
+    assert monitor.policy.clear_after_s == 900.0 and monitor.quality_policy.clear_after_s == 0.0
+    data["asset_classes"][0]["detectors"] = {"clear_after_s": -5}
+    with pytest.raises(ConfigError, match=r"detectors: clear_after_s must be finite and >= 0"):
+        parse(data)
     # 6 of the default 5 cannot be: the error names both settings
     data["asset_classes"][0]["detectors"] = {"raise_m": 6}
     with pytest.raises(ConfigError, match=r"detectors: raise_m \(6\) cannot exceed raise_n \(5\)"):
