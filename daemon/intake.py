@@ -643,8 +643,9 @@ class IntakeBank:
         if usable.any() and cell * period <= time_s + self.config.staleness_s:
             self._hold_many(slots[usable], signals[usable], time_s, values[usable], cell)
         first = arrays["first_index"]
-        opening = arrays["last_index"][slots] == _OPEN
-        np.minimum.at(first, slots[opening], cell)
+        opening = slots[arrays["last_index"][slots] == _OPEN]
+        # one cell for all: a slot given twice gets the same value (no ufunc.at needed)
+        first[opening] = np.minimum(first[opening], cell)
         arrays["newest"][slots, signals] = time_s
         quality_of = self._quality_of_array[signals]
         checked = quality_of >= 0
@@ -680,7 +681,8 @@ class IntakeBank:
         ):
             return False
         pairs = slots * n_signals + signals
-        if np.unique(pairs).shape[0] != pairs.shape[0]:
+        ordered = np.sort(pairs)
+        if bool((ordered[1:] == ordered[:-1]).any()):  # a pair twice
             return False
         newest = self._arrays["newest"][slots, signals]
         if not (np.isnan(newest) | (newest < time_s)).all():

@@ -330,9 +330,11 @@ class _ColumnPlan:
     high: NDArray[np.float64]
     max_chars: int
     take: Callable[[Sequence[str]], Any] = field(init=False)
+    every: NDArray[np.bool_] = field(init=False)  # all columns present
 
     def __post_init__(self) -> None:
         self.take = operator.itemgetter(*self.index.tolist())
+        self.every = np.ones(self.index.shape[0], dtype=np.bool_)
 
 
 class TrendColumns:
@@ -576,16 +578,20 @@ class Pipeline:
         texts = plan.take(cells)
         if len(plan.index) == 1:
             texts = (texts,)
-        text = np.array(texts)
-        present = text != ""
-        n = int(np.count_nonzero(present))
+        if "" in texts:
+            present = np.array([text != "" for text in texts], dtype=np.bool_)
+            given = [text for text in texts if text]
+        else:  # the common case: a value in every column
+            present, given = plan.every, list(texts)
+        n = len(given)
         if not n:
             return []
-        joined = "".join(texts)
-        plain = not joined.translate(_DECIMAL_DELETE) and text.dtype.itemsize // 4 <= plan.max_chars
+        joined = "".join(given)
+        plain = not joined.translate(_DECIMAL_DELETE) and max(map(len, given)) <= plan.max_chars
         if plain:
             try:
-                raw = text[present].astype(np.float64)
+                # float() parses a plain decimal exactly as numpy's str -> float64 cast
+                raw = np.array([float(text) for text in given])
             except ValueError:
                 plain = False
         if plain:
@@ -616,7 +622,9 @@ class Pipeline:
         if taken.any():
             if self.last_sample_s is None or time_s > self.last_sample_s:
                 self.last_sample_s = time_s
-            np.maximum.at(state.frontier, slots[taken], time_s)
+            # one time for all: duplicate slots get the same value (no ufunc.at needed)
+            later = slots[taken]
+            state.frontier[later] = np.maximum(state.frontier[later], time_s)
         evidence = self._take_quality(state)
         for k in range(0, len(evidence), 3):  # a checked sample's three Evidence
             fleet_slot = int(state.fleet_slot[evidence[k][0]])
