@@ -227,6 +227,154 @@ def regression_matrix(
     return phi, y_arr[d:].copy()
 
 
+def check_breaks(breaks: Sequence[int], n_total: int) -> tuple[int, ...]:
+    """Validate the starts of segments 2, 3, ... of a concatenated record.
+
+    Parameters
+    ----------
+    breaks : sequence of int
+        Index of the first sample of each segment after the first, strictly
+        increasing, each in [1, n_total - 1].
+    n_total : int
+        Samples in the concatenated record.
+
+    Returns
+    -------
+    tuple of int
+        ``breaks`` as plain ints.
+
+    Raises
+    ------
+    DimensionError
+        If a break is not an integer, out of range or not after the one
+        before.
+
+    Examples
+    --------
+    >>> check_breaks([3, 5], 8)
+    (3, 5)
+    """
+    out: list[int] = []
+    for j, b in enumerate(breaks):
+        if isinstance(b, bool) or not isinstance(b, (int, np.integer)):
+            raise DimensionError(f"breaks[{j}] must be an integer, got {b!r}")
+        if not (out[-1] if out else 0) < b < n_total:
+            raise DimensionError(
+                f"breaks must increase strictly within (0, {n_total}) for {n_total} samples, "
+                f"got {list(breaks)!r}"
+            )
+        out.append(int(b))
+    return tuple(out)
+
+
+def segment_lengths(breaks: Sequence[int], n_total: int) -> tuple[int, ...]:
+    """Return the length of each segment of a record of ``n_total`` samples cut at ``breaks``.
+
+    Examples
+    --------
+    >>> segment_lengths((3, 5), 8)
+    (3, 2, 3)
+    """
+    bounds = (0, *check_breaks(breaks, n_total), n_total)
+    return tuple(b - a for a, b in zip(bounds[:-1], bounds[1:], strict=True))
+
+
+def scored_rows(breaks: Sequence[int], n_total: int, start: int) -> int:
+    """Return the regression rows of all segments when each scores from its sample ``start``.
+
+    Examples
+    --------
+    >>> scored_rows((3, 5), 8, 1)
+    5
+    """
+    return sum(max(n - start, 0) for n in segment_lengths(breaks, n_total))
+
+
+def segment_regression_matrix(
+    order: ArxOrder,
+    y: ArrayLike,
+    u: ArrayLike | None = None,
+    breaks: Sequence[int] = (),
+    *,
+    start: int | None = None,
+) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """Stack the regressors of several gap-free segments of one record.
+
+    ``y`` and ``u`` hold the segments one after the other; ``breaks`` says
+    where each new one starts. Each segment is built by
+    :func:`regression_matrix` on its own, so no regressor reaches back across
+    a join (splicing segments would invent dynamics there), and each gives
+    the rows of its samples ``start``, ``start + 1``, ... A segment of at
+    most ``start`` samples gives none. With no breaks and the default
+    ``start`` this is :func:`regression_matrix`.
+
+    Parameters
+    ----------
+    order : ArxOrder
+        Model structure.
+    y : array_like, shape (N,)
+        Output samples, segment after segment, each on a uniform grid.
+    u : array_like, shape (N, n_inputs) or (N,), optional
+        Input samples likewise; omit for a model without inputs.
+    breaks : sequence of int, optional
+        Index of the first sample of each segment after the first,
+        strictly increasing, in [1, N - 1].
+    start : int, optional
+        First scored sample within each segment, >= ``order.depth``
+        (default); a common ``start`` lets candidates of different depths
+        be scored on the same samples.
+
+    Returns
+    -------
+    Phi : ndarray, shape (M, n_params)
+        The rows of every segment, in order.
+    target : ndarray, shape (M,)
+        The matching outputs.
+
+    Raises
+    ------
+    DimensionError
+        If shapes disagree with the order, ``breaks`` or ``start`` are out of
+        range, or no segment is longer than ``start``.
+
+    Examples
+    --------
+    >>> order = ArxOrder(1, (1,), (1,))
+    >>> Phi, target = segment_regression_matrix(
+    ...     order, [1.0, 2.0, 4.0, 8.0], [1.0, 0.0, 0.0, 1.0], breaks=[2]
+    ... )
+    >>> Phi.tolist(), target.tolist()
+    ([[-1.0, 1.0, 1.0], [-4.0, 0.0, 1.0]], [2.0, 8.0])
+    """
+    y_arr, u_arr = _check_series(order, y, u)
+    n = y_arr.shape[0]
+    cuts = check_breaks(breaks, n)
+    first = order.depth if start is None else start
+    if isinstance(first, bool) or not isinstance(first, (int, np.integer)):
+        raise DimensionError(f"start must be an integer, got {first!r}")
+    if not order.depth <= first:
+        raise DimensionError(f"start must be at least the order depth {order.depth}, got {first}")
+    if not cuts and start is None:
+        return regression_matrix(order, y_arr, u_arr)
+    drop = int(first) - order.depth
+    phis: list[NDArray[np.float64]] = []
+    targets: list[NDArray[np.float64]] = []
+    bounds = (0, *cuts, n)
+    for a, b in zip(bounds[:-1], bounds[1:], strict=True):
+        if b - a <= first:
+            continue
+        phi, target = regression_matrix(order, y_arr[a:b], u_arr[a:b])
+        phis.append(phi[drop:])
+        targets.append(target[drop:])
+    if not phis:
+        longest = max(b - a for a, b in zip(bounds[:-1], bounds[1:], strict=True))
+        raise DimensionError(
+            f"no segment is longer than {first} samples (the longest of {len(bounds) - 1} has "
+            f"{longest}): none gives a regression row after its history"
+        )
+    return np.concatenate(phis), np.concatenate(targets)
+
+
 class RegressorHistory:
     """Past outputs and inputs of one asset, for building phi(k) sample by sample.
 

@@ -32,7 +32,7 @@ Hopkins University Press, 2013, section 5.5 (rank-deficient least squares).
 from __future__ import annotations
 
 import math
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Any, cast
 
@@ -42,7 +42,13 @@ from scipy import sparse
 from scipy.optimize import linprog
 from scipy.special import ndtri
 
-from arxwatch.estimators.arx import ArxOrder, regression_matrix
+from arxwatch.estimators.arx import (
+    ArxOrder,
+    check_breaks,
+    scored_rows,
+    segment_lengths,
+    segment_regression_matrix,
+)
 from arxwatch.estimators.errors import DimensionError
 
 __all__ = [
@@ -56,6 +62,7 @@ __all__ = [
     "fit_percent",
     "fit_ridge",
     "one_step_predict",
+    "split_breaks",
     "split_series",
 ]
 
@@ -193,10 +200,11 @@ class ArxFit:
         validation segment; None when no validation segment was kept.
     n_estimation : int
         Samples in the estimation segment (the fit uses
-        ``n_estimation - order.depth`` rows).
+        ``n_estimation - order.depth`` rows, less ``order.depth`` more per
+        further stretch).
     n_validation : int
         Samples in the validation segment (``n_validation - order.depth``
-        rows are scored); 0 without validation.
+        rows are scored, likewise per stretch); 0 without validation.
     """
 
     order: ArxOrder
@@ -903,6 +911,59 @@ def split_series(
     return y_arr[:n_estimation], u_arr[:n_estimation], y_arr[n_estimation:], u_arr[n_estimation:]
 
 
+def split_breaks(
+    breaks: Sequence[int], n_total: int, validation_fraction: float
+) -> tuple[tuple[int, ...], tuple[int, ...]]:
+    """Split segment starts the way :func:`split_series` splits the samples.
+
+    The validation part is the last ``round(validation_fraction * N)``
+    samples in time order, as in :func:`split_series`. A segment cut by the
+    split becomes two: the validation part starts a segment of its own.
+
+    Parameters
+    ----------
+    breaks : sequence of int
+        Index of the first sample of each segment after the first, strictly
+        increasing, in [1, n_total - 1].
+    n_total : int
+        Samples in the record.
+    validation_fraction : float
+        As for :func:`split_series`, in [0, 0.9].
+
+    Returns
+    -------
+    estimation_breaks : tuple of int
+        Segment starts within the estimation part.
+    validation_breaks : tuple of int
+        Segment starts within the validation part, counted from its first
+        sample.
+
+    Raises
+    ------
+    DimensionError
+        If ``breaks`` is not strictly increasing within (0, n_total).
+    ValueError
+        If ``validation_fraction`` is outside [0, 0.9].
+
+    Examples
+    --------
+    >>> split_breaks([2, 7, 9], 10, 0.5)
+    ((2,), (2, 4))
+    """
+    fraction = float(validation_fraction)
+    if not 0.0 <= fraction <= MAX_VALIDATION_FRACTION:
+        raise ValueError(
+            f"validation_fraction must be in [0, {MAX_VALIDATION_FRACTION}], "
+            f"got {validation_fraction!r}"
+        )
+    cuts = check_breaks(breaks, n_total)
+    n_estimation = n_total - round(fraction * n_total)
+    return (
+        tuple(b for b in cuts if b < n_estimation),
+        tuple(b - n_estimation for b in cuts if b > n_estimation),
+    )
+
+
 _FITTERS: dict[str, Callable[..., BatchFit]] = {
     "ols": fit_ols,
     "ridge": fit_ridge,
@@ -916,6 +977,7 @@ def fit_arx(
     y: ArrayLike,
     u: ArrayLike | None = None,
     *,
+    breaks: Sequence[int] = (),
     method: str = "ols",
     validation_fraction: float = 0.3,
     **method_kwargs: Any,
@@ -925,8 +987,12 @@ def fit_arx(
     The regression matrices of the estimation segment (the first
     ``1 - validation_fraction`` of the samples) and of the validation
     segment (the rest) are built separately, so no regressor straddles the
-    split. For ``ridge`` and ``lasso`` with ``order.constant`` the offset is
-    left unpenalised unless ``penalize_mask`` is given.
+    split. A record of several gap-free stretches, one after the other, is
+    given with ``breaks``: each stretch gives its own rows after its own
+    history (:func:`arxwatch.estimators.arx.segment_regression_matrix`), and
+    a stretch cut by the split becomes two. For ``ridge`` and ``lasso`` with
+    ``order.constant`` the offset is left unpenalised unless
+    ``penalize_mask`` is given.
 
     Parameters
     ----------
@@ -936,6 +1002,9 @@ def fit_arx(
         Output samples on a uniform grid.
     u : array_like, shape (N, n_inputs) or (N,), optional
         Input samples on the same grid; omit for a model without inputs.
+    breaks : sequence of int, optional
+        Index of the first sample of each stretch after the first, strictly
+        increasing, in [1, N - 1]; none (the default) for one stretch.
     method : {"ols", "ridge", "lasso", "lad"}, optional
         Fitting function: :func:`fit_ols`, :func:`fit_ridge`,
         :func:`fit_lasso` or :func:`fit_lad`.
@@ -958,8 +1027,9 @@ def fit_arx(
         ``y`` or ``u`` holds NaN or infinity, or as raised by the fitting
         function.
     DimensionError
-        If the shapes disagree with ``order`` or a segment is too short for
-        the order.
+        If the shapes disagree with ``order`` or ``breaks`` is out of range,
+        or no stretch of the estimation or validation segment is longer
+        than the order's depth.
     RankDeficientError
         If the estimation segment does not determine every parameter.
     TypeError
@@ -985,14 +1055,18 @@ def fit_arx(
         raise ValueError(f"method must be one of {sorted(_FITTERS)}, got {method!r}")
     y_est, u_est, y_val, u_val = split_series(y, u, validation_fraction)
     n_estimation, n_validation = y_est.shape[0], y_val.shape[0]
-    if n_estimation <= order.depth:
+    est_breaks, val_breaks = split_breaks(breaks, n_estimation + n_validation, validation_fraction)
+    stretches = "" if not breaks else " in its longest stretch"
+    if scored_rows(est_breaks, n_estimation, order.depth) == 0:
+        longest = max(segment_lengths(est_breaks, n_estimation))
         raise DimensionError(
-            f"estimation segment has {n_estimation} samples but order depth "
+            f"estimation segment has {longest} samples{stretches} but order depth "
             f"{order.depth} needs more than {order.depth}"
         )
-    if 0 < n_validation <= order.depth:
+    if n_validation > 0 and scored_rows(val_breaks, n_validation, order.depth) == 0:
+        longest = max(segment_lengths(val_breaks, n_validation))
         raise DimensionError(
-            f"validation segment has {n_validation} samples (validation_fraction="
+            f"validation segment has {longest} samples{stretches} (validation_fraction="
             f"{validation_fraction!r}) but order depth {order.depth} needs more than "
             f"{order.depth}; use a longer record or validation_fraction=0"
         )
@@ -1001,11 +1075,11 @@ def fit_arx(
         mask = np.ones(order.n_params, dtype=bool)
         mask[-1] = False
         kwargs["penalize_mask"] = mask
-    phi, target = regression_matrix(order, y_est, u_est)
+    phi, target = segment_regression_matrix(order, y_est, u_est, est_breaks)
     fit = _FITTERS[method](phi, target, **kwargs)
     score = None
     if n_validation > 0:
-        phi_val, target_val = regression_matrix(order, y_val, u_val)
+        phi_val, target_val = segment_regression_matrix(order, y_val, u_val, val_breaks)
         score = fit_percent(target_val, fit.predict(phi_val))
     return ArxFit(
         order=order,

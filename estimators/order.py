@@ -42,12 +42,19 @@ from typing import Literal, NamedTuple
 import numpy as np
 from numpy.typing import ArrayLike
 
-from arxwatch.estimators.arx import MAX_LAG, ArxOrder, regression_matrix
+from arxwatch.estimators.arx import (
+    MAX_LAG,
+    ArxOrder,
+    scored_rows,
+    segment_lengths,
+    segment_regression_matrix,
+)
 from arxwatch.estimators.errors import DimensionError, OrderError
 from arxwatch.estimators.identify import (
     RankDeficientError,
     fit_ols,
     fit_percent,
+    split_breaks,
     split_series,
 )
 
@@ -251,6 +258,7 @@ def select_order(
     nb_range: Iterable[int] | Sequence[Iterable[int]],
     nk_range: Iterable[int] | Sequence[Iterable[int]],
     *,
+    breaks: Sequence[int] = (),
     criterion: Criterion = "bic",
     validation_fraction: float = 0.3,
     constant: bool = True,
@@ -267,6 +275,12 @@ def select_order(
     The one-step-ahead fit percentage is scored on the validation segment
     from the same ``start`` within that segment.
 
+    A record of several gap-free stretches, one after the other, is given
+    with ``breaks``; every stretch is then scored from its own sample
+    ``start`` on, so no regressor reaches across a join, and a stretch cut
+    by the estimation/validation split becomes two
+    (:func:`arxwatch.estimators.identify.split_breaks`).
+
     Parameters
     ----------
     y : array_like, shape (N,)
@@ -281,6 +295,9 @@ def select_order(
     nk_range : iterable of int, or sequence of iterables of int
         Input delays (samples) to try, each in [0, MAX_LAG], shared or per
         input like ``nb_range``.
+    breaks : sequence of int, optional
+        Index of the first sample of each stretch after the first, strictly
+        increasing, in [1, N - 1]; none (the default) for one stretch.
     criterion : {"aic", "bic", "fpe"}, optional
         Ranking criterion; BIC is consistent, AIC and FPE tend to pick
         orders that are too large on long records.
@@ -308,8 +325,8 @@ def select_order(
         ``max_candidates``, ``validation_fraction`` is out of range, the
         data hold NaN or infinity, or every candidate is rank deficient.
     DimensionError
-        If ``u`` does not match ``y`` or a segment is too short for the
-        grid.
+        If ``u`` does not match ``y``, ``breaks`` is out of range, or a
+        segment leaves too few scored samples for the grid.
 
     References
     ----------
@@ -346,6 +363,10 @@ def select_order(
     y_est, u_est, y_val, u_val = split_series(y, u, validation_fraction)
     if u_est is None or u_val is None or u_est.shape[1] == 0:
         raise DimensionError("u must hold at least one input column")
+    n_validation = y_val.shape[0]
+    est_breaks, val_breaks = split_breaks(
+        breaks, y_est.shape[0] + n_validation, validation_fraction
+    )
     n_inputs = u_est.shape[1]
 
     na_values = _lag_values(na_range, "na_range", 0)
@@ -366,19 +387,24 @@ def select_order(
         max(na_values),
         max(max(nb) + max(nk) - 1 for nb, nk in zip(nb_values, nk_values, strict=True)),
     )
-    n_samples = y_est.shape[0] - start
+    n_samples = y_est.shape[0] - start  # may be negative: the message below says so
+    if est_breaks:
+        n_samples = scored_rows(est_breaks, y_est.shape[0], start)
     most_params = max(na_values) + sum(max(nb) for nb in nb_values) + int(constant)
+    each = f" ({len(est_breaks) + 1} stretches, each)" if est_breaks else ""
     if n_samples <= most_params:
         raise DimensionError(
             f"estimation segment of {y_est.shape[0]} samples leaves {n_samples} after the "
-            f"deepest history on the grid ({start}), but the largest candidate has "
+            f"deepest history on the grid ({start}){each}, but the largest candidate has "
             f"{most_params} parameters; use a longer record or a smaller grid"
         )
-    n_validation = y_val.shape[0]
-    if n_validation and n_validation <= start:
+    n_validation_rows = scored_rows(val_breaks, n_validation, start)
+    if n_validation and n_validation_rows == 0:
+        each = " in its longest stretch" if val_breaks else ""
         raise DimensionError(
-            f"validation segment has {n_validation} samples but the deepest history on "
-            f"the grid is {start}; use a longer record, a larger validation_fraction or 0"
+            f"validation segment has {max(segment_lengths(val_breaks, n_validation))} samples"
+            f"{each} but the deepest history on the grid is {start}; use a longer record, a "
+            "larger validation_fraction or 0"
         )
 
     candidates: list[OrderCandidate] = []
@@ -394,17 +420,18 @@ def select_order(
             nk=tuple(nk for _, nk in inputs),
             constant=constant,
         )
-        drop = start - order.depth
-        phi, target = regression_matrix(order, y_est, u_est)
+        phi, target = segment_regression_matrix(order, y_est, u_est, est_breaks, start=start)
         try:
-            fit = fit_ols(phi[drop:], target[drop:])
+            fit = fit_ols(phi, target)
         except RankDeficientError:
             skipped.append(order)
             continue
         score = None
         if n_validation:
-            phi_val, target_val = regression_matrix(order, y_val, u_val)
-            score = fit_percent(target_val[drop:], fit.predict(phi_val[drop:]))
+            phi_val, target_val = segment_regression_matrix(
+                order, y_val, u_val, val_breaks, start=start
+            )
+            score = fit_percent(target_val, fit.predict(phi_val))
         aic, bic, fpe = information_criteria(fit.rss, n_samples, order.n_params)
         candidates.append(
             OrderCandidate(
@@ -432,5 +459,5 @@ def select_order(
         skipped=tuple(skipped),
         start=start,
         n_samples=n_samples,
-        n_validation_samples=max(n_validation - start, 0),
+        n_validation_samples=n_validation_rows,
     )

@@ -205,3 +205,96 @@ def test_lad_scale_estimates_laplace_scale() -> None:
     # three of those: common practice, no source.
     phi, y, scale = laplace_problem(2)
     assert fit_lad(phi, y).scale == pytest.approx(scale, rel=0.07)
+
+
+# --- several gap-free stretches ------------------------------------------------
+
+
+def stretch(seed: int, n: int, y0: float) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """One stretch of y(k) = 0.8 y(k-1) + 0.5 u(k-2) + e(k), starting from y0.
+
+    The first two samples are the stretch's own history: any value fits the
+    recursion from k = 2 on (Ljung 1999, section 4.2).
+    """
+    rng = np.random.default_rng(seed)
+    u = np.where(rng.random(n) < 0.5, -1.0, 1.0)
+    y = np.full(n, y0)
+    for k in range(2, n):
+        y[k] = 0.8 * y[k - 1] + 0.5 * u[k - 2] + 0.1 * rng.standard_normal()
+    return y, u
+
+
+def hand_rows(
+    y: NDArray[np.float64], u: NDArray[np.float64]
+) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """Rows [-y(k-1), u(k-2), 1] and targets y(k) of one stretch, k = 2 .. N-1, by hand."""
+    rows = [[-y[k - 1], u[k - 2], 1.0] for k in range(2, y.shape[0])]
+    return np.array(rows), y[2:]
+
+
+STRETCHES = [
+    stretch(1, 300, 0.0),
+    stretch(2, 180, 100.0),
+    stretch(3, 5, 0.0),
+    stretch(4, 250, -80.0),
+]
+ORDER_12 = ArxOrder(na=1, nb=(1,), nk=(2,))
+
+
+def joined() -> tuple[NDArray[np.float64], NDArray[np.float64], list[int]]:
+    y = np.concatenate([s[0] for s in STRETCHES])
+    u = np.concatenate([s[1] for s in STRETCHES])
+    lengths = [s[0].shape[0] for s in STRETCHES]
+    return y, u, np.cumsum(lengths)[:-1].tolist()
+
+
+def test_stretch_fit_equals_lstsq_on_rows_stacked_by_hand() -> None:
+    y, u, breaks = joined()
+    parts = [hand_rows(*s) for s in STRETCHES]
+    phi = np.vstack([p[0] for p in parts])
+    target = np.concatenate([p[1] for p in parts])
+    # Source: numpy.linalg.lstsq, least squares on the stacked rows of each stretch.
+    expected, *_ = np.linalg.lstsq(phi, target, rcond=None)
+    result = fit_arx(ORDER_12, y, u, breaks=breaks, validation_fraction=0.0)
+    np.testing.assert_allclose(result.fit.theta, expected, rtol=1e-10, atol=1e-12)
+    assert result.fit.n_samples == target.shape[0] == 727  # 298 + 178 + 3 + 248 rows
+
+
+def test_a_split_stretch_is_scored_as_two_with_their_own_history() -> None:
+    y, u, breaks = joined()
+    result = fit_arx(ORDER_12, y, u, breaks=breaks, validation_fraction=0.3)
+    # 735 samples, the last round(0.3 * 735) = 220 held back: that cuts the fourth
+    # stretch (from sample 485) at 515, leaving 30 of it for estimation.
+    head = [STRETCHES[0], STRETCHES[1], STRETCHES[2], (STRETCHES[3][0][:30], STRETCHES[3][1][:30])]
+    parts = [hand_rows(*s) for s in head]
+    # Source: numpy.linalg.lstsq on the estimation rows.
+    expected, *_ = np.linalg.lstsq(
+        np.vstack([p[0] for p in parts]), np.concatenate([p[1] for p in parts]), rcond=None
+    )
+    np.testing.assert_allclose(result.fit.theta, expected, rtol=1e-10, atol=1e-12)
+    tail_phi, tail_y = hand_rows(STRETCHES[3][0][30:], STRETCHES[3][1][30:])
+    measured, predicted = tail_y, tail_phi @ result.fit.theta
+    # Source: the fit percentage's definition, 100 (1 - |y - yhat| / |y - mean y|).
+    spread = np.linalg.norm(measured - measured.mean())
+    assert result.fit_percent_validation == pytest.approx(
+        100.0 * (1.0 - np.linalg.norm(measured - predicted) / spread), rel=1e-12
+    )
+
+
+def test_no_row_straddles_a_join() -> None:
+    # The stretches start at 0, 100 and -80 degC: a row across a join would have to
+    # explain a jump of 100 by one step of the model, and drags the fit off.
+    y, u, breaks = joined()
+    together = fit_arx(ORDER_12, y, u, breaks=breaks, validation_fraction=0.0)
+    spliced = fit_arx(ORDER_12, y, u, validation_fraction=0.0)
+    apart = [
+        fit_arx(ORDER_12, s[0], s[1], validation_fraction=0.0) for s in STRETCHES if s[0].size > 50
+    ]
+    truth = np.array([-0.8, 0.5, 0.0])  # a1, b1_1, c of the simulated recursion
+    assert np.abs(together.fit.theta - truth).max() < 0.02
+    assert np.abs(spliced.fit.theta - truth).max() > 0.1  # wrecked by the joins
+    # as good as the stretches fitted apart: the same innovation variance (0.1^2)
+    for single in apart:
+        assert together.fit.sigma2 == pytest.approx(single.fit.sigma2, rel=0.25)
+    assert together.fit.sigma2 == pytest.approx(0.01, rel=0.15)
+    assert spliced.fit.sigma2 > 10 * together.fit.sigma2

@@ -9,6 +9,7 @@ length and seed count are illustrative: common practice, no source.
 from __future__ import annotations
 
 import numpy as np
+import pytest
 from numpy.typing import NDArray
 from scipy.signal import lfilter
 
@@ -75,3 +76,26 @@ def test_fpe_tracks_aic() -> None:
         aic = select_order(y, u, range(5), range(1, 4), range(6), criterion="aic")
         fpe = select_order(y, u, range(5), range(1, 4), range(6), criterion="fpe")
         assert fpe.best.order == aic.best.order
+
+
+def test_stretches_are_scored_on_common_samples_like_lstsq() -> None:
+    # Two stretches of the simulated model; every candidate is scored from sample 4
+    # of each (the deepest history on the grid), so the true order's RSS is that of
+    # numpy.linalg.lstsq on those rows (source: numpy), built by hand.
+    (y1, u1), (y2, u2) = simulate(seed=11, n_samples=500), simulate(seed=12, n_samples=400)
+    y, u = np.concatenate([y1, y2]), np.concatenate([u1, u2])
+    search = select_order(
+        y, u, range(3), range(1, 3), range(4), breaks=[500], validation_fraction=0.0
+    )
+    best = search.best
+    assert best.order == TRUE_ORDER
+    rows, targets = [], []
+    for ys, us in ((y1, u1), (y2, u2)):
+        for k in range(4, ys.shape[0]):
+            rows.append([-ys[k - 1], -ys[k - 2], us[k - 3], us[k - 4], 1.0])
+            targets.append(ys[k])
+    phi, target = np.array(rows), np.array(targets)
+    theta, *_ = np.linalg.lstsq(phi, target, rcond=None)
+    residual = target - phi @ theta
+    assert best.rss == pytest.approx(float(residual @ residual), rel=1e-9)
+    assert search.n_samples == 496 + 396

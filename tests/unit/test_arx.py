@@ -3,7 +3,13 @@
 import numpy as np
 import pytest
 
-from arxwatch.estimators.arx import ArxOrder, RegressorHistory, regression_matrix
+from arxwatch.estimators.arx import (
+    ArxOrder,
+    RegressorHistory,
+    check_breaks,
+    regression_matrix,
+    segment_regression_matrix,
+)
 from arxwatch.estimators.errors import DimensionError, OrderError
 
 
@@ -86,3 +92,50 @@ def test_shape_errors_name_the_argument() -> None:
         regression_matrix(order, np.zeros(1), np.zeros(1))
     with pytest.raises(DimensionError, match="u_now has 2"):
         RegressorHistory(order).regressor([1.0, 2.0])
+
+
+def test_one_segment_is_regression_matrix_bit_for_bit() -> None:
+    rng = np.random.default_rng(1)
+    y, u = rng.standard_normal(50), rng.standard_normal((50, 2))
+    order = ArxOrder(na=2, nb=(2, 1), nk=(1, 3))
+    phi, target = regression_matrix(order, y, u)
+    for start in (None, order.depth):
+        phi_s, target_s = segment_regression_matrix(order, y, u, start=start)
+        assert phi_s.tobytes() == phi.tobytes() and target_s.tobytes() == target.tobytes()
+    phi_s, target_s = segment_regression_matrix(order, y, u, start=order.depth + 2)
+    assert phi_s.tobytes() == phi[2:].tobytes() and target_s.tobytes() == target[2:].tobytes()
+
+
+def test_segments_are_built_apart_and_short_ones_give_no_rows() -> None:
+    rng = np.random.default_rng(2)
+    y, u = rng.standard_normal(30), rng.standard_normal(30)
+    order = ArxOrder(na=1, nb=(2,), nk=(1,))  # depth 2
+    phi, target = segment_regression_matrix(order, y, u, breaks=[10, 12, 20])
+    parts = [regression_matrix(order, y[a:b], u[a:b]) for a, b in ((0, 10), (12, 20), (20, 30))]
+    assert phi.tobytes() == np.vstack([p[0] for p in parts]).tobytes()
+    assert target.tobytes() == np.concatenate([p[1] for p in parts]).tobytes()
+    assert phi.shape == (8 + 6 + 8, 4)  # the stretch of 2 samples (10, 11) gives none
+
+
+@pytest.mark.parametrize(
+    ("breaks", "start", "match"),
+    [
+        ([5, 5], None, r"breaks must increase strictly within \(0, 10\)"),
+        ([0], None, r"breaks must increase strictly"),
+        ([10], None, r"breaks must increase strictly"),
+        ([2.5], None, r"breaks\[0\] must be an integer, got 2.5"),
+        ([], 1, r"start must be at least the order depth 2, got 1"),
+        ([2, 4, 6, 8], None, r"no segment is longer than 2 samples \(the longest of 5 has 2\)"),
+    ],
+)
+def test_segment_errors_name_the_argument(
+    breaks: list[object], start: int | None, match: str
+) -> None:
+    order = ArxOrder(na=2, nb=(1,), nk=(1,))
+    with pytest.raises(DimensionError, match=match):
+        segment_regression_matrix(order, np.zeros(10), np.zeros(10), breaks, start=start)  # type: ignore[arg-type]
+
+
+def test_check_breaks_returns_plain_ints() -> None:
+    assert check_breaks(np.array([3, 7]), 9) == (3, 7)
+    assert all(type(b) is int for b in check_breaks(np.array([3, 7]), 9))

@@ -29,6 +29,7 @@ from arxwatch.estimators.identify import (
     fit_percent,
     fit_ridge,
     one_step_predict,
+    split_breaks,
     split_series,
 )
 
@@ -392,3 +393,25 @@ def test_fit_arx_errors() -> None:
         fit_arx(order, y[:8], u[:8], validation_fraction=0.5)
     with pytest.raises(TypeError, match="alpha"):
         fit_arx(order, y, u, method="ols", alpha=1.0)
+
+
+@pytest.mark.parametrize(
+    ("breaks", "fraction", "expected"),
+    [
+        ((), 0.3, ((), ())),
+        ((3, 7), 0.3, ((3,), ())),  # 10 samples, validation 7..9: the split lands on a break
+        ((3, 8), 0.3, ((3,), (1,))),  # the stretch 3..7 is cut at 7: its tail 7 starts anew
+        ((2, 5), 0.0, ((2, 5), ())),
+    ],
+)
+def test_split_breaks_cuts_a_stretch_at_the_split(
+    breaks: tuple[int, ...], fraction: float, expected: tuple[tuple[int, ...], tuple[int, ...]]
+) -> None:
+    assert split_breaks(breaks, 10, fraction) == expected
+
+
+def test_fit_arx_with_breaks_needs_a_stretch_longer_than_the_order() -> None:
+    order = ArxOrder(na=2, nb=(1,), nk=(1,))
+    y = np.arange(12.0)
+    with pytest.raises(DimensionError, match=r"estimation segment has 2 samples in its longest"):
+        fit_arx(order, y, y, breaks=[2, 4, 6, 8, 10], validation_fraction=0.0)
