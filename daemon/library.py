@@ -18,8 +18,9 @@ store, so replicas can share it. Layout::
 Each entry is :meth:`arxwatch.estimators.baseline.BaselineSet.to_dict`: the
 model order, theta0 and its covariance, innovation variance, fit on
 held-back data, physical read-out and the window it came from, per
-operating mode (the keys, types and units of version 1 are listed in
-:mod:`arxwatch.estimators.baseline`). Undefined numbers are written as
+operating mode (the keys, types and units of its versions 1 and 2 are
+listed in :mod:`arxwatch.estimators.baseline`; version 2 adds the number of
+gap-free stretches a baseline was fitted on). Undefined numbers are written as
 ``null``. ``written`` is the UTC time the file was made.
 
 ``arxwatch baselines`` writes these files (:mod:`arxwatch.daemon.commission`),

@@ -4,7 +4,12 @@ Pure numpy/scipy: no I/O, clocks, threads or logging. The service shell in
 ``arxwatch.daemon`` calls it; nothing here imports the shell.
 """
 
-from arxwatch.estimators.arx import ArxOrder, RegressorHistory, regression_matrix
+from arxwatch.estimators.arx import (
+    ArxOrder,
+    RegressorHistory,
+    regression_matrix,
+    segment_regression_matrix,
+)
 from arxwatch.estimators.baseline import (
     AcceptanceRule,
     Baseline,
@@ -70,5 +75,6 @@ __all__ = [
     "read_out",
     "readout_jacobian",
     "regression_matrix",
+    "segment_regression_matrix",
     "select_order",
 ]

@@ -2,14 +2,15 @@ r"""Commissioning baselines: the fault-free models the drift monitor compares ag
 
 A baseline is an ARX model of one asset in one operating mode, fitted by
 :func:`fit_baseline` on a gap-free window recorded while the equipment was
-known to work. It holds the parameter estimate :math:`\theta_0`, its
-covariance :math:`\mathrm{Cov}(\theta_0)`, the innovation variance
-:math:`\sigma^2`, the fit on held-back data and the physical reading (gains,
-time constant, dead times, offset). :meth:`Baseline.residual` scores each
+known to work, or on several gap-free stretches of it (``gaps="split"``).
+It holds the parameter estimate :math:`\theta_0`, its covariance
+:math:`\mathrm{Cov}(\theta_0)`, the innovation variance :math:`\sigma^2`,
+the fit on held-back data and the physical reading (gains, time constant,
+dead times, offset). :meth:`Baseline.residual` scores each
 new sample against it. An :class:`AcceptanceRule` decides whether a fit is
 good enough to monitor against; a refusal says why in sentences a technician
-can act on. :class:`LiveBaselineLearner` collects a window per mode while the
-service runs and freezes the baseline once the window is covered, and
+can act on. :class:`LiveBaselineLearner` collects stretches per mode while the
+service runs and freezes the baseline once they cover its span, and
 :class:`BaselineSet` holds the frozen baselines of one asset.
 
 Plain-data format
@@ -19,8 +20,12 @@ reads them back. Floats are written as Python floats, which :mod:`json`
 prints in the shortest form that reads back to the same double, so a
 baseline moved between replicas is bit for bit the same. A number that is
 undefined in memory (``nan``, only ever in the read-out) is written as
-``null``. Version 1 of ``"arxwatch.baseline"`` has exactly these keys
-(n = ``order.n_params``, m = ``order.n_inputs``):
+``null``. Version 2 of ``"arxwatch.baseline"`` has exactly these keys
+(n = ``order.n_params``, m = ``order.n_inputs``); version 1 is the same
+without ``n_stretches`` (one stretch). A baseline of one stretch is written
+as version 1, so releases that read only version 1 still read it; one of
+several stretches as version 2, which those releases refuse by its version
+rather than misread:
 
 =========================  ===================  ==============================
 key                        JSON type            meaning (unit)
@@ -52,8 +57,11 @@ key                        JSON type            meaning (unit)
                                                 sample used (s)
 ``window_end_s``           number               epoch time of the last sample
                                                 used (s)
-``n_samples``              integer              samples in the window
-                                                (estimation and held back)
+``n_samples``              integer              samples used, of all
+                                                stretches (estimation and
+                                                held back)
+``n_stretches``            integer              gap-free stretches used,
+                                                >= 1 (version 2 only)
 ``criterion``              string or null       ``"aic"``, ``"bic"`` or
                                                 ``"fpe"``; null when the
                                                 order was given
@@ -110,7 +118,12 @@ from typing import Any, ClassVar, Literal
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
-from arxwatch.estimators.arx import MAX_LAG, ArxOrder, regression_matrix
+from arxwatch.estimators.arx import (
+    MAX_LAG,
+    ArxOrder,
+    scored_rows,
+    segment_regression_matrix,
+)
 from arxwatch.estimators.codec import CodecError, encode_order, expect_keys, kind_of
 from arxwatch.estimators.errors import DimensionError, OrderError
 from arxwatch.estimators.identify import (
@@ -118,6 +131,7 @@ from arxwatch.estimators.identify import (
     BatchFit,
     RankDeficientError,
     fit_arx,
+    split_breaks,
     split_series,
 )
 from arxwatch.estimators.order import Criterion, OrderCandidate, select_order
@@ -162,7 +176,15 @@ _EARLY_FACTOR = 0.5
 _METHODS = ("ols", "ridge", "lasso", "lad")
 _CRITERIA: tuple[Criterion, ...] = ("aic", "bic", "fpe")
 
+#: What :meth:`LiveBaselineLearner.add` did with a sample. "restarted" is no
+#: longer returned (a gap now keeps what was collected); it stays in the type
+#: while :mod:`arxwatch.daemon.pipeline` still handles it.
 AddOutcome = Literal["collected", "restarted", "ignored"]
+
+#: What :func:`fit_baseline` does with a gap in the window: ``"refuse"``
+#: raises :class:`GridError`, ``"split"`` fits across the gap-free stretches.
+Gaps = Literal["refuse", "split"]
+_GAPS: tuple[Gaps, ...] = ("refuse", "split")
 
 
 def _real(value: object, name: str) -> float:
@@ -430,6 +452,11 @@ class Baseline:
         Criterion that selected the order; None when it was given.
     candidates : tuple of OrderCandidate, optional
         The ranked order search, best first; empty when the order was given.
+    n_stretches : int, optional
+        Gap-free stretches the window was made of, >= 1 (see
+        :func:`fit_baseline`, ``gaps="split"``); ``window_start_s`` is the
+        first sample of the first, ``window_end_s`` the last of the last, and
+        ``n_samples`` counts the samples of all of them.
 
     Raises
     ------
@@ -445,7 +472,7 @@ class Baseline:
     """
 
     FORMAT: ClassVar[str] = "arxwatch.baseline"
-    VERSION: ClassVar[int] = 1
+    VERSION: ClassVar[int] = 2
 
     mode: str | None
     order: ArxOrder
@@ -462,6 +489,7 @@ class Baseline:
     n_samples: int
     criterion: Criterion | None = None
     candidates: tuple[OrderCandidate, ...] = ()
+    n_stretches: int = 1
     _theta_values: tuple[float, ...] = field(init=False, repr=False)
     _cov_rows: tuple[tuple[float, ...], ...] = field(init=False, repr=False)
 
@@ -532,6 +560,9 @@ class Baseline:
                 raise ValueError(f"candidates[{j}]: expected an OrderCandidate, got {c!r}")
             if not all(math.isfinite(v) for v in (c.aic, c.bic, c.fpe, c.rss)):
                 raise ValueError(f"candidates[{j}]: criteria and rss must be finite")
+        stretches = self.n_stretches
+        if isinstance(stretches, bool) or not isinstance(stretches, int) or stretches < 1:
+            raise ValueError(f"n_stretches: expected an integer >= 1, got {stretches!r}")
         object.__setattr__(self, "_theta_values", tuple(float(v) for v in theta))
         object.__setattr__(self, "_cov_rows", tuple(tuple(float(v) for v in row) for row in cov))
 
@@ -628,11 +659,15 @@ class Baseline:
         Returns
         -------
         dict
-            Version 1 of ``"arxwatch.baseline"``.
+            Version 2 of ``"arxwatch.baseline"`` for a baseline fitted on
+            several stretches; version 1 (the same without ``n_stretches``)
+            for one, so that releases reading only version 1 still read it.
         """
+        several = self.n_stretches > 1
+        extra = {"n_stretches": self.n_stretches} if several else {}
         return {
             "format": self.FORMAT,
-            "version": self.VERSION,
+            "version": self.VERSION if several else 1,
             "mode": self.mode,
             "order": encode_order(self.order),
             "sample_period_s": self.sample_period_s,
@@ -648,6 +683,7 @@ class Baseline:
             "criterion": self.criterion,
             "candidates": [_encode_candidate(c) for c in self.candidates],
             "readout": _encode_readout(self.readout),
+            **extra,
         }
 
     @classmethod
@@ -669,12 +705,14 @@ class Baseline:
         Raises
         ------
         CodecError
-            If the format or version is not this one, a key is missing or
-            unknown, or a value has the wrong type, length or range; the
-            message names the key path.
+            If the format is not this one or the version is not 1 or 2, a key
+            is missing or unknown, or a value has the wrong type, length or
+            range; the message names the key path.
         """
-        expect_keys(data, _BASELINE_KEYS, where)
-        _expect_header(data, cls.FORMAT, cls.VERSION, where)
+        version = data.get("version") if isinstance(data, dict) else None
+        several = version == 2 and not isinstance(version, bool)
+        expect_keys(data, _BASELINE_KEYS | {"n_stretches"} if several else _BASELINE_KEYS, where)
+        _expect_header(data, cls.FORMAT, (1, cls.VERSION), where)
         order = _decode_order(data["order"], f"{where}.order")
         n = order.n_params
         sample_period_s = _number(data["sample_period_s"], f"{where}.sample_period_s")
@@ -713,6 +751,7 @@ class Baseline:
                     _decode_candidate(c, f"{where}.candidates[{j}]")
                     for j, c in enumerate(candidates)
                 ),
+                n_stretches=_integer(data["n_stretches"], f"{where}.n_stretches") if several else 1,
             )
         except CodecError:
             raise
@@ -741,6 +780,11 @@ class BaselineResult:
         The model that was judged, also when refused (to show its gains and
         time constant next to the reasons); None when the window was refused
         before fitting or the fit gave no usable model.
+    n_stretches : int
+        Gap-free stretches of the window the fit used (those long enough),
+        >= 0; 1 for a window without gaps.
+    n_short_stretches : int
+        Stretches left out as too short to give a regression row, >= 0.
 
     Raises
     ------
@@ -753,6 +797,8 @@ class BaselineResult:
     reasons: tuple[str, ...]
     candidates: tuple[OrderCandidate, ...] = ()
     fitted: Baseline | None = None
+    n_stretches: int = 1
+    n_short_stretches: int = 0
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "reasons", tuple(self.reasons))
@@ -766,15 +812,33 @@ class BaselineResult:
             )
         if self.baseline is not None and self.fitted is not self.baseline:
             raise ValueError("fitted must be the accepted baseline itself")
+        for name in ("n_stretches", "n_short_stretches"):
+            count = getattr(self, name)
+            if isinstance(count, bool) or not isinstance(count, int) or count < 0:
+                raise ValueError(f"{name} must be an integer >= 0, got {count!r}")
+        if self.fitted is not None and self.fitted.n_stretches != self.n_stretches:
+            raise ValueError(
+                f"n_stretches={self.n_stretches} differs from the fitted baseline's "
+                f"{self.fitted.n_stretches}"
+            )
 
 
 def _refused(
     reasons: Sequence[str],
     candidates: tuple[OrderCandidate, ...] = (),
     fitted: Baseline | None = None,
+    *,
+    n_stretches: int = 1,
+    n_short_stretches: int = 0,
 ) -> BaselineResult:
     return BaselineResult(
-        baseline=None, accepted=False, reasons=tuple(reasons), candidates=candidates, fitted=fitted
+        baseline=None,
+        accepted=False,
+        reasons=tuple(reasons),
+        candidates=candidates,
+        fitted=fitted,
+        n_stretches=n_stretches,
+        n_short_stretches=n_short_stretches,
     )
 
 
@@ -798,26 +862,33 @@ class _FitOptions:
             return self.order.n_params
         return self.search.largest_n_params(n_inputs)
 
-    def shortfall(self, n_total: int, n_inputs: int) -> str | None:
-        """Why a window of ``n_total`` samples is too short, or None."""
+    def shortfall(self, n_total: int, n_inputs: int, breaks: tuple[int, ...] = ()) -> str | None:
+        """Why a window of ``n_total`` samples cut at ``breaks`` is too short, or None.
+
+        Counts the regression rows the fit would use: each stretch, and each
+        side of the validation split, loses its first ``depth`` samples.
+        """
         n_validation = round(self.validation_fraction * n_total)
         depth = self.depth()
         n_params = self.largest_n_params(n_inputs)
         spp = self.acceptance.min_samples_per_param
-        rows = n_total - n_validation - depth
+        est_breaks, val_breaks = split_breaks(breaks, n_total, self.validation_fraction)
+        rows = scored_rows(est_breaks, n_total - n_validation, depth)
         needed = max(spp * n_params, n_params + 1)
+        held = f"{n_total} samples" + (f" in {len(breaks) + 1} stretches" if breaks else "")
+        each = " per stretch" if breaks else ""
         if rows < needed:
             return (
-                f"the window holds {n_total} samples: after "
-                f"{100.0 * self.validation_fraction:.0f} % held back for validation and {depth} "
-                f"for the model's history, {max(rows, 0)} remain to fit up to {n_params} "
+                f"the window holds {held}: after "
+                f"{100.0 * self.validation_fraction:.0f} % held back for validation and "
+                f"{depth}{each} for the model's history, {rows} remain to fit up to {n_params} "
                 f"parameters, but {needed} ({spp} per parameter) are needed: record a longer window"
             )
-        if n_validation - depth < 2:
+        if scored_rows(val_breaks, n_validation, depth) < 2:
             return (
-                f"the window holds {n_total} samples, of which {n_validation} are held back for "
+                f"the window holds {held}, of which {n_validation} are held back for "
                 f"validation, but scoring the fit needs at least {depth + 2} there (the model's "
-                "history plus two): record a longer window or hold back a larger share"
+                f"history plus two{each}): record a longer window or hold back a larger share"
             )
         return None
 
@@ -909,17 +980,18 @@ def _check_record(
     return y_arr, u_arr, t_arr
 
 
-def _check_grid(t: NDArray[np.float64], sample_period_s: float) -> None:
+def _check_grid(t: NDArray[np.float64], sample_period_s: float, gaps: Gaps) -> tuple[int, ...]:
+    """Return the index after each gap; raise at an irregular step, or a gap when refused."""
     steps = np.diff(t)
     late = np.flatnonzero(steps > GAP_FACTOR * sample_period_s)
     early = np.flatnonzero(steps < _EARLY_FACTOR * sample_period_s)
-    if late.size and (not early.size or late[0] < early[0]):
+    if gaps == "refuse" and late.size and (not early.size or late[0] < early[0]):
         k = int(late[0]) + 1
         raise GridError(
             f"t: gap of {steps[k - 1]:.6g} s between sample {k - 1} (t={t[k - 1]:.3f}) and "
             f"sample {k} (t={t[k]:.3f}), more than {GAP_FACTOR} sample periods "
             f"({GAP_FACTOR * sample_period_s:.6g} s): give a gap-free window, for example the "
-            "samples before or after the gap",
+            'samples before or after the gap, or fit across the gaps with gaps="split"',
             index=k,
         )
     if early.size:
@@ -931,6 +1003,43 @@ def _check_grid(t: NDArray[np.float64], sample_period_s: float) -> None:
             "out-of-order or extra samples)",
             index=k,
         )
+    return tuple(int(k) + 1 for k in late)
+
+
+def _long_stretches(
+    breaks: tuple[int, ...], n_total: int, depth: int
+) -> tuple[NDArray[np.intp] | None, tuple[int, ...], int]:
+    """Leave out stretches of at most ``depth`` samples: they give no regression row.
+
+    Returns the indices of the samples kept (None: all of them), the
+    breaks among them and the number of stretches left out.
+    """
+    bounds = (0, *breaks, n_total)
+    kept: list[NDArray[np.intp]] = []
+    new_breaks: list[int] = []
+    count = 0
+    for a, b in zip(bounds[:-1], bounds[1:], strict=True):
+        if b - a <= depth:
+            continue
+        if kept:
+            new_breaks.append(count)
+        kept.append(np.arange(a, b))
+        count += b - a
+    left_out = len(bounds) - 1 - len(kept)
+    if not left_out:
+        return None, breaks, 0
+    index = np.concatenate(kept) if kept else np.zeros(0, dtype=np.intp)
+    return index, tuple(new_breaks), left_out
+
+
+def _scored(
+    values: NDArray[np.float64], breaks: tuple[int, ...], start: int
+) -> NDArray[np.float64]:
+    """Return the samples of each stretch from its sample ``start`` on, stretch after stretch."""
+    bounds = (0, *breaks, values.shape[0])
+    return np.concatenate(
+        [values[a + start : b] for a, b in zip(bounds[:-1], bounds[1:], strict=True)]
+    )
 
 
 def _excitation_reasons(
@@ -964,9 +1073,13 @@ def _excitation_reasons(
 
 
 def _lasso_covariance(
-    order: ArxOrder, fit: BatchFit, y_est: NDArray[np.float64], u_est: NDArray[np.float64]
+    order: ArxOrder,
+    fit: BatchFit,
+    y_est: NDArray[np.float64],
+    u_est: NDArray[np.float64],
+    breaks: tuple[int, ...],
 ) -> NDArray[np.float64]:
-    phi, _ = regression_matrix(order, y_est, u_est)
+    phi, _ = segment_regression_matrix(order, y_est, u_est, breaks)
     active = np.flatnonzero(fit.theta != 0.0)
     cov = np.zeros((order.n_params, order.n_params))
     if active.size:
@@ -989,26 +1102,36 @@ def fit_baseline(
     validation_fraction: float = 0.3,
     mode: str | None = None,
     acceptance: AcceptanceRule = DEFAULT_ACCEPTANCE,
+    gaps: Gaps = "refuse",
 ) -> BaselineResult:
-    r"""Fit a commissioning baseline on one gap-free window and judge it.
+    r"""Fit a commissioning baseline on a gap-free window, or on several, and judge it.
 
     Steps:
 
     1. Check that ``t`` is one uniform grid: consecutive samples between
-       half and :data:`GAP_FACTOR` sample periods apart. A gap raises
-       :class:`GridError` with its location; the caller picks a gap-free
-       window (splitting silently would fit on a window nobody chose).
+       half and :data:`GAP_FACTOR` sample periods apart. By default a gap
+       raises :class:`GridError` with its location, and the caller picks a
+       gap-free window (splitting silently would fit on a window nobody
+       chose). With ``gaps="split"`` the caller asks for the split: the
+       gaps cut the window into gap-free stretches (of one operating mode,
+       say, recorded on several days), and the fit uses them all, each with
+       its own history, so no regressor reaches across a gap. A stretch too
+       short to give a regression row (at most the deepest history on the
+       order grid) is left out and counted in
+       :attr:`BaselineResult.n_short_stretches`.
     2. Refuse, with a reason, a window that is too short for
        ``acceptance.min_samples_per_param`` (judged for the largest
-       candidate), an input that never moved, inputs that moved in step, or
-       an output that never changed.
+       candidate, on the regression rows the stretches give), an input that
+       never moved, inputs that moved in step, or an output that never
+       changed.
     3. Without ``order``, rank the orders of ``search`` by ``criterion``
        with :func:`arxwatch.estimators.order.select_order` (always by least
        squares, on the same estimation samples) and take the best.
     4. Fit that order with
        :func:`arxwatch.estimators.identify.fit_arx` on the leading
-       ``1 - validation_fraction`` of the window and score the one-step
-       prediction on the rest.
+       ``1 - validation_fraction`` of the window's samples and score the
+       one-step prediction on the rest (a stretch cut by the split becomes
+       two).
     5. Refuse a fit that leaves no noise (residual standard deviation
        below 1e-9 of the largest output: a computed or stuck point), then
        judge the rest with ``acceptance``.
@@ -1051,23 +1174,28 @@ def fit_baseline(
         Operating mode the baseline is for.
     acceptance : AcceptanceRule, optional
         When to accept; default :data:`DEFAULT_ACCEPTANCE`.
+    gaps : {"refuse", "split"}, optional
+        What a gap in ``t`` does: raise :class:`GridError` (the default) or
+        split the window into stretches fitted together.
 
     Returns
     -------
     BaselineResult
-        The accepted baseline, or the reasons for refusing the window.
+        The accepted baseline, or the reasons for refusing the window; the
+        baseline records the first and last time, the samples and the
+        stretches it was fitted on.
 
     Raises
     ------
     GridError
-        If ``t`` has a gap or an irregular step; the message gives the
-        sample indices and times.
+        If ``t`` has an irregular step, or a gap unless ``gaps="split"``;
+        the message gives the sample indices and times.
     DimensionError
         If the shapes of ``y``, ``u``, ``t`` or ``order`` disagree.
     ValueError
-        If an option is out of range or contradicts another, the data hold
-        NaN or infinity, or (rarely, after the input checks) every order on
-        the grid is rank deficient.
+        If an option is out of range or contradicts another (``gaps``
+        included), the data hold NaN or infinity, or (rarely, after the
+        input checks) every order on the grid is rank deficient.
     TypeError
         If ``order``, ``search`` or ``acceptance`` has the wrong type.
 
@@ -1103,24 +1231,50 @@ def fit_baseline(
     >>> readout = result.baseline.readout
     >>> round(readout.gains[0], 2), round(readout.time_constant_s, -1)
     (-0.2, 600.0)
+
+    The same record with two hours missing in the middle: the two stretches
+    are fitted together.
+
+    >>> kept = np.r_[100:300, 420:600]
+    >>> split = fit_baseline(temp[kept], valve[kept], t[kept], sample_period_s=60.0, gaps="split")
+    >>> split.accepted, split.baseline.n_stretches, split.baseline.n_samples
+    (True, 2, 380)
     """
     ts = _positive(sample_period_s, "sample_period_s")
     y_arr, u_arr, t_arr = _check_record(y, u, t)
-    n_total, n_inputs = u_arr.shape
+    n_inputs = u_arr.shape[1]
     options = _fit_options(
         order, search, criterion, method, alpha, validation_fraction, acceptance, n_inputs
     )
     if mode is not None and not isinstance(mode, str):
         raise TypeError(f"mode must be a string or None, got {mode!r}")
-    _check_grid(t_arr, ts)
-    short = options.shortfall(n_total, n_inputs)
+    if gaps not in _GAPS:
+        raise ValueError(f"gaps must be one of {list(_GAPS)}, got {gaps!r}")
+    breaks = _check_grid(t_arr, ts, gaps)
+    depth = options.depth()
+    kept, breaks, left_out = _long_stretches(breaks, t_arr.shape[0], depth)
+    if kept is not None:
+        if not kept.size:
+            return _refused(
+                [
+                    f"none of the {left_out} gap-free stretches of the window is longer than "
+                    f"the model's history ({depth} samples), so none gives a sample to fit: "
+                    "record longer stretches of steady operation in this mode"
+                ],
+                n_stretches=0,
+                n_short_stretches=left_out,
+            )
+        y_arr, u_arr, t_arr = y_arr[kept], u_arr[kept], t_arr[kept]
+    n_total, n_used = y_arr.shape[0], len(breaks) + 1
+    short = options.shortfall(n_total, n_inputs, breaks)
     if short is not None:
-        return _refused([short])
+        return _refused([short], n_stretches=n_used, n_short_stretches=left_out)
     y_est, _, y_val, _ = split_series(y_arr, u_arr, options.validation_fraction)
     u_est = u_arr[: y_est.shape[0]]
-    reasons = _excitation_reasons(y_est, u_est, y_val[options.depth() :])
+    est_breaks, val_breaks = split_breaks(breaks, n_total, options.validation_fraction)
+    reasons = _excitation_reasons(y_est, u_est, _scored(y_val, val_breaks, depth))
     if reasons:
-        return _refused(reasons)
+        return _refused(reasons, n_stretches=n_used, n_short_stretches=left_out)
 
     candidates: tuple[OrderCandidate, ...] = ()
     chosen = options.order
@@ -1132,6 +1286,7 @@ def fit_baseline(
             grid.na,
             grid.nb,
             grid.nk,
+            breaks=breaks,
             criterion=options.criterion,
             validation_fraction=options.validation_fraction,
             constant=grid.constant,
@@ -1144,6 +1299,7 @@ def fit_baseline(
             chosen,
             y_arr,
             u_arr,
+            breaks=breaks,
             method=options.method,
             validation_fraction=options.validation_fraction,
             **kwargs,
@@ -1155,6 +1311,8 @@ def fit_baseline(
                 "still or repeating itself): move the inputs more while recording"
             ],
             candidates,
+            n_stretches=n_used,
+            n_short_stretches=left_out,
         )
     fit = arx_fit.fit
     floor = (_EXACT_FIT_RTOL * float(np.max(np.abs(y_arr)))) ** 2
@@ -1165,8 +1323,12 @@ def fit_baseline(
                 "likely computed from the input or stuck, not a measurement"
             ],
             candidates,
+            n_stretches=n_used,
+            n_short_stretches=left_out,
         )
-    cov = fit.cov if fit.cov is not None else _lasso_covariance(chosen, fit, y_est, u_est)
+    cov = fit.cov
+    if cov is None:
+        cov = _lasso_covariance(chosen, fit, y_est, u_est, est_breaks)
     assert arx_fit.fit_percent_validation is not None  # validation_fraction > 0
     fitted = Baseline(
         mode=mode,
@@ -1184,12 +1346,19 @@ def fit_baseline(
         n_samples=n_total,
         criterion=options.criterion if options.order is None else None,
         candidates=candidates,
+        n_stretches=n_used,
     )
     reasons = list(options.acceptance.check(fitted))
     if reasons:
-        return _refused(reasons, candidates, fitted)
+        return _refused(reasons, candidates, fitted, n_stretches=n_used, n_short_stretches=left_out)
     return BaselineResult(
-        baseline=fitted, accepted=True, reasons=(), candidates=candidates, fitted=fitted
+        baseline=fitted,
+        accepted=True,
+        reasons=(),
+        candidates=candidates,
+        fitted=fitted,
+        n_stretches=n_used,
+        n_short_stretches=left_out,
     )
 
 
@@ -1261,7 +1430,7 @@ class BaselineSet:
             If anything is malformed; the message names the key path.
         """
         expect_keys(data, {"format", "version", "baselines"}, where)
-        _expect_header(data, cls.FORMAT, cls.VERSION, where)
+        _expect_header(data, cls.FORMAT, (cls.VERSION,), where)
         items = data["baselines"]
         if not isinstance(items, list):
             raise CodecError(f"{where}.baselines: expected a list, got {kind_of(items)}")
@@ -1283,8 +1452,9 @@ class LearnerConfig:
     sample_period_s : float
         Grid spacing Ts of the incoming samples, seconds, > 0.
     span_s : float
-        Length of uninterrupted operation in one mode to learn from,
-        seconds; long enough for the order grid and the acceptance rule.
+        Operation in one mode to learn from, seconds: the gap-free stretches
+        of the mode together (each counts from its first to its last
+        sample); long enough for the order grid and the acceptance rule.
     max_samples : int, optional
         Most samples kept per mode (a memory bound), at least the
         ``floor(span_s / sample_period_s) + 1`` of a regular grid.
@@ -1371,19 +1541,29 @@ def _config_options(config: LearnerConfig) -> _FitOptions:
 
 
 class _Run:
-    """Samples of one mode collected so far: compact float arrays."""
+    """Samples of one mode collected so far: compact float arrays and their coverage."""
 
-    __slots__ = ("t", "y", "u")
+    __slots__ = ("t", "y", "u", "closed_s", "stretch_start_s")
 
     def __init__(self) -> None:
-        self.t = array("d")
-        self.y = array("d")
-        self.u = array("d")  # row-major, n_inputs per sample
+        self.clear()
 
     def clear(self) -> None:
         self.t = array("d")
         self.y = array("d")
-        self.u = array("d")
+        self.u = array("d")  # row-major, n_inputs per sample
+        self.closed_s = 0.0  # seconds covered by the stretches before the current one
+        self.stretch_start_s = 0.0  # time of the current stretch's first sample
+
+    def start_stretch(self, t: float) -> None:
+        """Close the current stretch (if any) and start one at ``t``."""
+        if self.t:
+            self.closed_s += self.t[-1] - self.stretch_start_s
+        self.stretch_start_s = t
+
+    def coverage_s(self) -> float:
+        """Seconds covered by all stretches, each from its first to its last sample."""
+        return self.closed_s + (self.t[-1] - self.stretch_start_s) if self.t else 0.0
 
 
 class LiveBaselineLearner:
@@ -1397,16 +1577,20 @@ class LiveBaselineLearner:
     * A sample less than half a sample period after the previous one
       (duplicate, re-delivered or out of order) is ignored.
     * A sample more than :data:`GAP_FACTOR` periods after the previous one
-      restarts the collection of that mode with this sample: a baseline
-      needs ``span_s`` of uninterrupted operation in its mode, the same
-      gap-free window :func:`fit_baseline` insists on. Time spent in
-      another mode is such a gap.
-    * Once the window covers ``span_s`` (or holds ``max_samples``) the mode
-      is :meth:`ready` and further samples are ignored until
-      :meth:`finish`.
-    * :meth:`finish` fits the window. An accepted baseline freezes the
-      mode; a refusal drops the window and collection starts afresh, so
-      the next window gets a new chance.
+      starts a new stretch of that mode; what was collected is kept. Time
+      spent in another mode is such a gap, so an air handler switching
+      between occupied and unoccupied every day collects both modes, a
+      stretch a day each.
+    * Once the stretches together cover ``span_s`` (each from its first to
+      its last sample; see :meth:`coverage_s`) or hold ``max_samples``, the
+      mode is :meth:`ready` and further samples are ignored until
+      :meth:`finish`. For one uninterrupted stretch that is the window from
+      its first sample to the one ``span_s`` later.
+    * :meth:`finish` fits all stretches together (:func:`fit_baseline` with
+      ``gaps="split"``: no regressor reaches across a gap; a stretch too
+      short for the model's history is left out). An accepted baseline
+      freezes the mode; a refusal drops the window and collection starts
+      afresh, so the next window gets a new chance.
 
     Parameters
     ----------
@@ -1423,15 +1607,17 @@ class LiveBaselineLearner:
     >>> learner.add(1.7e9 + 60.0, 21.0, [40.0], mode="dehumidify")
     'ignored'
     >>> learner.add(1.7e9 + 300.0, 21.1, [45.0], mode="heating")
-    'restarted'
+    'collected'
+    >>> learner.add(1.7e9 + 360.0, 21.2, [45.0], mode="heating")
+    'collected'
     >>> learner.ready("heating"), learner.coverage_s("heating")
-    (False, 0.0)
+    (False, 60.0)
     """
 
     __slots__ = ("config", "_options", "_runs", "_frozen")
 
     FORMAT: ClassVar[str] = "arxwatch.baseline-learner"
-    VERSION: ClassVar[int] = 1
+    VERSION: ClassVar[int] = 2
 
     def __init__(self, config: LearnerConfig) -> None:
         if not isinstance(config, LearnerConfig):
@@ -1457,9 +1643,9 @@ class LiveBaselineLearner:
 
         Returns
         -------
-        {"collected", "restarted", "ignored"}
-            "restarted" when a gap dropped the earlier samples of the mode
-            and this one starts a new window.
+        {"collected", "ignored"}
+            Whether the sample was kept (also when it starts a new stretch
+            after a gap).
 
         Raises
         ------
@@ -1475,30 +1661,32 @@ class LiveBaselineLearner:
         values = [float(t), float(y), *(float(v) for v in u)]
         if not all(math.isfinite(v) for v in values):
             return "ignored"
-        outcome: AddOutcome = "collected"
         if run.t:
             step = values[0] - run.t[-1]
             ts = self.config.sample_period_s
             if step < _EARLY_FACTOR * ts:
                 return "ignored"
             if step > GAP_FACTOR * ts:
-                run.clear()
-                outcome = "restarted"
+                run.start_stretch(values[0])
+        else:
+            run.start_stretch(values[0])
         run.t.append(values[0])
         run.y.append(values[1])
         run.u.extend(values[2:])
-        return outcome
+        return "collected"
 
     def coverage_s(self, mode: str | None = None) -> float:
-        """Seconds covered by the current window of ``mode`` (0 once frozen).
+        """Seconds covered by the stretches collected in ``mode`` (0 once frozen).
+
+        Each stretch counts from its first to its last sample, so a single
+        sample after a gap adds nothing (it gives no regression row either).
 
         Raises
         ------
         ValueError
             If ``mode`` is not learned.
         """
-        run = self._run(mode)
-        return run.t[-1] - run.t[0] if len(run.t) > 1 else 0.0
+        return self._run(mode).coverage_s()
 
     def ready(self, mode: str | None = None) -> bool:
         """Whether ``mode`` has a full window waiting for :meth:`finish`.
@@ -1545,6 +1733,7 @@ class LiveBaselineLearner:
             validation_fraction=options.validation_fraction,
             mode=mode,
             acceptance=options.acceptance,
+            gaps="split",
         )
         run.clear()
         if result.baseline is not None:
@@ -1583,11 +1772,14 @@ class LiveBaselineLearner:
         Returns
         -------
         dict
-            ``{"format": "arxwatch.baseline-learner", "version": 1, "modes":
+            ``{"format": "arxwatch.baseline-learner", "version": 2, "modes":
             [{"mode", "t", "y", "u", "baseline"}, ...]}`` in the order of
             ``config.modes``; ``t`` and ``y`` are lists of numbers, ``u`` a
             list of per-sample lists, ``baseline`` a :meth:`Baseline.to_dict`
             or null. Settings are not included: they come from the config.
+            Version 2 may hold several stretches of a mode (the gaps in
+            ``t`` separate them); version 1, written before, never did, and
+            is read the same way.
         """
         n_inputs = self.config.n_inputs
         entries = []
@@ -1611,12 +1803,13 @@ class LiveBaselineLearner:
         Raises
         ------
         CodecError
-            If the state is malformed or its modes differ from
-            ``config.modes``; the message names the key path.
+            If the state is malformed, of a version other than 1 or 2, or
+            its modes differ from ``config.modes``; the message names the
+            key path.
         """
         where = "learner"
         expect_keys(state, {"format", "version", "modes"}, where)
-        _expect_header(state, self.FORMAT, self.VERSION, where)
+        _expect_header(state, self.FORMAT, (1, self.VERSION), where)
         entries = state["modes"]
         modes = self.config.modes
         if not isinstance(entries, list) or len(entries) != len(modes):
@@ -1636,6 +1829,7 @@ class LiveBaselineLearner:
             run.y.extend(_numbers(entry["y"], count, f"{path}.y"))
             for k, row in enumerate(_list(entry["u"], count, f"{path}.u")):
                 run.u.extend(_numbers(row, n_inputs, f"{path}.u[{k}]"))
+            self._restore_coverage(run)
             if entry["baseline"] is not None:
                 baseline = Baseline.from_dict(entry["baseline"], where=f"{path}.baseline")
                 if baseline.mode != mode:
@@ -1653,10 +1847,20 @@ class LiveBaselineLearner:
             raise ValueError(f"mode {mode!r} is not learned; learned modes: {list(self._runs)}")
         return run
 
+    def _restore_coverage(self, run: _Run) -> None:
+        """Find the stretches of loaded samples as :meth:`add` did: same operations, same bits."""
+        gap = GAP_FACTOR * self.config.sample_period_s
+        times = run.t
+        run.t = array("d")
+        for k, t in enumerate(times):
+            if k == 0 or t - times[k - 1] > gap:
+                run.start_stretch(t)
+            run.t.append(t)
+
     def _is_full(self, run: _Run) -> bool:
         if not run.t:
             return False
-        return len(run.t) >= self.config.max_samples or run.t[-1] - run.t[0] >= self.config.span_s
+        return len(run.t) >= self.config.max_samples or run.coverage_s() >= self.config.span_s
 
 
 # -- plain-data helpers ----------------------------------------------------------
@@ -1730,12 +1934,14 @@ def _check_readout(readout: object, order: ArxOrder, sample_period_s: float) -> 
         raise ValueError("readout: values must be finite numbers or nan, found an infinity")
 
 
-def _expect_header(data: dict[str, Any], fmt: str, version: int, where: str) -> None:
+def _expect_header(data: dict[str, Any], fmt: str, versions: tuple[int, ...], where: str) -> None:
     if data["format"] != fmt:
         raise CodecError(f"{where}.format: expected {fmt!r}, got {data['format']!r}")
-    if data["version"] != version or isinstance(data["version"], bool):
+    if data["version"] not in versions or isinstance(data["version"], bool):
+        readable = " and ".join(map(str, versions))
         raise CodecError(
-            f"{where}.version: this build reads version {version}, got {data['version']!r}"
+            f"{where}.version: this build reads version{'s' if len(versions) > 1 else ''} "
+            f"{readable}, got {data['version']!r}"
         )
 
 

@@ -19,6 +19,7 @@ import pytest
 from numpy.typing import NDArray
 from scipy.signal import lfilter
 
+from arxwatch.daemon.simulate import REFERENCE_LOOPS, daily_operation
 from arxwatch.estimators.arx import ArxOrder, regression_matrix
 from arxwatch.estimators.baseline import (
     DEFAULT_ACCEPTANCE,
@@ -383,7 +384,8 @@ def _broken(accepted: Baseline, path: tuple[Any, ...], value: Any) -> dict[str, 
         (("sigma2",), -1.0, r"^baseline\.sigma2: expected a finite number > 0, got -1.0$"),
         (("sigma2",), KeyError, r"^baseline: missing key\(s\) \['sigma2'\]$"),
         (("extra",), 1, r"^baseline: unknown key\(s\) \['extra'\]$"),
-        (("version",), 2, r"^baseline\.version: this build reads version 1, got 2$"),
+        (("version",), 3, r"^baseline\.version: this build reads versions 1 and 2, got 3$"),
+        (("version",), 2, r"^baseline: missing key\(s\) \['n_stretches'\]$"),
         (("format",), "x", r"^baseline\.format: expected 'arxwatch.baseline', got 'x'$"),
         (("order", "nb"), [0], r"^baseline\.order: nb\[0\] must be in \[1, 240\], got 0$"),
         (("order", "constant"), "yes", r"^baseline\.order\.constant: expected true or false"),
@@ -529,16 +531,20 @@ def test_learner_collects_per_mode_and_ignores_unknown_modes() -> None:
     assert learner.baselines().modes == ("heating",)
 
 
-def test_learner_gap_restarts_the_mode() -> None:
+def test_learner_gap_starts_a_stretch_and_keeps_the_samples() -> None:
     learner = LiveBaselineLearner(learner_config())
     y, u, t = record(n=400)
     feed(learner, y[:100], u[:100], t[:100], "cooling")
-    # Two samples lost: more than GAP_FACTOR periods, the window starts again.
-    assert learner.add(float(t[102]), float(y[102]), [float(u[102])], "cooling") == "restarted"
-    assert learner.coverage_s("cooling") == 0.0
+    # Two samples lost: more than GAP_FACTOR periods, a new stretch; the first is kept.
+    assert learner.add(float(t[102]), float(y[102]), [float(u[102])], "cooling") == "collected"
+    assert learner.coverage_s("cooling") == 99 * TS  # the new stretch covers nothing yet
     assert learner.add(float(t[102]), 0.0, [0.0], "cooling") == "ignored"  # duplicate
     assert learner.add(float(t[103]), math.nan, [0.0], "cooling") == "ignored"
-    assert learner.add(float(t[104]), float(y[104]), [float(u[104])], "cooling") == "restarted"
+    assert learner.add(float(t[104]), float(y[104]), [float(u[104])], "cooling") == "collected"
+    assert learner.coverage_s("cooling") == 99 * TS  # t[102] alone: a stretch of one sample
+    assert learner.add(float(t[105]), float(y[105]), [float(u[105])], "cooling") == "collected"
+    assert learner.coverage_s("cooling") == 100 * TS
+    assert len(learner.to_state()["modes"][1]["t"]) == 103
 
 
 def test_learner_refusal_starts_afresh() -> None:
@@ -638,3 +644,170 @@ def test_learner_without_modes_uses_mode_none() -> None:
     assert result.accepted and result.baseline is not None
     assert result.baseline.mode is None and result.baseline.criterion == "bic"
     assert learner.baselines().for_mode(None) is result.baseline
+
+
+# --- several gap-free stretches -----------------------------------------------
+
+
+def test_split_on_a_gap_free_window_is_the_default_fit() -> None:
+    y, u, t = record()
+    default = fit_baseline(y, u, t, sample_period_s=TS)
+    split = fit_baseline(y, u, t, sample_period_s=TS, gaps="split")
+    assert default.baseline is not None and split.baseline is not None
+    assert split.baseline.to_dict() == default.baseline.to_dict()
+    assert (split.n_stretches, split.n_short_stretches) == (1, 0)
+    assert split.baseline.to_dict()["version"] == 1  # one stretch: readable by older releases
+
+
+def test_split_fits_across_gaps_and_counts_short_stretches() -> None:
+    y, u, t = record(n=900)
+    # stretches of 300, 4 (shorter than the grid's history of 7: left out), 200, 396 samples
+    keep = np.r_[0:300, 310:314, 330:530, 535:900]
+    with pytest.raises(GridError, match=r"between sample 299 .* fit across the gaps with gaps="):
+        fit_baseline(y[keep], u[keep], t[keep], sample_period_s=TS)
+    result = fit_baseline(y[keep], u[keep], t[keep], sample_period_s=TS, gaps="split")
+    assert result.accepted and result.baseline is not None
+    assert (result.n_stretches, result.n_short_stretches) == (3, 1)
+    b = result.baseline
+    assert (b.n_stretches, b.n_samples) == (3, 300 + 200 + 365)
+    assert (b.window_start_s, b.window_end_s) == (float(t[0]), float(t[899]))
+    assert b.readout.gains[0] == pytest.approx(-0.02 / (1 - 0.9), rel=0.05)  # process()
+    data = json.loads(json.dumps(b.to_dict()))
+    assert (data["version"], data["n_stretches"]) == (2, 3)
+    assert Baseline.from_dict(data).to_dict() == data
+
+
+def test_split_refuses_when_every_stretch_is_too_short() -> None:
+    y, u, t = record(n=400)
+    keep = np.concatenate([np.arange(k, k + 5) for k in range(0, 400, 10)])
+    result = fit_baseline(y[keep], u[keep], t[keep], sample_period_s=TS, gaps="split")
+    assert not result.accepted and (result.n_stretches, result.n_short_stretches) == (0, 40)
+    assert result.reasons[0].startswith("none of the 40 gap-free stretches of the window")
+
+
+def test_split_counts_rows_not_samples_for_the_acceptance_rule() -> None:
+    # 40 stretches of 8 samples: 320 samples, enough as one window, but each stretch
+    # loses the grid's 7 samples of history, so the 224 estimation samples give 28 rows
+    y, u, t = record(n=1300)
+    keep = np.concatenate([np.arange(k, k + 8) for k in range(0, 1280, 32)])
+    assert fit_baseline(y[:320], u[:320], t[:320], sample_period_s=TS).accepted
+    result = fit_baseline(y[keep], u[keep], t[keep], sample_period_s=TS, gaps="split")
+    assert not result.accepted and result.fitted is None
+    assert result.reasons == (
+        "the window holds 320 samples in 40 stretches: after 30 % held back for validation "
+        "and 7 per stretch for the model's history, 28 remain to fit up to 5 parameters, but "
+        "50 (10 per parameter) are needed: record a longer window",
+    )
+
+
+def test_split_refuses_an_unknown_gaps_option() -> None:
+    y, u, t = record()
+    with pytest.raises(ValueError, match=r"gaps must be one of \['refuse', 'split'\], got 'skip'"):
+        fit_baseline(y, u, t, sample_period_s=TS, gaps="skip")  # type: ignore[arg-type]
+
+
+# --- the learner on an air handler switching modes every 12 h -------------------
+
+DAY = 1440  # samples at 60 s
+AHU_SPAN_S = 2 * 86400.0
+
+
+def ahu_days(days: int) -> tuple[NDArray[np.float64], ...]:
+    """Simulate an air handler occupied 00:00-12:00 and unoccupied 12:00-24:00, every day.
+
+    Its coil loops are two of the simulator's reference loops (invented plants): the
+    first-order one while occupied, the second-order one while unoccupied.
+    """
+    n = days * DAY
+    u = daily_operation(n, TS, seed=7)
+    occupied = (np.arange(n) % DAY) < DAY // 2
+    y = np.where(
+        occupied,
+        REFERENCE_LOOPS["first-order+dead-time"].simulate(u, seed=8),
+        REFERENCE_LOOPS["second-order"].simulate(u, seed=9),
+    )
+    return y, u, T0 + TS * np.arange(n), occupied
+
+
+def ahu_learner() -> LiveBaselineLearner:
+    # as the config makes it (AssetClassConfig.learner_config): max_samples = span / Ts + 1
+    return LiveBaselineLearner(
+        LearnerConfig(
+            sample_period_s=TS,
+            span_s=AHU_SPAN_S,
+            max_samples=2 * DAY + 1,
+            modes=("occupied", "unoccupied"),
+        )
+    )
+
+
+def feed_ahu(
+    learner: LiveBaselineLearner, data: tuple[NDArray[np.float64], ...], lo: int, hi: int
+) -> dict[str, int]:
+    """Offer samples lo..hi-1; finish a mode as soon as it is ready, return when it was."""
+    y, u, t, occupied = data
+    ready: dict[str, int] = {}
+    for k in range(lo, hi):
+        mode = "occupied" if occupied[k] else "unoccupied"
+        learner.add(float(t[k]), float(y[k]), [float(u[k])], mode)
+        if learner.ready(mode):
+            ready[mode] = k
+            learner.finish(mode)
+    return ready
+
+
+def test_learner_gets_a_baseline_per_mode_from_daily_stretches() -> None:
+    data = ahu_days(5)
+    y, u, t, occupied = data
+    # By construction the old rule (one uninterrupted window covering span_s) can never
+    # be met: no mode runs longer than 12 h, a quarter of the span, and one gap-free
+    # window is all fit_baseline takes by default.
+    longest_s = (DAY // 2 - 1) * TS
+    assert longest_s < AHU_SPAN_S / 4
+    with pytest.raises(GridError, match="gap of 43260 s"):
+        fit_baseline(y[occupied], u[occupied], t[occupied], sample_period_s=TS)
+    learner = ahu_learner()
+    ready = feed_ahu(learner, data, 0, 5 * DAY)
+    # max_samples (2 days + 1 sample, as the config sets it) fills first: four 12 h
+    # stretches hold 2880 samples, so a mode is ready at the first sample of its fifth
+    # stretch, day 4 for occupied, day 4.5 for unoccupied; that lone sample gives no
+    # regression row and is left out
+    assert ready == {"occupied": 4 * DAY, "unoccupied": 4 * DAY + DAY // 2}
+    for mode in ("occupied", "unoccupied"):
+        b = learner.baseline(mode)
+        assert b is not None and (b.n_stretches, b.n_samples) == (4, 2 * DAY)
+        # Source: REFERENCE_LOOPS, both coil loops have a gain of -0.11 degC/%
+        assert b.readout.gains[0] == pytest.approx(-0.11, rel=0.05)
+    occupied_b = learner.baseline("occupied")
+    assert occupied_b is not None and occupied_b.window_start_s == float(t[0])
+    assert occupied_b.window_end_s == float(t[3 * DAY + DAY // 2 - 1])
+
+
+def test_learner_checkpoint_mid_collection_round_trips() -> None:
+    data = ahu_days(5)
+    learner = ahu_learner()
+    feed_ahu(learner, data, 0, 2 * DAY + 300)  # two and a half stretches per mode so far
+    state = json.loads(json.dumps(learner.to_state(), allow_nan=False))
+    assert state["version"] == 2
+    restored = ahu_learner()
+    restored.load_state(state)
+    assert restored.to_state() == state
+    for mode in ("occupied", "unoccupied"):
+        assert restored.coverage_s(mode) == learner.coverage_s(mode)
+    assert feed_ahu(restored, data, 2 * DAY + 300, 5 * DAY) == feed_ahu(
+        learner, data, 2 * DAY + 300, 5 * DAY
+    )
+    assert restored.baselines().to_dict() == learner.baselines().to_dict()
+
+
+def test_learner_reads_version_1_state() -> None:
+    # Version 1 states never held a gap (a gap restarted the window): read as one stretch.
+    learner = LiveBaselineLearner(learner_config())
+    y, u, t = record(n=400)
+    feed(learner, y[:200], u[:200], t[:200], "cooling")
+    state = learner.to_state()
+    restored = LiveBaselineLearner(learner_config())
+    restored.load_state({**state, "version": 1})
+    assert restored.coverage_s("cooling") == learner.coverage_s("cooling") == 199 * TS
+    with pytest.raises(CodecError, match=r"^learner\.version: this build reads versions 1 and 2"):
+        restored.load_state({**state, "version": 3})
