@@ -40,7 +40,7 @@ from numpy.typing import NDArray
 
 from arxwatch.daemon.alert import SignalNames, build_record
 from arxwatch.daemon.decide import BankTransition, TrackerBank, Transition
-from arxwatch.daemon.fleetnative import FLOAT_OUT, INT_OUT, innovation_kernel
+from arxwatch.daemon.fleetnative import FLOAT_OUT, INT_OUT, innovation_kernel, live_kernel
 from arxwatch.daemon.monitor import (
     CHANGE_DETECTORS,
     MonitorConfig,
@@ -56,6 +56,7 @@ from arxwatch.estimators.detect.parameter import FeatureDrift, FeatureDriftConfi
 from arxwatch.estimators.detect.prewhiten import fit_reference
 from arxwatch.estimators.detect.whiteness import block_statistics, evidence_of_block
 from arxwatch.estimators.estimator import ArxEstimator, Backend, resolve_backend
+from arxwatch.estimators.native import NON_FINITE
 from arxwatch.estimators.readout import feature_matrix, feature_names, read_out
 from arxwatch.estimators.rls import TRACE_CHECK_EVERY, StateLayout, build_kernel
 
@@ -87,6 +88,12 @@ _VARIANCE_KEY = "innovation_variance/innovation"
 _WHITENESS_KEY = "innovation_whiteness/innovation"
 _DRIFT_KEY = "feature_drift/features"
 _QUALITY_KINDS = ("out_of_range", "stuck", "gap", "stale")
+
+#: Largest wave of a group that the compiled back end takes a row at a time:
+#: beyond a thousand channels or so the row's state no longer stays in the
+#: cache between rows, and the numpy path (column at a time, same bits) is
+#: faster (tests/benchmarks/bench_monitor.py).
+_COMPILED_ROWS = 1024
 
 Float = NDArray[np.float64]
 Index = NDArray[np.intp]
@@ -195,8 +202,12 @@ class _Group:
         self.variance_upper = config.variance.upper_limit
         self.variance_lower = config.variance.lower_limit
         self.settle = config.settle_samples()
-        # the compiled innovation path (fleetnative) and its settings, or None
+        # the compiled innovation path and live estimate (fleetnative) and their settings
         self.kernel_compiled = innovation_kernel() if compiled else None
+        self.live_compiled: Any = None
+        self.live_constants: Float = np.zeros(0)
+        if compiled:
+            self.live_compiled, self.live_constants = live_kernel(self.layout, config.rls)
         self.structure = np.array(
             [
                 order.na,
@@ -206,6 +217,7 @@ class _Group:
                 config.whiteness.window,
                 config.cusum.after_alarm == "restart",
                 config.variance.lower,
+                config.evaluate_every,
             ],
             dtype=np.int64,
         )
@@ -481,11 +493,18 @@ class _Group:
         self.tap = {}
         sel = _as_slice(ch)
         every: Sel = slice(0, ch.shape[0])
-        if self.kernel_compiled is not None:
+        compiled = self.kernel_compiled is not None and ch.shape[0] <= _COMPILED_ROWS
+        if compiled:
             found, changing = self._innovate_compiled(ch, time_s, y, u)
         else:
             found, changing = self._innovate(sel, time_s, y, u)
         # 2. the live estimate (ArxEstimator.update)
+        if compiled:
+            due_eval = self._live_compiled(ch, y, u)
+            if due_eval.any():
+                dp = np.flatnonzero(due_eval)
+                found += self._evaluate(dp, ch[dp], time_s[dp], changing[dp])
+            return found
         ready = a["rls_count"][sel] >= self.depth
         y_hist = y.copy()
         if ready.any():
@@ -509,6 +528,34 @@ class _Group:
                 dp = _indices(rp)[due_eval]
                 found += self._evaluate(dp, _indices(rc)[due_eval], time_s[dp], changing[dp])
         return found
+
+    def _live_compiled(self, ch: Index, y: Float, u: Float) -> NDArray[np.bool_]:
+        """Step 2 of :meth:`step` in one compiled call; return the rows due for an evaluation.
+
+        Raises
+        ------
+        ValueError
+            If a sample is not finite (the numpy path lets nan into the
+            state instead; AssetMonitor refuses it as this does).
+        """
+        a, out = self.arrays, np.zeros((2, ch.shape[0]), dtype=np.int64)
+        assert self.live_compiled is not None
+        try:
+            self.live_compiled(
+                ch,
+                np.ascontiguousarray(y),
+                np.ascontiguousarray(u),
+                self.structure,
+                self.nb,
+                self.nk,
+                *(a[name] for name in ("rls_y", "rls_u", "rls_count", "rls", "samples")),
+                self.live_constants,
+                out,
+            )
+        except NON_FINITE:
+            raise ValueError("a sample for the live estimate is not finite") from None
+        due: NDArray[np.bool_] = out[1] != 0
+        return due
 
     def _innovate(
         self, sel: Sel, time_s: Float, y: Float, u: Float
@@ -1020,12 +1067,15 @@ class FleetMonitor:
     quality_signals : sequence of str, optional
         Signals whose data-quality evidence :meth:`quality` will be given.
     backend : {"python", "compiled", "auto"}, optional
-        How the innovation path of each row runs: ``"python"`` (default),
-        numpy calls per sample time, always available; ``"compiled"``, one
-        call into code compiled by numba (:mod:`arxwatch.daemon.fleetnative`,
-        the optional ``fast`` extra; compiled at the first monitor of a
-        process, or read from numba's cache); ``"auto"``, compiled when numba
-        can be imported. The records and state are the same, bit for bit.
+        How the rows of a sample time are judged: ``"python"`` (default),
+        numpy calls per sample time, always available; ``"compiled"``, the
+        innovation detectors and the live estimate in code compiled by numba
+        (:mod:`arxwatch.daemon.fleetnative`, the optional ``fast`` extra;
+        compiled when a model order is first met in a process, a few
+        seconds), for sample times of up to about a thousand assets of one
+        order (more go the numpy way); ``"auto"``, compiled when numba can
+        be imported. The records and state are the same, bit for bit; a
+        non-finite sample raises ValueError on the compiled back end.
 
     Raises
     ------

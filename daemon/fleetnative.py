@@ -9,14 +9,18 @@ machine code, a row at a time: the baseline model's residual and its
 winsorising, the regressor histories, prewhitening (the reference's running
 sums while it is collected, the AR filter after), CUSUM, the moving
 variance and the whiteness test's running sums, and which tracker episodes
-the evaluations touch. The rare steps (fitting a prewhitening filter, ending
-a whiteness block, the tracker's transitions, the evidence of a record) stay
-with the numpy code of :mod:`arxwatch.daemon.fleet`, as does the live RLS
-update.
+the evaluations touch (:func:`innovation_kernel`); then the live estimate:
+regressor, the per-asset RLS kernel of :mod:`arxwatch.estimators.native`,
+histories and sample counts (:func:`live_kernel`). The rare steps (fitting a
+prewhitening filter, ending a whiteness block, the tracker's transitions,
+the hourly evaluations, the evidence of a record) stay with the numpy code
+of :mod:`arxwatch.daemon.fleet`. A row at a time pays while a wave's state
+stays in the processor's cache: the fleet hands waves of more than about a
+thousand channels to its numpy path (``_COMPILED_ROWS``).
 
 numba is the optional ``fast`` extra, as for
-:mod:`arxwatch.estimators.native`: it is imported on the first
-:func:`innovation_kernel` call, never when the package loads.
+:mod:`arxwatch.estimators.native`: it is imported on the first kernel
+request, never when the package loads.
 
 Same bits as the numpy path
 ---------------------------
@@ -25,7 +29,10 @@ order as the element-wise numpy code of :class:`arxwatch.daemon.fleet._Group`
 (the sums over regressor entries in the same order, ``a - b + c * d / e``
 evaluated left to right as Python does), so the records and the state
 arrays agree to the last bit (``tests/unit/test_fleet.py`` runs both back
-ends against :class:`~arxwatch.daemon.monitor.AssetMonitor`). That holds
+ends against :class:`~arxwatch.daemon.monitor.AssetMonitor` and compares
+every state array). The live estimate is the per-asset compiled kernel,
+which matches the batched numpy kernel bit for bit
+(``tests/unit/test_native.py``, ``tests/unit/test_batch.py``). That holds
 because numba is used without ``fastmath`` (no reassociation, no fused
 multiply-add, see :mod:`arxwatch.estimators.native`), ``math.sqrt`` is
 correctly rounded like ``numpy.sqrt``, division follows numpy's rules
@@ -42,8 +49,12 @@ from functools import lru_cache
 from typing import Any
 
 import numpy as np
+from numpy.typing import NDArray
 
-__all__ = ["FLOAT_OUT", "INT_OUT", "innovation_kernel"]
+from arxwatch.estimators import native
+from arxwatch.estimators.rls import RlsConfig, StateLayout
+
+__all__ = ["FLOAT_OUT", "INT_OUT", "innovation_kernel", "live_kernel"]
 
 #: Rows of the kernel's float output, by name.
 FLOAT_OUT = (
@@ -90,6 +101,39 @@ def _add_value(
         past[0, c] = x
 
 
+def _regressor(
+    phi: Any, hist_y: Any, hist_u: Any, c: int, u: Any, i: int, nb: Any, nk: Any, constant: int
+) -> None:  # pragma: no cover - compiled
+    """``_Group._regressor`` for channel ``c`` and row ``i``, into ``phi``."""
+    j = 0
+    for a in range(hist_y.shape[0]):
+        phi[j] = -hist_y[a, c]
+        j += 1
+    for q in range(nb.shape[0]):
+        for lag in range(nk[q], nk[q] + nb[q]):
+            phi[j] = u[i, q] if lag == 0 else hist_u[q, lag - 1, c]
+            j += 1
+    if constant:
+        phi[j] = 1.0
+
+
+def _push(
+    hist_y: Any, hist_u: Any, count: Any, c: int, y: float, u: Any, i: int, depth: int
+) -> None:  # pragma: no cover - compiled
+    """``_Group._push`` for channel ``c``: y and row ``i`` of ``u`` into the histories."""
+    na, m, depth_u = hist_y.shape[0], hist_u.shape[0], hist_u.shape[1]
+    for a in range(na - 1, 0, -1):
+        hist_y[a, c] = hist_y[a - 1, c]
+    if na:
+        hist_y[0, c] = y
+    if depth_u:
+        for q in range(m):
+            for a in range(depth_u - 1, 0, -1):
+                hist_u[q, a, c] = hist_u[q, a - 1, c]
+            hist_u[q, 0, c] = u[i, q]
+    count[c] = min(count[c] + 1, depth)
+
+
 def _innovate(
     ch: Any,
     y: Any,
@@ -131,16 +175,14 @@ def _innovate(
     variance lambda, 1 / lower limit, upper limit). The state arrays are
     updated in place, channel on the last axis.
     """
-    na, constant, depth = structure[0], structure[1], structure[2]
+    constant, depth = structure[1], structure[2]
     reference, window = structure[3], structure[4]
     restart, lower = structure[5], structure[6]
     clip, k_ref, h = settings[0], settings[1], settings[2]
     lam, low_threshold, upper = settings[3], settings[4], settings[5]
     keep = 1.0 - lam
-    m = nb.shape[0]
     n = theta0.shape[0]
     p = pw_past.shape[0]
-    hist_u = base_u.shape[1]
     phi = np.empty(n)
     for i in range(ch.shape[0]):
         c = ch[i]
@@ -149,16 +191,7 @@ def _innovate(
         out_i[0, i] = raised[c, 0] or raised[c, 1]
         if base_count[c] >= depth:
             # 1. the baseline model's normalised residual (_Group.step)
-            j = 0
-            for a in range(na):
-                phi[j] = -base_y[a, c]
-                j += 1
-            for q in range(m):
-                for lag in range(nk[q], nk[q] + nb[q]):
-                    phi[j] = u[i, q] if lag == 0 else base_u[q, lag - 1, c]
-                    j += 1
-            if constant:
-                phi[j] = 1.0
+            _regressor(phi, base_y, base_u, c, u, i, nb, nk, constant)
             prediction = 0.0
             spread = 0.0
             for j in range(n):
@@ -230,16 +263,53 @@ def _innovate(
                 wh_count[c] = count + 1
                 out_i[10, i] = count + 1 >= window
         # 6. the baseline histories (_Group._push)
-        for a in range(na - 1, 0, -1):
-            base_y[a, c] = base_y[a - 1, c]
-        if na:
-            base_y[0, c] = y_past
-        if hist_u:
-            for q in range(m):
-                for a in range(hist_u - 1, 0, -1):
-                    base_u[q, a, c] = base_u[q, a - 1, c]
-                base_u[q, 0, c] = u[i, q]
-        base_count[c] = min(base_count[c] + 1, depth)
+        _push(base_y, base_u, base_count, c, y_past, u, i, depth)
+
+
+_LIVE_SOURCE = """
+def live(ch, y, u, structure, nb, nk, rls_y, rls_u, rls_count, rls, samples, constants, out):
+    constant, depth, every = structure[1], structure[2], structure[7]
+    size = rls.shape[0]
+    s = np.empty(size)
+    phi = np.empty({n})
+    for i in range(ch.shape[0]):
+        c = ch[i]
+        y_hist = y[i]
+        if rls_count[c] >= depth:
+            _regressor(phi, rls_y, rls_u, c, u, i, nb, nk, constant)
+            for q in range(size):
+                s[q] = rls[q, c]
+            prediction, e, _, w, _, _ = _native(s, constants, {arguments})
+            for q in range(size):
+                rls[q, c] = s[q]
+            y_hist = prediction + w * e
+            samples[c] += 1
+            out[0, i] = 1
+            out[1, i] = samples[c] % every == 0
+        _push(rls_y, rls_u, rls_count, c, y_hist, u, i, depth)
+"""
+
+
+@lru_cache(maxsize=1)
+def _helpers() -> dict[str, Any]:
+    """Compile the helpers the kernels call; return numba's options for the kernels."""
+    try:
+        numba = importlib.import_module("numba")
+    except ImportError as error:
+        raise ImportError(
+            "the compiled fleet back end needs numba: pip install 'arxwatch[fast]'"
+        ) from error
+    options: dict[str, Any] = {"fastmath": False, "error_model": "numpy", "cache": True}
+    try:
+        numba.njit(**options)(_add_value)
+    except RuntimeError:  # no writable place for numba's cache (a read-only install)
+        options["cache"] = False
+    # Compiled code calls only compiled functions: the kernels find the
+    # compiled helpers under the helpers' own names, in this module's globals.
+    # Inlined (numba's IR level): a call per row and helper costs more than its work.
+    for helper in (_add_value, _regressor, _push):
+        globals()[helper.__name__] = numba.njit(inline="always", **options)(helper)
+    return options
 
 
 @lru_cache(maxsize=1)
@@ -255,19 +325,44 @@ def innovation_kernel() -> Any:
     ImportError
         If numba is not installed.
     """
-    try:
-        numba = importlib.import_module("numba")
-    except ImportError as error:
-        raise ImportError(
-            "the compiled fleet back end needs numba: pip install 'arxwatch[fast]'"
-        ) from error
-    options: dict[str, Any] = {"fastmath": False, "error_model": "numpy", "cache": True}
-    try:
-        helper = numba.njit(**options)(_add_value)
-    except RuntimeError:  # no writable place for numba's cache (a read-only install)
-        options["cache"] = False
-        helper = numba.njit(**options)(_add_value)
-    # Compiled code calls only compiled functions: the kernel finds the
-    # compiled helper under the helper's own name, in this module's globals.
-    globals()["_add_value"] = helper
-    return numba.njit(**options)(_innovate)
+    options = _helpers()
+    return importlib.import_module("numba").njit(**options)(_innovate)
+
+
+@lru_cache(maxsize=64)
+def live_kernel(layout: StateLayout, config: RlsConfig) -> tuple[Any, NDArray[np.float64]]:
+    """Return the compiled live estimate of a group's rows, and the settings it takes.
+
+    ``live(ch, y, u, structure, nb, nk, rls_y, rls_u, rls_count, rls,
+    samples, constants, out)`` does step 2 of ``_Group.step`` a row at a
+    time: the regressor from the live histories, the per-asset RLS kernel
+    compiled by :mod:`arxwatch.estimators.native` (the same bits as the
+    batched numpy kernel the numpy path runs), the filter-cleaned output
+    into the histories, and the sample count; ``out[0]`` marks the rows
+    updated, ``out[1]`` those due for an evaluation. Made for the model
+    structure, so compiled once per structure and process (about a second;
+    its source is generated, so numba cannot cache it on disk).
+
+    Raises
+    ------
+    ImportError
+        If numba is not installed.
+    """
+    _helpers()
+    numba = importlib.import_module("numba")
+    core, constants = native.compiled_core(layout, config)
+    arguments = [
+        *(f"phi[{j}]" for j in range(layout.n_params)),
+        "y[i]",
+        *(f"u[i, {q}]" for q in range(layout.n_inputs)),
+    ]
+    source = _LIVE_SOURCE.format(n=layout.n_params, arguments=", ".join(arguments))
+    namespace: dict[str, Any] = {
+        "np": np,
+        "_native": core,
+        "_regressor": globals()["_regressor"],
+        "_push": globals()["_push"],
+    }
+    exec(compile(source, f"<arxwatch fleet live n={layout.n_params}>", "exec"), namespace)
+    live = numba.njit(fastmath=False, error_model="numpy")(namespace["live"])
+    return live, constants

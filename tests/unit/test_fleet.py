@@ -7,6 +7,7 @@ from collections.abc import Callable
 import numpy as np
 import pytest
 
+from arxwatch.daemon import fleet as fleet_module
 from arxwatch.daemon.alert import SignalNames
 from arxwatch.daemon.fleet import FleetMonitor
 from arxwatch.daemon.monitor import AssetMonitor, MonitorConfig
@@ -165,9 +166,15 @@ def test_records_equal_per_asset_monitors(
 
 
 @pytest.mark.skipif(not available(), reason="numba is not installed (pip install '.[fast]')")
-def test_compiled_backend_leaves_the_same_state_bit_for_bit(assets: dict) -> None:
+@pytest.mark.parametrize("largest", [None, 5], ids=["compiled", "mixed"])
+def test_compiled_backend_leaves_the_same_state_bit_for_bit(
+    assets: dict, largest: int | None, monkeypatch: pytest.MonkeyPatch
+) -> None:
     # The records agree (above); so must every state array, nan included,
-    # for a checkpoint of one back end to continue on the other.
+    # for a checkpoint of one back end to continue on the other. "mixed":
+    # waves of all six assets go the numpy way, smaller ones compiled.
+    if largest is not None:
+        monkeypatch.setattr(fleet_module, "_COMPILED_ROWS", largest)
     config = MonitorConfig(cusum=CusumConfig(h=5.0, after_alarm="restart"))
     states = []
     for backend in ("python", "compiled"):
