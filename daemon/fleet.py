@@ -40,7 +40,13 @@ from numpy.typing import NDArray
 
 from arxwatch.daemon.alert import SignalNames, build_record
 from arxwatch.daemon.decide import BankTransition, TrackerBank, Transition
-from arxwatch.daemon.fleetnative import FLOAT_OUT, INT_OUT, innovation_kernel, live_kernel
+from arxwatch.daemon.fleetnative import (
+    FLOAT_OUT,
+    INT_OUT,
+    TOTALS,
+    innovation_kernel,
+    live_kernel,
+)
 from arxwatch.daemon.monitor import (
     CHANGE_DETECTORS,
     MonitorConfig,
@@ -491,20 +497,18 @@ class _Group:
         """
         a, config = self.arrays, self.config
         self.tap = {}
-        sel = _as_slice(ch)
-        every: Sel = slice(0, ch.shape[0])
-        compiled = self.kernel_compiled is not None and ch.shape[0] <= _COMPILED_ROWS
-        if compiled:
+        if self.kernel_compiled is not None and ch.shape[0] <= _COMPILED_ROWS:
+            # steps 1 and 2 compiled, then step 3 as below
             found, changing = self._innovate_compiled(ch, time_s, y, u)
-        else:
-            found, changing = self._innovate(sel, time_s, y, u)
-        # 2. the live estimate (ArxEstimator.update)
-        if compiled:
             due_eval = self._live_compiled(ch, y, u)
             if due_eval.any():
                 dp = np.flatnonzero(due_eval)
                 found += self._evaluate(dp, ch[dp], time_s[dp], changing[dp])
             return found
+        sel = _as_slice(ch)
+        every: Sel = slice(0, ch.shape[0])
+        found, changing = self._innovate(sel, time_s, y, u)
+        # 2. the live estimate (ArxEstimator.update)
         ready = a["rls_count"][sel] >= self.depth
         y_hist = y.copy()
         if ready.any():
@@ -614,6 +618,7 @@ class _Group:
         a, k, tracker = self.arrays, ch.shape[0], self.tracker
         out_f = np.empty((len(FLOAT_OUT), k))
         out_i = np.zeros((len(INT_OUT), k), dtype=np.int64)
+        totals = np.zeros(len(TOTALS), dtype=np.int64)
         assert self.kernel_compiled is not None
         self.kernel_compiled(
             ch,
@@ -632,21 +637,23 @@ class _Group:
             self.settings,
             out_f,
             out_i,
+            totals,
         )
         f = dict(zip(FLOAT_OUT, out_f, strict=True))
         i = dict(zip(INT_OUT, out_i, strict=True))
-        ready = i["ready"] != 0
-        if ready.any():
-            self.tap["base"] = (ready, f["prediction"][ready], f["z"][ready])
-        for c in ch[i["fit"] != 0].tolist():
-            self._fit_prewhitener(c)
+        n = dict(zip(TOTALS, totals.tolist(), strict=True))
+        every = slice(0, k)  # the kernel leaves nan where a value was not computed
+        if n["ready"]:
+            self.tap["base"] = (every, f["prediction"], f["z"])
+        if n["fit"]:
+            for c in ch[i["fit"] != 0].tolist():
+                self._fit_prewhitener(c)
         found: list[tuple[int, int, Evidence, BankTransition]] = []
-        judged = i["judged"] != 0
-        if not judged.any():
+        if not n["judged"]:
             return found, i["changing"] != 0
-        self.tap["cusum"] = (judged, f["c_high"][judged], f["c_low"][judged])
-        busy = np.flatnonzero(i["cusum_busy"])
-        if busy.shape[0]:
+        self.tap["cusum"] = (every, f["c_high"], f["c_low"])
+        if n["cusum_busy"]:
+            busy = np.flatnonzero(i["cusum_busy"])
             cusum_h = float(self.config.cusum.h)
             alarm = i["cusum_alarm"][busy] != 0
             statistic = f["cusum_statistic"][busy]
@@ -654,15 +661,15 @@ class _Group:
                 r = int(busy[t.position])
                 ev = self._cusum_evidence(f["c_high"], f["c_low"], i["n_high"], i["n_low"], r)
                 found.append((r, 0, ev, t))
-        busy = np.flatnonzero(i["variance_busy"])
-        if busy.shape[0]:
+        if n["variance_busy"]:
+            busy = np.flatnonzero(i["variance_busy"])
             statistic, threshold = f["variance_statistic"][busy], f["variance_threshold"][busy]
             alarm = i["variance_alarm"][busy] != 0
             for t in tracker.observe(ch[busy], 1, statistic, threshold, alarm, time_s[busy]):
                 r = int(busy[t.position])
                 found.append((r, 1, self._variance_evidence(float(f["variance_s"][r])), t))
-        ended = np.flatnonzero(i["block_ended"])
-        if ended.shape[0]:
+        if n["block_ended"]:
+            ended = np.flatnonzero(i["block_ended"])
             found += self._end_blocks(ended, ch[ended], time_s[ended])
         return found, i["changing"] != 0
 
@@ -1393,9 +1400,12 @@ class FleetMonitor:
         restart_a = np.asarray(restart, dtype=np.bool_)
         records: list[tuple[int, int, dict[str, Any]]] = []
         # waves of rows with distinct sample times: each asset has one row per wave
-        order = np.argsort(time_a, kind="stable")
-        bounds = np.flatnonzero(np.diff(time_a[order])) + 1
-        for wave in np.split(order, bounds):
+        if time_a.min() == time_a.max():  # one sample time (a live grid point)
+            waves = [np.arange(k)]
+        else:
+            order = np.argsort(time_a, kind="stable")
+            waves = np.split(order, np.flatnonzero(np.diff(time_a[order])) + 1)
+        for wave in waves:
             if np.bincount(slot_a[wave]).max() > 1:
                 raise ValueError("an asset has two rows with the same sample time")
             records += self._wave(wave, slot_a, time_a, y_a, u_a, code_a, restart_a)
@@ -1413,31 +1423,41 @@ class FleetMonitor:
         restart: NDArray[np.bool_],
     ) -> list[tuple[int, int, dict[str, Any]]]:
         s = slots[rows]
-        for slot in s[restart[rows]].tolist():
-            self.restart(slot)
+        restarting = restart[rows]
+        if restarting.any():
+            for slot in s[restarting].tolist():
+                self.restart(slot)
         code = codes[rows]
-        known = code >= 0
-        group = np.full(rows.shape[0], -1, dtype=np.intp)
-        index = np.full(rows.shape[0], -1, dtype=np.intp)
-        group[known] = self._chan_group[s[known], code[known]]
-        index[known] = self._chan_index[s[known], code[known]]
+        if code.min() >= 0:  # the usual case: every row's mode has a code
+            group = self._chan_group[s, code].astype(np.intp)
+            index = self._chan_index[s, code].astype(np.intp)
+        else:
+            known = code >= 0
+            group = np.full(rows.shape[0], -1, dtype=np.intp)
+            index = np.full(rows.shape[0], -1, dtype=np.intp)
+            group[known] = self._chan_group[s[known], code[known]]
+            index[known] = self._chan_index[s[known], code[known]]
         has = group >= 0
         # a mode switch into a mode with a baseline restarts that mode's histories
         switch = has & (code != self._last_mode[s])
         self._last_mode[s] = code
-        self.skipped += int((~has).sum())
         out: list[tuple[int, int, dict[str, Any]]] = []
-        present = group[has]
-        if not present.shape[0]:
-            return []
+        low, high = int(group.min()), int(group.max())
+        if low < 0:  # rows in a mode without a baseline
+            self.skipped += int((~has).sum())
+            if high < 0:
+                return []
+            low = int(group[has].min())
         trace = self._trace
-        low, high = int(present.min()), int(present.max())
-        for g in [low] if low == high else np.unique(present).tolist():
+        for g in [low] if low == high else np.unique(group[has]).tolist():
             target = self._groups[g]
-            member = group == g
-            if (switch & member).any():
-                target.restart(index[switch & member])
-            ch, where = index[member], rows[member]
+            if low == high and has.all():  # one group takes every row: no selection
+                ch, where, switched = index, rows, switch
+            else:
+                member = group == g
+                ch, where, switched = index[member], rows[member], switch[member]
+            if switched.any():
+                target.restart(ch[switched])
             found = target.step(ch, time_s[where], y[where], u[where])
             if trace is not None:
                 self._trace_group(trace, target, ch, time_s[where], y[where])

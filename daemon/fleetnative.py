@@ -54,12 +54,12 @@ from numpy.typing import NDArray
 from arxwatch.estimators import native
 from arxwatch.estimators.rls import RlsConfig, StateLayout
 
-__all__ = ["FLOAT_OUT", "INT_OUT", "innovation_kernel", "live_kernel"]
+__all__ = ["FLOAT_OUT", "INT_OUT", "TOTALS", "innovation_kernel", "live_kernel"]
 
 #: Rows of the kernel's float output, by name.
 FLOAT_OUT = (
     "prediction",
-    "z",
+    "z",  # the normalised residual before winsorising
     "c_high",
     "c_low",
     "cusum_statistic",
@@ -67,6 +67,8 @@ FLOAT_OUT = (
     "variance_statistic",
     "variance_threshold",
 )
+#: Entries of the kernel's totals over the rows of a call: how many rows had each flag.
+TOTALS = ("ready", "judged", "fit", "cusum_busy", "variance_busy", "block_ended")
 #: Rows of the kernel's integer output, by name.
 INT_OUT = (
     "changing",  # an innovation alert was up before the row (read before any update)
@@ -167,8 +169,13 @@ def _innovate(
     settings: Any,
     out_f: Any,
     out_i: Any,
+    totals: Any,
 ) -> None:  # pragma: no cover - compiled
-    """Run the innovation path for rows ``ch`` (see the module notes); fill ``out_f``/``out_i``.
+    """Run the innovation path for rows ``ch`` (see the module notes); fill the outputs.
+
+    ``out_f`` and ``out_i`` get a column per row (prediction, z, c_high and
+    c_low nan where not computed, as a trace shows them); ``totals`` counts
+    the rows of each flag of :data:`TOTALS`.
 
     ``structure`` holds (na, constant, depth, reference_samples, window,
     cusum restart, variance lower); ``settings`` (clip, cusum k, cusum h,
@@ -188,6 +195,7 @@ def _innovate(
         c = ch[i]
         yi = y[i]
         y_past = yi
+        out_f[0, i] = out_f[1, i] = out_f[2, i] = out_f[3, i] = np.nan
         out_i[0, i] = raised[c, 0] or raised[c, 1]
         if base_count[c] >= depth:
             # 1. the baseline model's normalised residual (_Group.step)
@@ -202,18 +210,21 @@ def _innovate(
                 spread += phi[j] * inner
             e = yi - prediction
             z = e / math.sqrt(sigma2[c] + spread)
+            out_i[1, i] = 1
+            totals[0] += 1
+            out_f[0, i] = prediction
+            out_f[1, i] = z  # before winsorising, as the numpy path taps it
             if abs(z) > clip:
                 y_past = yi - e + e * clip / abs(z)
                 z = math.copysign(clip, z)
-            out_i[1, i] = 1
-            out_f[0, i] = prediction
-            out_f[1, i] = z
             # 2. prewhitening (_Group._innovations)
             count = pw_count[c]
             if count < reference:
                 _add_value(pw_sums, pw_head, pw_past, c, count, z)
                 pw_count[c] = count + 1
-                out_i[3, i] = count + 1 >= reference
+                if count + 1 >= reference:
+                    out_i[3, i] = 1
+                    totals[2] += 1
             else:
                 predicted = 0.0
                 for q in range(p):
@@ -229,6 +240,7 @@ def _innovate(
                 if eps < -clip:
                     eps = -clip
                 out_i[2, i] = 1
+                totals[1] += 1
                 # 3. CUSUM (_Group._cusum)
                 hi = c_high[c] + eps - k_ref
                 nh = n_high[c] + 1 if hi > 0.0 else 0
@@ -242,7 +254,9 @@ def _innovate(
                 alarm = statistic >= h
                 out_f[2, i], out_f[3, i], out_f[4, i] = hi, lo, statistic
                 out_i[4, i], out_i[5, i], out_i[6, i] = nh, nl, alarm
-                out_i[7, i] = alarm or raised[c, 0] or alarms[c, 0] != 0
+                if alarm or raised[c, 0] or alarms[c, 0] != 0:
+                    out_i[7, i] = 1
+                    totals[3] += 1
                 if restart and alarm:
                     hi, lo, nh, nl = 0.0, 0.0, 0, 0
                 c_high[c], c_low[c], n_high[c], n_low[c] = hi, lo, nh, nl
@@ -256,12 +270,16 @@ def _innovate(
                 alarm = statistic >= threshold
                 out_f[5, i], out_f[6, i], out_f[7, i] = s, statistic, threshold
                 out_i[8, i] = alarm
-                out_i[9, i] = alarm or raised[c, 1] or alarms[c, 1] != 0
+                if alarm or raised[c, 1] or alarms[c, 1] != 0:
+                    out_i[9, i] = 1
+                    totals[4] += 1
                 # 5. whiteness sums (_Group._whiteness)
                 count = wh_count[c]
                 _add_value(wh_sums, wh_head, wh_past, c, count, eps)
                 wh_count[c] = count + 1
-                out_i[10, i] = count + 1 >= window
+                if count + 1 >= window:
+                    out_i[10, i] = 1
+                    totals[5] += 1
         # 6. the baseline histories (_Group._push)
         _push(base_y, base_u, base_count, c, y_past, u, i, depth)
 

@@ -10,6 +10,7 @@ from arxwatch.daemon.simulate import REFERENCE_LOOPS, Fault, daily_operation
 from arxwatch.daemon.trace import FleetTrace, readout_features
 from arxwatch.estimators.baseline import Baseline, BaselineSet, fit_baseline
 from arxwatch.estimators.detect.cusum import CusumConfig
+from arxwatch.estimators.native import available
 
 PERIOD = 60.0
 PER_DAY = 1440
@@ -54,8 +55,10 @@ def plant() -> dict[str, tuple[np.ndarray, np.ndarray, list[str | None]]]:
     return out
 
 
-def _fleet(baseline: Baseline, config: MonitorConfig, plant: dict) -> FleetMonitor:
-    fleet = FleetMonitor(NAMES, config)
+def _fleet(
+    baseline: Baseline, config: MonitorConfig, plant: dict, backend: str = "python"
+) -> FleetMonitor:
+    fleet = FleetMonitor(NAMES, config, backend=backend)  # type: ignore[arg-type]
     for asset, (_, _, modes) in plant.items():
         if modes[0] is None:
             fleet.add_asset(asset, BaselineSet((baseline,)))
@@ -108,6 +111,26 @@ def test_records_are_the_same_with_the_trace_on(
     assert bool(np.all(np.diff(rows.time_s) > 0))
     assert trace.evaluations("larkspur/ahu-3").mode[-3:] != ()
     assert set(trace.evaluations("larkspur/ahu-3").mode) == {"day", "night"}
+
+
+@pytest.mark.skipif(not available(), reason="numba is not installed (pip install '.[fast]')")
+def test_the_compiled_backend_traces_the_same_numbers(baseline: Baseline, plant: dict) -> None:
+    traces = []
+    for backend in ("python", "compiled"):
+        fleet = _fleet(baseline, MonitorConfig(), plant, backend)
+        fleet.trace = trace = FleetTrace()
+        _drive(fleet, plant)
+        traces.append(trace)
+    python, compiled = traces
+    for asset in plant:
+        for kind in ("rows", "evaluations"):
+            ours, theirs = getattr(python, kind)(asset), getattr(compiled, kind)(asset)
+            for name, value in vars(ours).items():
+                other = vars(theirs)[name]
+                if isinstance(value, np.ndarray):
+                    assert value.tobytes() == other.tobytes(), (asset, kind, name)
+                else:
+                    assert value == other, (asset, kind, name)
 
 
 def test_trace_holds_the_readable_twins_numbers(baseline: Baseline, plant: dict) -> None:
