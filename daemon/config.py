@@ -915,7 +915,8 @@ class BaselineConfig:
     Parameters
     ----------
     learn_for_s : float or None
-        Learn it from the first this many seconds of data.
+        Learn it from the first this many seconds of data in each mode,
+        over as many gap-free stretches as it takes.
     file : Path or None
         Load an accepted baseline from this file.
     """

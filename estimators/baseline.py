@@ -1567,7 +1567,7 @@ class _Run:
 
 
 class LiveBaselineLearner:
-    """Collect a window per operating mode while the service runs, then freeze.
+    """Collect gap-free stretches per operating mode while the service runs, then freeze.
 
     Rules, per mode of ``config.modes``:
 
@@ -1585,7 +1585,10 @@ class LiveBaselineLearner:
       its last sample; see :meth:`coverage_s`) or hold ``max_samples``, the
       mode is :meth:`ready` and further samples are ignored until
       :meth:`finish`. For one uninterrupted stretch that is the window from
-      its first sample to the one ``span_s`` later.
+      its first sample to the one ``span_s`` later. With ``max_samples`` at
+      ``span_s / sample_period_s + 1``, as the service sets it, a mode
+      gathered in several stretches is ready once its samples times the
+      period cover ``span_s``.
     * :meth:`finish` fits all stretches together (:func:`fit_baseline` with
       ``gaps="split"``: no regressor reaches across a gap; a stretch too
       short for the model's history is left out). An accepted baseline
