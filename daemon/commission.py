@@ -9,10 +9,14 @@ nothing is learned live meanwhile: every class is treated as loading an
 empty baseline file.
 
 Per asset, and per operating mode when the class names a mode signal, the
-fit takes the longest gap-free stretch of that mode's rows in the chosen
-time range (:func:`~arxwatch.estimators.baseline.fit_baseline` needs one
-uniform grid; splicing stretches together would invent dynamics at the
-seams). The orders come from the class's ``model``: fixed, or chosen by BIC
+fit takes every gap-free stretch of that mode's rows in the chosen time
+range (:func:`~arxwatch.estimators.baseline.fit_baseline` with
+``gaps="split"``: each stretch with its own history, none spliced to the
+next, which would invent dynamics at the seams; a stretch too short for the
+model's history is left out). A mode that runs for half of each day is
+thus fitted on all its days, not on its longest stretch alone, and the
+table says how many stretches each fit used. The orders come from the
+class's ``model``: fixed, or chosen by BIC
 over the default search ranges (``model: auto``), with the default
 acceptance rule, exactly as a live learner of the class would fit. Accepted
 baselines go into baseline files (:mod:`arxwatch.daemon.library`); a
@@ -30,7 +34,6 @@ from pathlib import Path
 from typing import IO, Literal
 
 import numpy as np
-from numpy.typing import NDArray
 
 from arxwatch.daemon.config import (
     AssetClassConfig,
@@ -50,7 +53,7 @@ from arxwatch.daemon.intake import RowBatch
 from arxwatch.daemon.library import BaselineFileError, read_baselines, write_baselines
 from arxwatch.daemon.pipeline import Pipeline
 from arxwatch.daemon.replay import REPLAY_EXTRA_CELLS, ProgressLine, replay
-from arxwatch.estimators.baseline import GAP_FACTOR, BaselineResult, BaselineSet, fit_baseline
+from arxwatch.estimators.baseline import BaselineResult, BaselineSet, fit_baseline
 
 __all__ = [
     "AssetFit",
@@ -187,9 +190,11 @@ class AssetFit:
     mode : str or None
         Operating mode; None for a class without a mode signal.
     rows : int
-        Rows of this mode in the time range.
+        Rows of this mode in the time range, all offered to the fit.
     window : tuple of (float, float, int) or None
-        First and last time and rows of the stretch fitted; None without rows.
+        First and last time of those rows and how many the fit used (rows
+        of stretches too short for the model's history are left out); None
+        without rows.
     result : BaselineResult or None
         The fit; None when it could not be attempted (``problem`` says why).
     problem : str or None
@@ -215,22 +220,6 @@ class AssetFit:
         if self.problem is not None:
             return (self.problem,)
         return () if self.result is None else self.result.reasons
-
-
-def longest_stretch(time_s: NDArray[np.float64], sample_period_s: float) -> tuple[int, int]:
-    """Return [start, stop) of the longest run of rows at most GAP_FACTOR periods apart.
-
-    Examples
-    --------
-    >>> longest_stretch(np.array([0.0, 60.0, 180.0, 240.0, 300.0]), 60.0)
-    (2, 5)
-    """
-    if time_s.shape[0] == 0:
-        return 0, 0
-    breaks = np.flatnonzero(np.diff(time_s) > GAP_FACTOR * sample_period_s) + 1
-    bounds = np.concatenate(([0], breaks, [time_s.shape[0]]))
-    best = int(np.argmax(np.diff(bounds)))  # the first of equally long stretches
-    return int(bounds[best]), int(bounds[best + 1])
 
 
 def _modes(asset_class: AssetClassConfig, seen: Sequence[str | None]) -> list[str | None]:
@@ -262,16 +251,19 @@ def fit_asset(asset_class: AssetClassConfig, asset: str, rows: _Rows) -> list[As
             out.append(AssetFit(name, asset, mode, 0, None, None, "no complete rows in this mode"))
             continue
         t, y, u = t_all[mask], y_all[mask], u_all[mask]
-        lo, hi = longest_stretch(t, period)
-        window = (float(t[lo]), float(t[hi - 1]), hi - lo)
+        window = (float(t[0]), float(t[-1]), n_rows)
         try:
             result = fit_baseline(
-                y[lo:hi], u[lo:hi], t[lo:hi], sample_period_s=period,
-                order=asset_class.model.order, mode=mode,
+                y, u, t, sample_period_s=period, order=asset_class.model.order, mode=mode,
+                gaps="split",
             )  # fmt: skip
-        except ValueError as err:  # GridError, DimensionError, rank deficiency, NaN
+        except (
+            ValueError
+        ) as err:  # GridError (irregular step), DimensionError, rank deficiency, NaN
             out.append(AssetFit(name, asset, mode, n_rows, window, None, f"no fit: {err}"))
             continue
+        if result.fitted is not None:
+            window = (window[0], window[1], result.fitted.n_samples)
         out.append(AssetFit(name, asset, mode, n_rows, window, result))
     return out
 
@@ -294,6 +286,17 @@ def _length(seconds: float) -> str:
     return f"{hours / 24.0:.1f} d" if hours >= 48.0 else f"{hours:.1f} h"
 
 
+def _stretches(fit: AssetFit, sample_period_s: float) -> str:
+    """Gap-free stretches the fit used and the time their rows cover; those too short."""
+    if fit.result is None or fit.window is None:
+        return _DASH
+    cell = f"{fit.result.n_stretches}"
+    if fit.result.fitted is not None:  # window[2] counts the rows used
+        cell += f" ({_length(fit.window[2] * sample_period_s)})"
+    short = fit.result.n_short_stretches
+    return cell + (f" +{short} too short" if short else "")
+
+
 def fit_table(asset_class: AssetClassConfig, fits: Sequence[AssetFit]) -> list[str]:
     """Plain-text table of one class's fits, with each refusal's reasons under its row."""
     output = asset_class.output
@@ -306,7 +309,7 @@ def fit_table(asset_class: AssetClassConfig, fits: Sequence[AssetFit]) -> list[s
     ]
     header = (
         "asset", "mode", "na", "nb", "nk", "fit %", f"gain ({gain_unit})", "tau (s)",
-        "dead time (s)", f"sigma ({output.unit})", "window (UTC)", "result",
+        "dead time (s)", f"sigma ({output.unit})", "window (UTC)", "stretches", "result",
     )  # fmt: skip
     table: list[tuple[str, ...]] = [header]
     notes: list[list[str]] = [[]]
@@ -333,7 +336,16 @@ def fit_table(asset_class: AssetClassConfig, fits: Sequence[AssetFit]) -> list[s
                 _number(math.sqrt(model.sigma2)),
             )
         result = "accepted" if fit.accepted else "refused"
-        table.append((fit.asset, fit.mode or _DASH, *cells, window, result))
+        table.append(
+            (
+                fit.asset,
+                fit.mode or _DASH,
+                *cells,
+                window,
+                _stretches(fit, asset_class.sample_period_s),
+                result,
+            )
+        )
         notes.append([f"  - {reason}" for reason in fit.reasons])
     widths = [max(len(row[j]) for row in table) for j in range(len(header))]
     for row, below in zip(table, notes, strict=True):

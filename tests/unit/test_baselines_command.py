@@ -12,7 +12,6 @@ import numpy as np
 import pytest
 
 from arxwatch.daemon.cli import main
-from arxwatch.daemon.commission import longest_stretch
 from arxwatch.daemon.config import load_config
 from arxwatch.daemon.history import HistoryReader
 from arxwatch.daemon.library import read_site_baselines
@@ -221,13 +220,6 @@ def test_the_first_fit_writes_the_baseline_file_the_config_names(
     assert main(["check", "--config", str(config)]) == 0
 
 
-def test_longest_stretch_picks_the_longest_gap_free_run() -> None:
-    t = np.array([0.0, 60.0, 120.0, 300.0, 360.0, 420.0, 480.0, 600.0])
-    assert longest_stretch(t, 60.0) == (3, 7)
-    assert longest_stretch(t[:3], 60.0) == (0, 3)
-    assert longest_stretch(np.zeros(0), 60.0) == (0, 0)
-
-
 def test_a_class_with_a_mode_signal_gets_a_baseline_per_mode(
     tmp_path: Path, capsys: pytest.CaptureFixture
 ) -> None:
@@ -265,10 +257,18 @@ def test_a_class_with_a_mode_signal_gets_a_baseline_per_mode(
         if cells[0] == "block-c/vav-3"
     }
     assert set(rows) == {("block-c/vav-3", "occupied"), ("block-c/vav-3", "unoccupied")}
-    # each mode is fitted on its longest stretch alone: 12 h, the tolerance above doubled
-    # for a quarter of the samples (standard errors grow as one over the square root)
-    assert float(rows[("block-c/vav-3", "occupied")][6]) == pytest.approx(LOOP.gain, rel=0.04)
-    assert float(rows[("block-c/vav-3", "unoccupied")][6]) == pytest.approx(night.gain, rel=0.04)
-    assert "(720 of 1,440 rows)" in rows[("block-c/vav-3", "occupied")][10]
+    # every stretch of each mode is fitted: 24 h of rows each, half the two days of the
+    # fits above, so their tolerance grown by sqrt(2) (standard errors grow as one over
+    # the square root of the samples); occupied runs in two stretches, unoccupied in
+    # three (00:00-07:00, 19:00-07:00, 19:00-24:00)
+    occupied, unoccupied = (
+        rows[("block-c/vav-3", "occupied")],
+        rows[("block-c/vav-3", "unoccupied")],
+    )
+    assert float(occupied[6]) == pytest.approx(LOOP.gain, rel=0.03)
+    assert float(unoccupied[6]) == pytest.approx(night.gain, rel=0.03)
+    assert (occupied[10], occupied[11]) == ("2026-01-01 07:00 +36.0 h", "2 (24.0 h)")
+    assert (unoccupied[10], unoccupied[11]) == ("2026-01-01 00:00 +48.0 h", "3 (24.0 h)")
+    assert occupied[12] == unoccupied[12] == "accepted"
     library = read_site_baselines(load_config(config))["vav"]
     assert library["block-c/vav-3"].modes == ("occupied", "unoccupied")
