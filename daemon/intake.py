@@ -197,6 +197,13 @@ _CHECK_FIELDS = 11
 Needed = Callable[[NDArray[np.intp], NDArray[np.intp]], NDArray[np.bool_]]
 
 
+def _flat(array: NDArray[Any]) -> NDArray[Any]:
+    """Return a state array with its axes as one, a view: fancy indexing on one axis is cheaper."""
+    if not array.flags.c_contiguous:  # never: the state arrays are made and loaded contiguous
+        raise AssertionError("intake state arrays must be C-contiguous")
+    return array.reshape(-1)
+
+
 def _first_index(time_s: float, period: float) -> int:
     """Smallest k with ``k * period >= time_s`` (as ``Aligner``, exact in floating point)."""
     k = math.ceil(time_s / period)
@@ -639,14 +646,18 @@ class IntakeBank:
         arrays = self._arrays
         period = self.config.sample_period_s
         cell = _first_index(time_s, period)
-        old_newest = arrays["newest"][slots, signals]
+        pairs = slots * len(self.signals) + signals  # flat (slot, signal) positions
+        newest = _flat(arrays["newest"])
+        old_newest = newest[pairs]
         if usable.any() and cell * period <= time_s + self.config.staleness_s:
-            self._hold_many(slots[usable], signals[usable], time_s, values[usable], cell)
+            self._hold_many(
+                pairs[usable], slots[usable], signals[usable], time_s, values[usable], cell
+            )
         first = arrays["first_index"]
         opening = slots[arrays["last_index"][slots] == _OPEN]
         # one cell for all: a slot given twice gets the same value (no ufunc.at needed)
         first[opening] = np.minimum(first[opening], cell)
-        arrays["newest"][slots, signals] = time_s
+        newest[pairs] = time_s
         quality_of = self._quality_of_array[signals]
         checked = quality_of >= 0
         if checked.any():
@@ -684,7 +695,7 @@ class IntakeBank:
         ordered = np.sort(pairs)
         if bool((ordered[1:] == ordered[:-1]).any()):  # a pair twice
             return False
-        newest = self._arrays["newest"][slots, signals]
+        newest = _flat(self._arrays["newest"])[pairs]
         if not (np.isnan(newest) | (newest < time_s)).all():
             return False  # duplicates and older samples: as add decides, one by one
         last = self._arrays["last_index"][slots]
@@ -693,16 +704,20 @@ class IntakeBank:
 
     def _hold_many(
         self,
+        pairs: NDArray[np.intp],
         slots: NDArray[np.intp],
         signals: NDArray[np.intp],
         time_s: float,
         values: NDArray[np.float64],
         cell: int,
     ) -> None:
-        """Hold usable samples newer than all held for their pairs (_take, on arrays)."""
+        """Hold usable samples newer than all held for their pairs (_take, on arrays).
+
+        ``pairs`` are the flat (slot, signal) positions of ``slots`` and ``signals``.
+        """
         period = self.config.sample_period_s
         times = self._arrays["time"]
-        held = times[slots, signals]  # (k, cells)
+        held = times.reshape(-1, self.cells)[pairs]  # (k, cells)
         same_cell = ((cell - 1) * period < held) & (held <= cell * period)
         empty = np.isnan(held)
         last_col = self.cells - 1
@@ -719,8 +734,9 @@ class IntakeBank:
         if overflow.any():  # every entry holds an older cell: the oldest goes
             np.add.at(self._arrays["counts"][:, self._column["overflow"]], slots[overflow], 1)
             target[overflow] = np.argmin(held[overflow], axis=1)
-        times[slots, signals, target] = time_s
-        self._arrays["value"][slots, signals, target] = values
+        at = pairs * self.cells + target
+        _flat(times)[at] = time_s
+        _flat(self._arrays["value"])[at] = values
 
     def _check_many(
         self,
@@ -733,27 +749,30 @@ class IntakeBank:
         """:meth:`_check_quality` for samples of distinct pairs at one time, on arrays."""
         a = self._arrays
         expected, gap_factor, epsilon = self._quality_table[:, qs]
+        at = slots * len(self.quality_signals) + qs  # flat (slot, checked signal) positions
+        gap_counts, gap_totals = _flat(a["gap_count"]), _flat(a["gap_total_s"])
+        run_mins, run_maxs = _flat(a["run_min"]), _flat(a["run_max"])
+        moveds, run_starts = _flat(a["has_moved"]), _flat(a["run_start_s"])
         first = np.isnan(last)
         interval = np.where(first, 0.0, time_s - last)
         periods = interval / expected
         gap = periods > gap_factor
-        gap_count = a["gap_count"][slots, qs] + gap
-        gap_total = np.where(
-            gap, a["gap_total_s"][slots, qs] + interval, a["gap_total_s"][slots, qs]
-        )
-        a["gap_count"][slots, qs] = gap_count
-        a["gap_total_s"][slots, qs] = gap_total
-        low = np.where(first, values, np.minimum(a["run_min"][slots, qs], values))
-        high = np.where(first, values, np.maximum(a["run_max"][slots, qs], values))
+        gap_count = gap_counts[at] + gap
+        old_total = gap_totals[at]
+        gap_total = np.where(gap, old_total + interval, old_total)
+        gap_counts[at] = gap_count
+        gap_totals[at] = gap_total
+        low = np.where(first, values, np.minimum(run_mins[at], values))
+        high = np.where(first, values, np.maximum(run_maxs[at], values))
         restart = ~first & (high - low > epsilon)
-        moved = a["has_moved"][slots, qs] | restart
-        a["has_moved"][slots, qs] = moved
-        run_start = np.where(first | restart, time_s, a["run_start_s"][slots, qs])
+        moved = moveds[at] | restart
+        moveds[at] = moved
+        run_start = np.where(first | restart, time_s, run_starts[at])
         low = np.where(restart, values, low)
         high = np.where(restart, values, high)
-        a["run_start_s"][slots, qs] = run_start
-        a["run_min"][slots, qs] = low
-        a["run_max"][slots, qs] = high
+        run_starts[at] = run_start
+        run_mins[at] = low
+        run_maxs[at] = high
         block = np.column_stack(
             (slots, qs, values, interval, periods, gap, time_s - run_start, high - low, moved,
              gap_count, gap_total)

@@ -38,10 +38,11 @@ Where the baselines come from, per asset class:
   copies; it is judged from its first row. An asset missing from the file
   is counted as ``no_baseline`` and not judged.
 * ``baseline.learn_for_s``: a :class:`~arxwatch.estimators.baseline.LiveBaselineLearner`
-  per asset collects an uninterrupted window per operating mode, fits it
-  (order chosen by BIC, acceptance rule), and an accepted mode starts being
-  judged at once. Fits are spread over calls (:data:`FITS_PER_ADVANCE`) so
-  that a fleet commissioned together does not stall the service.
+  per asset collects gap-free stretches per operating mode until they cover
+  the span, fits them together (order chosen by BIC, acceptance rule), and
+  an accepted mode starts being judged at once. Fits are spread over calls
+  (:data:`FITS_PER_ADVANCE`) so that a fleet commissioned together does not
+  stall the service.
 """
 
 from __future__ import annotations
@@ -375,6 +376,22 @@ class TrendColumns:
         self.plans = [p for p in self.plans if p.state is not state] + [plan]
 
 
+def _collected_rows(learner: LiveBaselineLearner) -> list[float]:
+    """Rows ``[t, y, *u, mode index]`` of every sample the learner still holds, in time order.
+
+    The saved series of a learning asset (:meth:`Pipeline.checkpoint`), so
+    that a restart gives each mode back what it had collected.
+    """
+    state = learner.to_state()
+    rows = [
+        [t, y, *u, float(index)]
+        for index, entry in enumerate(state["modes"])
+        for t, y, u in zip(entry["t"], entry["y"], entry["u"], strict=True)
+    ]
+    rows.sort(key=lambda row: row[0])
+    return [value for row in rows for value in row]
+
+
 class Pipeline:
     """Messages in, alert records out, for every asset class of a configuration.
 
@@ -578,11 +595,12 @@ class Pipeline:
         texts = plan.take(cells)
         if len(plan.index) == 1:
             texts = (texts,)
-        if "" in texts:
+        full = "" not in texts  # the common case: a value in every column
+        if full:
+            present, given = plan.every, list(texts)
+        else:
             present = np.array([text != "" for text in texts], dtype=np.bool_)
             given = [text for text in texts if text]
-        else:  # the common case: a value in every column
-            present, given = plan.every, list(texts)
         n = len(given)
         if not n:
             return []
@@ -595,7 +613,10 @@ class Pipeline:
             except ValueError:
                 plain = False
         if plain:
-            values = raw * plan.scale[present] + plan.offset[present]
+            if full:
+                values = raw * plan.scale + plan.offset
+            else:
+                values = raw * plan.scale[present] + plan.offset[present]
             plain = bool(np.isfinite(values).all())
         if not plain:  # something a decoder must look at: cell by cell
             records: list[dict[str, Any]] = []
@@ -608,8 +629,12 @@ class Pipeline:
         state = plan.state
         counts = self.counts
         counts.messages += n
-        slots, signals = plan.slots[present], plan.signals[present]
-        usable = (plan.low[present] <= values) & (values <= plan.high[present])
+        if full:  # the plan's own arrays (IntakeBank.add_many recognises them)
+            slots, signals, low, high = plan.slots, plan.signals, plan.low, plan.high
+        else:
+            slots, signals = plan.slots[present], plan.signals[present]
+            low, high = plan.low[present], plan.high[present]
+        usable = (low <= values) & (values <= high)
         records = []
         crowded = state.intake.crowded
         if crowded and not crowded.isdisjoint(zip(slots.tolist(), signals.tolist(), strict=True)):
@@ -759,13 +784,7 @@ class Pipeline:
             outcome = learner.add(row[0], row[1], row[2:], mode)
             if outcome == "ignored":
                 continue
-            record = [*row, float(modes.index(mode))]
-            if outcome == "restarted":
-                # the window starts afresh with this sample: so does its saved series
-                state.windows_dropped.add(slot)
-                state.window_rows[slot] = record
-            else:
-                state.window_rows.setdefault(slot, []).extend(record)
+            state.window_rows.setdefault(slot, []).extend([*row, float(modes.index(mode))])
             if learner.ready(mode):
                 self._to_fit.append((state.config.name, slot, mode))
 
@@ -779,9 +798,10 @@ class Pipeline:
             if learner is None or asset is None or not learner.ready(mode):
                 continue
             result = learner.finish(mode)
-            # fitted or refused, the window is gone: so is its series
+            # fitted or refused, this mode's samples are gone: the saved series
+            # is rewritten with what the other modes are still collecting
             state.windows_dropped.add(slot)
-            state.window_rows.pop(slot, None)
+            state.window_rows[slot] = _collected_rows(learner)
             baseline = result.baseline
             fit = None if baseline is None else baseline.fit_percent
             self.events.append(
