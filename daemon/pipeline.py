@@ -38,10 +38,11 @@ Where the baselines come from, per asset class:
   copies; it is judged from its first row. An asset missing from the file
   is counted as ``no_baseline`` and not judged.
 * ``baseline.learn_for_s``: a :class:`~arxwatch.estimators.baseline.LiveBaselineLearner`
-  per asset collects an uninterrupted window per operating mode, fits it
-  (order chosen by BIC, acceptance rule), and an accepted mode starts being
-  judged at once. Fits are spread over calls (:data:`FITS_PER_ADVANCE`) so
-  that a fleet commissioned together does not stall the service.
+  per asset collects gap-free stretches per operating mode until they cover
+  the span, fits them together (order chosen by BIC, acceptance rule), and
+  an accepted mode starts being judged at once. Fits are spread over calls
+  (:data:`FITS_PER_ADVANCE`) so that a fleet commissioned together does not
+  stall the service.
 """
 
 from __future__ import annotations
@@ -373,6 +374,22 @@ class TrendColumns:
             max_chars=min(f.max_payload_bytes for f in formats),
         )
         self.plans = [p for p in self.plans if p.state is not state] + [plan]
+
+
+def _collected_rows(learner: LiveBaselineLearner) -> list[float]:
+    """Rows ``[t, y, *u, mode index]`` of every sample the learner still holds, in time order.
+
+    The saved series of a learning asset (:meth:`Pipeline.checkpoint`), so
+    that a restart gives each mode back what it had collected.
+    """
+    state = learner.to_state()
+    rows = [
+        [t, y, *u, float(index)]
+        for index, entry in enumerate(state["modes"])
+        for t, y, u in zip(entry["t"], entry["y"], entry["u"], strict=True)
+    ]
+    rows.sort(key=lambda row: row[0])
+    return [value for row in rows for value in row]
 
 
 class Pipeline:
@@ -767,13 +784,7 @@ class Pipeline:
             outcome = learner.add(row[0], row[1], row[2:], mode)
             if outcome == "ignored":
                 continue
-            record = [*row, float(modes.index(mode))]
-            if outcome == "restarted":
-                # the window starts afresh with this sample: so does its saved series
-                state.windows_dropped.add(slot)
-                state.window_rows[slot] = record
-            else:
-                state.window_rows.setdefault(slot, []).extend(record)
+            state.window_rows.setdefault(slot, []).extend([*row, float(modes.index(mode))])
             if learner.ready(mode):
                 self._to_fit.append((state.config.name, slot, mode))
 
@@ -787,9 +798,10 @@ class Pipeline:
             if learner is None or asset is None or not learner.ready(mode):
                 continue
             result = learner.finish(mode)
-            # fitted or refused, the window is gone: so is its series
+            # fitted or refused, this mode's samples are gone: the saved series
+            # is rewritten with what the other modes are still collecting
             state.windows_dropped.add(slot)
-            state.window_rows.pop(slot, None)
+            state.window_rows[slot] = _collected_rows(learner)
             baseline = result.baseline
             fit = None if baseline is None else baseline.fit_percent
             self.events.append(

@@ -176,10 +176,8 @@ _EARLY_FACTOR = 0.5
 _METHODS = ("ols", "ridge", "lasso", "lad")
 _CRITERIA: tuple[Criterion, ...] = ("aic", "bic", "fpe")
 
-#: What :meth:`LiveBaselineLearner.add` did with a sample. "restarted" is no
-#: longer returned (a gap now keeps what was collected); it stays in the type
-#: while :mod:`arxwatch.daemon.pipeline` still handles it.
-AddOutcome = Literal["collected", "restarted", "ignored"]
+#: What :meth:`LiveBaselineLearner.add` did with a sample.
+AddOutcome = Literal["collected", "ignored"]
 
 #: What :func:`fit_baseline` does with a gap in the window: ``"refuse"``
 #: raises :class:`GridError`, ``"split"`` fits across the gap-free stretches.

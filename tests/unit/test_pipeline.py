@@ -236,6 +236,55 @@ def test_live_learning_survives_a_checkpoint_and_then_judges() -> None:
     assert set(second.checkpoint().dropped) == {f"window/vav/{a}" for a in plant}
 
 
+MODED = SITE.replace(
+    "    model: {model}",
+    "    mode: {{signal: occupancy, values: [occupied, unoccupied]}}\n    model: {model}",
+)
+
+
+def test_a_restart_keeps_what_the_other_modes_collected() -> None:
+    # Occupied and unoccupied take turns every 4 h; each needs 6 h. Occupied
+    # is fitted after 10 h, unoccupied after 14 h. A checkpoint at 11 h must
+    # keep unoccupied's 4 h collected from 4 h to 8 h: the restored service
+    # fits it at 14 h too, not after collecting 6 h afresh.
+    n = 20 * 60
+    u = daily_operation(n, PERIOD, seed=70)
+    y = LOOP.simulate(u, seed=71)
+    config = parse_config(
+        MODED.format(baseline="{learn_for_s: 21600}", model="{na: 2, nb: 2, nk: 2}"), "site.yaml"
+    )
+
+    def feed(pipe: Pipeline, lo: int, hi: int) -> list[dict]:
+        records: list[dict] = []
+        for k in range(lo, hi):
+            t = START + k * PERIOD
+            mode = "occupied" if (k // 240) % 2 == 0 else "unoccupied"
+            for signal, value, delay in (
+                ("occupancy", mode, 1.0),
+                ("zone-temp", float(y[k]), 3.0),
+                ("valve", float(u[k]), 7.0),
+            ):
+                payload = json.dumps({"value": value, "ts": t}).encode()
+                records += pipe.feed(f"larkspur/block-a/vav/vav-1/{signal}", payload, t + delay)
+            records += pipe.advance(t + 40.0)
+        return records
+
+    whole = Pipeline(config)
+    expected = feed(whole, 0, n)
+    first = Pipeline(config)
+    before = feed(first, 0, 660)
+    assert [(e.mode, e.accepted) for e in first.events] == [("occupied", True)]
+    saved = first.checkpoint()
+    second = Pipeline(config)
+    second.restore(saved.entries, lambda key: saved.appended.get(key, b""))
+    after = feed(second, 660, n)
+    assert before + after == expected
+    events = [(e.mode, e.accepted, e.fit_percent) for e in (*first.events, *second.events)]
+    assert events == [(e.mode, e.accepted, e.fit_percent) for e in whole.events]
+    assert [e.mode for e in whole.events] == ["occupied", "unoccupied"]
+    assert second.asset_states() == {"monitoring": 1, "learning": 0, "no_baseline": 0}
+
+
 def test_state_blobs_round_trip_and_refuse_garbage() -> None:
     meta, arrays = unpack(pack({"a": [1, None]}, {"x": np.arange(3.0)}))
     assert meta == {"a": [1, None]} and arrays["x"].tolist() == [0.0, 1.0, 2.0]
