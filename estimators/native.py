@@ -120,25 +120,6 @@ def build_native_kernel(layout: StateLayout, config: RlsConfig) -> Kernel:
     return kernel
 
 
-def compiled_core(layout: StateLayout, config: RlsConfig) -> tuple[Any, np.ndarray[Any, Any]]:
-    """Return the compiled ``native`` function and its settings array, for compiled callers.
-
-    ``native(s, c, phi_0, .., phi_n-1, y, u_0, .., u_m-1)`` updates ``s`` in
-    place and returns what :func:`build_native_kernel`'s ``step`` returns;
-    ``c`` is the returned settings array. Numba code can call it directly
-    (the fleet's compiled live estimate, :mod:`arxwatch.daemon.fleetnative`).
-    A non-finite sample raises :data:`NON_FINITE`.
-
-    Raises
-    ------
-    ImportError
-        If numba is not installed.
-    """
-    source = kernel_source(layout, config, "native")
-    constants = np.array(list(kernel_constants(layout, config).values()))
-    return _compile(layout, source), constants
-
-
 #: The exception class compiled kernels raise for a non-finite sample.
 NON_FINITE: type[Exception] = _NonFinite
 
