@@ -1588,6 +1588,8 @@ class FleetMonitor:
         bank = self._quality
         if bank is None:
             return np.zeros(slots.shape, dtype=np.bool_)
+        if not (bank.raised.any() or bank.alarms.any()):  # the usual case: all quiet
+            return np.zeros(slots.shape, dtype=np.bool_)
         kinds = len(_QUALITY_KINDS)
         busy = bank.raised[slots] | (bank.alarms[slots] != 0)
         per_signal = busy.reshape(slots.shape[0], -1, kinds)

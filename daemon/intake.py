@@ -666,7 +666,10 @@ class IntakeBank:
             )
         outcome = np.where(usable, _OUTCOME_CODE["accepted"], _OUTCOME_CODE["out_of_range"])
         columns = np.where(usable, self._column["accepted"], self._column["out_of_range"])
-        np.add.at(arrays["counts"], (slots, columns), 1)
+        # np.add.at(counts, (slots, columns), 1) by a count over the range the pairs span
+        at = slots * arrays["counts"].shape[1] + columns
+        low = int(at.min())
+        _flat(arrays["counts"])[low : int(at.max()) + 1] += np.bincount(at - low).astype(np.int32)
         return outcome
 
     def _vector_ready(
