@@ -427,7 +427,8 @@ def live_kernel(layout: StateLayout, config: RlsConfig) -> tuple[Any, NDArray[np
     }
     source = _LIVE_MODULE.format(cache=True, **fields)
     name = "arxwatch_fleet_live_" + hashlib.sha256(source.encode()).hexdigest()[:16]
-    folder = Path(__file__).resolve().parent / "__pycache__" / "arxwatch-fleet-live"
+    # in __pycache__ itself: no source folder (numba caches in __pycache__/__pycache__)
+    folder = Path(__file__).resolve().parent / "__pycache__"
     path = folder / f"{name}.py"
     try:
         if not path.exists() or path.read_text(encoding="utf-8") != source:
