@@ -332,6 +332,7 @@ class _Group:
 
     def memory_bytes(self) -> int:
         own = sum(a.nbytes for a in self.arrays.values())
+        own += sum(a.nbytes for a in self.base_cache.values())
         return own + sum(a.nbytes for a in self.tracker.arrays().values())
 
     def add(self, asset: int, mode: int, baseline: Baseline) -> int:
