@@ -377,6 +377,15 @@ def innovation_kernel() -> Any:
     return importlib.import_module("numba").njit(**options)(_innovate)
 
 
+def _generated_folder() -> Path:
+    """Return where :func:`live_kernel` writes its modules: the package's ``__pycache__``.
+
+    In ``__pycache__`` itself, so that no source folder appears (numba then
+    caches in ``__pycache__/__pycache__``).
+    """
+    return Path(__file__).resolve().parent / "__pycache__"
+
+
 def compiled_helpers() -> tuple[Any, Any]:
     """Return the compiled ``_regressor`` and ``_push`` (for the generated live module)."""
     _helpers()
@@ -427,8 +436,7 @@ def live_kernel(layout: StateLayout, config: RlsConfig) -> tuple[Any, NDArray[np
     }
     source = _LIVE_MODULE.format(cache=True, **fields)
     name = "arxwatch_fleet_live_" + hashlib.sha256(source.encode()).hexdigest()[:16]
-    # in __pycache__ itself: no source folder (numba caches in __pycache__/__pycache__)
-    folder = Path(__file__).resolve().parent / "__pycache__"
+    folder = _generated_folder()
     path = folder / f"{name}.py"
     try:
         if not path.exists() or path.read_text(encoding="utf-8") != source:

@@ -3,11 +3,13 @@
 import io
 import json
 from collections.abc import Callable
+from pathlib import Path
 
 import numpy as np
 import pytest
 
 from arxwatch.daemon import fleet as fleet_module
+from arxwatch.daemon import fleetnative
 from arxwatch.daemon.alert import SignalNames
 from arxwatch.daemon.fleet import FleetMonitor
 from arxwatch.daemon.monitor import AssetMonitor, MonitorConfig
@@ -331,3 +333,31 @@ def test_a_mode_added_later_judges_as_if_given_at_start(assets: dict) -> None:
         fleet.add_baseline(asset, occupied)
     with pytest.raises(KeyError):
         fleet.add_baseline("block-z/none", occupied)
+
+
+@pytest.mark.skipif(not available(), reason="numba is not installed (pip install '.[fast]')")
+def test_compiled_live_estimate_without_a_writable_cache_folder(
+    assets: dict, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # A read-only install: the generated module cannot be written, so it is
+    # compiled in memory, with the same records as the numpy path.
+    blocked = tmp_path / "not-a-folder"
+    blocked.write_text("")
+    monkeypatch.setattr(fleetnative, "_generated_folder", lambda: blocked)
+    fleetnative.live_kernel.cache_clear()
+    try:
+        asset = "block-a/ahu-2"
+        got = []
+        for backend in ("python", "compiled"):
+            fleet = FleetMonitor(NAMES, backend=backend)  # type: ignore[arg-type]
+            slot = fleet.add_asset(asset, assets[asset][0])
+            _, y, u, _ = assets[asset]
+            records = []
+            for k in range(PER_DAY):
+                t = START_S + k * SAMPLE_PERIOD_S
+                records += fleet.step([slot], [t], [float(y[k])], [[float(u[k])]], [None], [False])
+            got.append((records, fleet.to_state()["arrays"]["g0.rls"].tobytes()))
+        assert got[0] == got[1]
+        assert not list(tmp_path.glob("**/*.py"))
+    finally:
+        fleetnative.live_kernel.cache_clear()
