@@ -60,7 +60,10 @@ class AlertPolicy:
         Seconds the quiet run must also span, from its first evaluation to
         the clearing one (an off-delay): a detector judged every minute
         would otherwise clear after ten quiet minutes, and an intermittent
-        fault would clear and re-raise all day. 0 clears on the count alone.
+        fault would clear and re-raise all day. The trackers turn it into a
+        count with each detector's evaluation interval
+        (:meth:`quiet_needed`), so it holds on a regular grid of evaluations
+        and errs long across gaps. 0 clears on ``clear_n`` alone.
 
     Raises
     ------
@@ -95,6 +98,24 @@ class AlertPolicy:
             raise ValueError(f"critical_ratio must be > 1, got {self.critical_ratio!r}")
         if not 0.0 <= self.clear_after_s < math.inf:
             raise ValueError(f"clear_after_s must be finite and >= 0, got {self.clear_after_s!r}")
+
+    def quiet_needed(self, interval_s: float | None) -> int:
+        """Quiet evaluations in a row that clear, for evaluations ``interval_s`` apart.
+
+        ``clear_n``, or more when ``clear_after_s`` needs them: the run's
+        first and last evaluations must lie ``clear_after_s`` apart. Without
+        an interval (None) the off-delay does not apply.
+
+        Examples
+        --------
+        >>> AlertPolicy(clear_n=10, clear_after_s=3600.0).quiet_needed(60.0)
+        61
+        >>> AlertPolicy(clear_n=10, clear_after_s=3600.0).quiet_needed(3600.0)
+        10
+        """
+        if interval_s is None or self.clear_after_s == 0.0:
+            return self.clear_n
+        return max(self.clear_n, math.ceil(self.clear_after_s / interval_s) + 1)
 
 
 @dataclass(frozen=True)
@@ -134,7 +155,6 @@ class _Episode:
     raised: bool = False
     severity: Severity = "warning"
     first_seen_s: float | None = None
-    quiet_since_s: float | None = None  # first evaluation of the quiet run
 
 
 @dataclass
@@ -145,6 +165,10 @@ class AlertTracker:
     ----------
     policy : AlertPolicy
         Settings shared by all pairs.
+    intervals : mapping of str to float, optional
+        Seconds between evaluations by detector name, for the policy's
+        off-delay (:meth:`AlertPolicy.quiet_needed`); a detector not named
+        clears on ``clear_n`` alone.
 
     Examples
     --------
@@ -157,6 +181,7 @@ class AlertTracker:
     """
 
     policy: AlertPolicy = field(default_factory=AlertPolicy)
+    intervals: Mapping[str, float] = field(default_factory=dict)
     _episodes: dict[str, _Episode] = field(default_factory=dict)
 
     def observe(self, evidence: Evidence, sample_time_s: float) -> Transition | None:
@@ -178,10 +203,6 @@ class AlertTracker:
             and not evidence.alarm
             and evidence.conclusive
         )
-        if quiet and episode.quiet_run == 0:
-            episode.quiet_since_s = sample_time_s
-        elif not quiet:
-            episode.quiet_since_s = None
         episode.quiet_run = episode.quiet_run + 1 if quiet else 0
 
         if not episode.raised:
@@ -196,10 +217,7 @@ class AlertTracker:
         if episode.severity == "warning" and episode.criticals.bit_count() >= policy.critical_m:
             episode.severity = "critical"
             return self._transition(key, "raised", episode, sample_time_s, evidence)
-        since = episode.quiet_since_s  # None only in state saved before it was kept
-        if episode.quiet_run >= policy.clear_n and (
-            since is None or sample_time_s - since >= policy.clear_after_s
-        ):
+        if episode.quiet_run >= policy.quiet_needed(self.intervals.get(evidence.detector)):
             transition = self._transition(key, "cleared", episode, sample_time_s, evidence)
             self._episodes[key] = _Episode()
             return transition
@@ -227,7 +245,6 @@ class AlertTracker:
                 "raised": e.raised,
                 "severity": e.severity,
                 "first_seen_s": e.first_seen_s,
-                "quiet_since_s": e.quiet_since_s,
             }
             for key, e in self._episodes.items()
         }
@@ -247,7 +264,6 @@ class AlertTracker:
                 if severity not in ("warning", "critical"):
                     raise ValueError(f"severity {severity!r}")
                 first = raw["first_seen_s"]
-                since = raw.get("quiet_since_s")
                 episodes[key] = _Episode(
                     alarms=int(raw["alarms"]),
                     criticals=int(raw["criticals"]),
@@ -256,15 +272,11 @@ class AlertTracker:
                     raised=bool(raw["raised"]),
                     severity=severity,
                     first_seen_s=None if first is None else float(first),
-                    quiet_since_s=None if since is None else float(since),
                 )
             except (KeyError, TypeError, ValueError) as exc:
                 raise ValueError(f"alert state {key!r}: malformed entry ({exc})") from None
         self._episodes = episodes
 
-
-#: TrackerBank arrays of sample times, nan when unset.
-_TIMES = ("first_seen_s", "quiet_since_s")
 
 #: Number of set bits of every byte value, for popcounts over any unsigned width.
 _BITS_IN_BYTE = np.array([bin(v).count("1") for v in range(256)], dtype=np.uint8)
@@ -314,7 +326,7 @@ class TrackerBank:
     :meth:`AlertTracker.observe` does for each row (the tests compare them);
     only the bookkeeping differs: the alarm histories use the smallest
     unsigned type that holds ``raise_n`` bits, and the quiet run stops
-    counting at ``clear_n`` (larger values decide nothing).
+    counting where it clears (larger values decide nothing).
 
     Parameters
     ----------
@@ -324,6 +336,8 @@ class TrackerBank:
         Key names, distinct.
     capacity : int
         Rows to allocate; :meth:`resize` grows them.
+    intervals : mapping of str to float, optional
+        As for :class:`AlertTracker`, by the detector part of each key.
 
     Raises
     ------
@@ -331,7 +345,13 @@ class TrackerBank:
         If ``keys`` is empty or repeats a name, or ``capacity`` is negative.
     """
 
-    def __init__(self, policy: AlertPolicy, keys: Sequence[str], capacity: int) -> None:
+    def __init__(
+        self,
+        policy: AlertPolicy,
+        keys: Sequence[str],
+        capacity: int,
+        intervals: Mapping[str, float] | None = None,
+    ) -> None:
         self.policy = policy
         self.keys = tuple(keys)
         if not self.keys or len(set(self.keys)) != len(self.keys):
@@ -340,14 +360,21 @@ class TrackerBank:
             raise ValueError(f"capacity must be an integer >= 0, got {capacity!r}")
         self._bits = _bits_dtype(policy.raise_n)
         self._window = (1 << policy.raise_n) - 1
+        every = intervals or {}
+        #: quiet evaluations in a row that clear, by key (AlertPolicy.quiet_needed)
+        self.quiet_needed = np.array(
+            [policy.quiet_needed(every.get(key.split("/")[0])) for key in self.keys],
+            dtype=np.int64,
+        )
+        # the quiet run stops counting there: the smallest type that holds it
+        run_type = np.uint16 if int(self.quiet_needed.max()) < 2**16 else np.uint32
         shape = (capacity, len(self.keys))
         self.alarms = np.zeros(shape, dtype=self._bits)
         self.criticals = np.zeros(shape, dtype=self._bits)
-        self.quiet_run = np.zeros(shape, dtype=np.uint32)
+        self.quiet_run = np.zeros(shape, dtype=run_type)
         self.raised = np.zeros(shape, dtype=np.bool_)
         self.critical = np.zeros(shape, dtype=np.bool_)
         self.first_seen_s = np.full(shape, np.nan)
-        self.quiet_since_s = np.full(shape, np.nan)
 
     @property
     def capacity(self) -> int:
@@ -363,14 +390,10 @@ class TrackerBank:
             "raised": self.raised,
             "critical": self.critical,
             "first_seen_s": self.first_seen_s,
-            "quiet_since_s": self.quiet_since_s,
         }
 
     def load_arrays(self, arrays: Mapping[str, NDArray[Any]]) -> None:
         """Restore arrays saved from :meth:`arrays` (same keys, any capacity).
-
-        State saved before ``quiet_since_s`` was kept lacks it; its quiet
-        runs then clear on their count alone, as they did.
 
         Raises
         ------
@@ -378,8 +401,6 @@ class TrackerBank:
             If a name is missing or a shape or dtype does not fit.
         """
         mine = self.arrays()
-        if "quiet_since_s" not in arrays and "first_seen_s" in arrays:
-            arrays = {**arrays, "quiet_since_s": np.full(np.shape(arrays["first_seen_s"]), np.nan)}
         if set(arrays) != set(mine):
             raise ValueError(f"tracker arrays must be {sorted(mine)}, got {sorted(arrays)}")
         rows = {int(np.shape(a)[0]) for a in arrays.values()}
@@ -387,6 +408,9 @@ class TrackerBank:
             raise ValueError("tracker arrays disagree in their number of rows")
         for name, current in mine.items():
             saved = np.asarray(arrays[name])
+            if name == "quiet_run" and saved.dtype.kind == "u" and saved.ndim == 2:
+                # saved in another width: a run beyond what clears decides the same
+                saved = np.minimum(saved, self.quiet_needed).astype(current.dtype)
             if saved.ndim != 2 or saved.shape[1] != len(self.keys) or saved.dtype != current.dtype:
                 raise ValueError(
                     f"tracker array {name!r} has shape {saved.shape} and dtype {saved.dtype}; "
@@ -400,14 +424,14 @@ class TrackerBank:
         for name, array in self.arrays().items():
             grown = np.resize(array, (capacity, len(self.keys)))
             if capacity > old:
-                grown[old:] = np.nan if name in _TIMES else 0
+                grown[old:] = np.nan if name == "first_seen_s" else 0
             setattr(self, name, grown)
 
     def clear(self, rows: NDArray[np.intp] | Sequence[int]) -> None:
         """Reset every episode of ``rows`` to quiet."""
         index = np.asarray(rows, dtype=np.intp)
         for name, array in self.arrays().items():
-            array[index] = np.nan if name in _TIMES else 0
+            array[index] = np.nan if name == "first_seen_s" else 0
 
     def active(self, row: int) -> dict[str, Severity]:
         """Return the raised alerts of ``row`` by key, with their severity."""
@@ -453,10 +477,8 @@ class TrackerBank:
         if alarm and math.isnan(first):
             first = time_s
         quiet = statistic < policy.clear_ratio * threshold and not alarm and conclusive
-        before = int(self.quiet_run[row, key])
-        run = min(before, policy.clear_n) + 1 if quiet else 0
-        since = float(self.quiet_since_s[row, key])
-        since = (time_s if before == 0 else since) if quiet else math.nan
+        needed = int(self.quiet_needed[key])
+        run = min(int(self.quiet_run[row, key]), needed) + 1 if quiet else 0
         severe = bool(self.critical[row, key])
         state: State | None = None
         if not raised:
@@ -467,8 +489,8 @@ class TrackerBank:
                 first = math.nan
         elif not severe and criticals.bit_count() >= policy.critical_m:
             severe, state = True, "raised"
-        elif run >= policy.clear_n and not time_s - since < policy.clear_after_s:
-            state = "cleared"  # (a nan since: state saved before it was kept)
+        elif run >= needed:
+            state = "cleared"
         out = None
         if state is not None:
             out = BankTransition(
@@ -480,14 +502,13 @@ class TrackerBank:
         if state == "cleared":
             alarms = criticals = run = 0
             raised = severe = False
-            first = since = math.nan
+            first = math.nan
         self.alarms[row, key] = alarms
         self.criticals[row, key] = criticals
         self.quiet_run[row, key] = run
         self.raised[row, key] = raised
         self.critical[row, key] = severe
         self.first_seen_s[row, key] = first
-        self.quiet_since_s[row, key] = since
         return out
 
     def observe(
@@ -560,9 +581,8 @@ class TrackerBank:
         quiet = (stat < policy.clear_ratio * limit) & ~alarm
         if conclusive is not None:
             quiet &= conclusive
-        before = self.quiet_run[rows, key]
-        run = np.where(quiet, np.minimum(before, policy.clear_n) + 1, 0)
-        since = np.where(quiet, np.where(before == 0, when, self.quiet_since_s[rows, key]), np.nan)
+        needed = self.quiet_needed[key]
+        run = np.where(quiet, np.minimum(self.quiet_run[rows, key], needed) + 1, 0)
         raised = self.raised[rows, key].copy()
         severe = self.critical[rows, key].copy()
         n_alarms = _popcount(alarms)
@@ -573,10 +593,7 @@ class TrackerBank:
         severe = np.where(rise, n_criticals >= policy.critical_m, severe)
         escalate = raised & ~severe & (n_criticals >= policy.critical_m)
         severe |= escalate
-        # a nan since (state saved before it was kept) clears on the count alone
-        clear = (
-            raised & ~escalate & (run >= policy.clear_n) & ~(when - since < policy.clear_after_s)
-        )
+        clear = raised & ~escalate & (run >= needed)
         raised |= rise
 
         out: list[BankTransition] = []
@@ -598,12 +615,10 @@ class TrackerBank:
         raised[clear] = False
         severe[clear] = False
         first[clear] = np.nan
-        since[clear] = np.nan
         self.alarms[rows, key] = alarms
         self.criticals[rows, key] = criticals
         self.quiet_run[rows, key] = run
         self.raised[rows, key] = raised
         self.critical[rows, key] = severe
         self.first_seen_s[rows, key] = first
-        self.quiet_since_s[rows, key] = since
         return out

@@ -252,15 +252,13 @@ class _Group:
         tri_index[self.tri_cols, self.tri_rows] = np.arange(self.tri_rows.shape[0])
         self.tri_index = tri_index
         self.arrays: dict[str, NDArray[Any]] = {}
-        self.tracker = TrackerBank(config.policy, self.keys, 0)
+        self.tracker = TrackerBank(
+            config.policy, self.keys, 0, config.evaluation_intervals(sample_period_s)
+        )
         self.free: list[int] = []
         # what the last step computed, by name, for a trace to read (FleetMonitor.trace):
         # references to arrays the step makes anyway, so keeping them costs nothing
         self.tap: dict[str, Any] = {}
-        # The baseline side of the evaluations by channel (first axis): tested
-        # features and their covariance, and the read-out features. It never
-        # changes for a channel, so add and load_state compute it once.
-        self.base_cache: dict[str, Float] = {}
         self._allocate(0)
 
     # -- storage ------------------------------------------------------------
@@ -319,10 +317,6 @@ class _Group:
             if name in self.arrays and keep:
                 grown[..., :keep] = self.arrays[name][..., :keep]
             self.arrays[name] = grown
-        for name, cached in self.base_cache.items():
-            resized = np.zeros((capacity, *cached.shape[1:]))
-            resized[:keep] = cached[:keep]
-            self.base_cache[name] = resized
         self.tracker.resize(capacity)
 
     @property
@@ -332,7 +326,6 @@ class _Group:
 
     def memory_bytes(self) -> int:
         own = sum(a.nbytes for a in self.arrays.values())
-        own += sum(a.nbytes for a in self.base_cache.values())
         return own + sum(a.nbytes for a in self.tracker.arrays().values())
 
     def add(self, asset: int, mode: int, baseline: Baseline) -> int:
@@ -360,25 +353,7 @@ class _Group:
         )
         a["rls"][:, c] = estimator.to_state()["rls"]
         a["current"][:, c] = list(self.baseline_values(c).values())
-        self._cache_baselines(np.array([c], dtype=np.intp))
         return c
-
-    def _cache_baselines(self, channels: Index) -> None:
-        """Fill :attr:`base_cache` for ``channels`` (rows do not depend on their batch)."""
-        a = self.arrays
-        theta0 = a["theta0"][:, channels].T
-        cov0 = a["cov0"][:, channels].T[:, self.tri_index]
-        x0, c0 = self.drift.project(theta0, cov0)
-        computed = {
-            "x0": x0,
-            "c0": c0,
-            "features": feature_matrix(self.order, theta0, self.sample_period_s),
-        }
-        for name, values in computed.items():
-            cached = self.base_cache.get(name)
-            if cached is None:
-                cached = self.base_cache[name] = np.zeros((self.capacity, *values.shape[1:]))
-            cached[channels] = values
 
     def remove(self, c: int) -> None:
         self.arrays["used"][c] = False
@@ -434,8 +409,6 @@ class _Group:
             {k[len(prefix) :]: v for k, v in arrays.items() if k.startswith(prefix)}
         )
         self.free = [int(c) for c in meta["free"]]
-        self.base_cache = {}
-        self._cache_baselines(np.flatnonzero(self.arrays["used"]))
 
     # -- read-outs ----------------------------------------------------------
     def baseline_readout_values(self, c: int) -> tuple[Any, dict[str, float]]:
@@ -942,10 +915,14 @@ class _Group:
         thetas = states[layout.theta].T
         covs = parameter_covariances(layout, states)
         sigma2 = a["sigma2"][dc]
-        cache = self.base_cache
+        # The baseline side is computed again at every evaluation: caching it
+        # per channel took 120 bytes per asset, which the memory target
+        # (bench_service.py, under 2,048 bytes per asset) cannot spare.
+        theta0 = a["theta0"][:, dc].T
+        cov0 = a["cov0"][:, dc].T[:, self.tri_index]
         found: list[tuple[int, int, Evidence, BankTransition]] = []
         # feature Wald test
-        x0, c0 = cache["x0"][dc], cache["c0"][dc]
+        x0, c0 = self.drift.project(theta0, cov0)
         x, cx = self.drift.project(thetas, covs)
         wald = self.drift.distances(x0, c0, x, cx)
         self.tap["evaluate"] = (dp, dc, wald)
@@ -958,7 +935,7 @@ class _Group:
             found.append((int(dp[t.position]), 3, ev, t))
         # physical bands (PhysicalBands.update, element-wise)
         live = feature_matrix(self.order, thetas, self.sample_period_s)
-        base = cache["features"][dc]
+        base = feature_matrix(self.order, theta0, self.sample_period_s)
         found += self._bands(dp, dc, live, base, np.sqrt(sigma2), time_s)
         # the live read-out the records show
         rss = a["rls"][layout.rss, dc]

@@ -134,6 +134,17 @@ class MonitorConfig:
         if not 0.0 < self.drift_alpha < 1.0:
             raise ValueError(f"drift_alpha must be in (0, 1), got {self.drift_alpha!r}")
 
+    def evaluation_intervals(self, sample_period_s: float) -> dict[str, float]:
+        """Seconds between evaluations of each behaviour detector, for the off-delay."""
+        hourly = self.evaluate_every * sample_period_s
+        return {
+            "innovation_mean": sample_period_s,
+            "innovation_variance": sample_period_s,
+            "innovation_whiteness": self.whiteness.window * sample_period_s,
+            "feature_drift": hourly,
+            "physical_band": hourly,
+        }
+
     @property
     def quality_policy(self) -> AlertPolicy:
         """Return the data-quality alerts' policy: :attr:`policy` without the off-delay."""
@@ -217,7 +228,9 @@ class _ModeMonitor:
             )
         )
         self.bands = PhysicalBands(config.bands)
-        self.tracker = AlertTracker(config.policy)
+        self.tracker = AlertTracker(
+            config.policy, config.evaluation_intervals(baseline.sample_period_s)
+        )
         self.samples = 0
         self.baseline_values = readout_values(baseline.readout, order, baseline.sigma2)
         self.current_values = dict(self.baseline_values)

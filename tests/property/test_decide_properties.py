@@ -43,10 +43,11 @@ def test_bank_transitions_equal_per_asset_tracker(
     if policy.raise_m > policy.raise_n or policy.critical_m > policy.raise_n:
         return
     rows = 6
-    trackers = [AlertTracker(policy) for _ in range(rows)]
-    bank = TrackerBank(policy, KEYS, capacity=2)
+    every = {"innovation_mean": 1.0, "band": 3.0}  # two keys, two off-delay counts
+    trackers = [AlertTracker(policy, every) for _ in range(rows)]
+    bank = TrackerBank(policy, KEYS, capacity=2, intervals=every)
     bank.resize(rows)
-    scalar = TrackerBank(policy, KEYS, capacity=rows)
+    scalar = TrackerBank(policy, KEYS, capacity=rows, intervals=every)
     for t, step in enumerate(steps):
         for key_index in (0, 1):
             chosen = {row: ev for row, (k, ev) in enumerate(step) if k == key_index}

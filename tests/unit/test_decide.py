@@ -91,51 +91,54 @@ def test_state_round_trip_continues_identically() -> None:
 
 
 def test_off_delay_clears_only_once_the_quiet_run_spans_clear_after_s() -> None:
-    # raised at t=2; quiet from t=3: four quiet evaluations by t=6, but the run
-    # must also span 10 s, so it clears at t=13. A run broken by one
-    # evaluation above clear_ratio * threshold (4.5 of 5) starts over.
+    # evaluations 1 s apart: raised at t=2; quiet from t=3: four quiet
+    # evaluations by t=6, but the run must also span 10 s, so it clears at
+    # t=13. A run broken by one evaluation above clear_ratio * threshold (4.5
+    # of 5) starts over.
     policy = AlertPolicy(raise_m=3, raise_n=5, clear_n=4, clear_after_s=10.0)
-    assert run(AlertTracker(policy), [6, 6, 6] + [1] * 12) == [
+    every = {"innovation_mean": 1.0}
+    assert run(AlertTracker(policy, every), [6, 6, 6] + [1] * 12) == [
         (2, "raised", "warning"),
         (13, "cleared", "warning"),
     ]
     broken = [6, 6, 6] + [1] * 5 + [4.5] + [1] * 12
-    assert run(AlertTracker(policy), broken)[-1] == (19, "cleared", "warning")
+    assert run(AlertTracker(policy, every), broken)[-1] == (19, "cleared", "warning")
+    # a detector judged every 10 s needs its clear_n alone; one not named, too
+    assert run(AlertTracker(policy, {"innovation_mean": 10.0}), [6, 6, 6] + [1] * 12)[-1] == (
+        6,
+        "cleared",
+        "warning",
+    )
+    assert run(AlertTracker(policy), [6, 6, 6] + [1] * 12)[-1] == (6, "cleared", "warning")
 
 
 def test_state_round_trip_in_a_quiet_run_keeps_the_off_delay() -> None:
     policy = AlertPolicy(raise_m=2, raise_n=4, clear_n=2, clear_after_s=5.0)
-    a = AlertTracker(policy)
+    every = {"innovation_mean": 1.0}
+    a = AlertTracker(policy, every)
     run(a, [6, 6, 1, 1])  # raised at 1, quiet since 2
-    b = AlertTracker(policy)
+    b = AlertTracker(policy, every)
     b.load_state(json.loads(json.dumps(a.to_state())))
     tail = [(4.0 + k, 1.0) for k in range(6)]
     got = [[t.sample_time_s for x in tail if (t := tr.observe(ev(x[1]), x[0]))] for tr in (a, b)]
     assert got[0] == got[1] == [7.0]
 
 
-def test_state_saved_before_the_off_delay_clears_on_the_count() -> None:
-    tracker = AlertTracker(AlertPolicy(clear_n=2, clear_after_s=3600.0))
-    saved = {"alarms": 7, "criticals": 0, "evaluations": 9, "quiet_run": 1, "raised": True,
-             "severity": "warning", "first_seen_s": 0.0}  # fmt: skip
-    tracker.load_state({"innovation_mean/innovation": saved})
-    transition = tracker.observe(ev(1.0), 100.0)
-    assert transition is not None and transition.state == "cleared"
-
-
-def test_bank_arrays_saved_before_the_off_delay_load_and_clear_on_the_count() -> None:
-    policy = AlertPolicy(raise_m=1, raise_n=1, critical_m=1, clear_n=2, clear_after_s=3600.0)
-    bank = TrackerBank(policy, ("innovation_mean/innovation",), 1)
+def test_bank_quiet_runs_saved_wider_load_into_the_smallest_type() -> None:
+    policy = AlertPolicy(raise_m=1, raise_n=1, critical_m=1, clear_n=3)
+    keys = ("innovation_mean/innovation",)
+    bank = TrackerBank(policy, keys, 1)
+    assert bank.quiet_run.dtype == np.uint16
     bank.observe_one(0, 0, 9.0, 5.0, True, 0.0)  # raised
-    bank.observe_one(0, 0, 1.0, 5.0, False, 60.0)  # quiet run starts
-    saved = {k: v.copy() for k, v in bank.arrays().items() if k != "quiet_since_s"}
-    old = TrackerBank(policy, ("innovation_mean/innovation",), 0)
-    old.load_arrays(saved)
-    assert old.active(0) == {"innovation_mean/innovation": "warning"}
-    cleared = old.observe_one(0, 0, 1.0, 5.0, False, 120.0)
+    bank.observe_one(0, 0, 1.0, 5.0, False, 1.0)  # quiet run starts
+    saved = {k: v.copy() for k, v in bank.arrays().items()}
+    saved["quiet_run"] = saved["quiet_run"].astype(np.uint32)  # as earlier versions kept it
+    again = TrackerBank(policy, keys, 0)
+    again.load_arrays(saved)
+    assert again.quiet_run.dtype == np.uint16 and again.quiet_run[0, 0] == 1
+    assert again.observe_one(0, 0, 1.0, 5.0, False, 2.0) is None
+    cleared = again.observe_one(0, 0, 1.0, 5.0, False, 3.0)
     assert cleared is not None and cleared.state == "cleared"
-    # the same state with its quiet_since_s waits out the hour
-    assert bank.observe_one(0, 0, 1.0, 5.0, False, 120.0) is None
 
 
 @pytest.mark.parametrize(
