@@ -278,6 +278,9 @@ class AlertTracker:
         self._episodes = episodes
 
 
+#: Busy episodes up to which TrackerBank.observe takes them one by one.
+_FEW_BUSY = 8
+
 #: Number of set bits of every byte value, for popcounts over any unsigned width.
 _BITS_IN_BYTE = np.array([bin(v).count("1") for v in range(256)], dtype=np.uint8)
 
@@ -556,6 +559,22 @@ class TrackerBank:
             if isinstance(rows, slice):
                 rows = np.arange(rows.start, rows.stop, dtype=np.intp)
             picked = np.flatnonzero(busy)
+            if picked.shape[0] <= _FEW_BUSY:
+                # a handful of episodes: the scalar path costs less than forty array calls
+                few = []
+                for pos in picked.tolist():
+                    one = self.observe_one(
+                        int(rows[pos]),
+                        key,
+                        float(stat[pos]),
+                        float(limit[pos]),
+                        bool(alarm[pos]),
+                        float(when[pos]),
+                        True if conclusive is None else bool(conclusive[pos]),
+                    )
+                    if one is not None:
+                        few.append(BankTransition(pos, one.state, one.severity, one.first_seen_s))
+                return few
             found = self.observe(
                 rows[picked],
                 key,

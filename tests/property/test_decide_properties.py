@@ -32,7 +32,8 @@ evaluations = st.tuples(
 @given(
     policies,
     st.lists(
-        st.lists(st.tuples(st.integers(0, 1), evaluations), min_size=1, max_size=6),
+        # up to 12 rows a step: a few busy episodes go one by one, more as arrays
+        st.lists(st.tuples(st.integers(0, 1), evaluations), min_size=1, max_size=12),
         min_size=1,
         max_size=60,
     ),
@@ -42,7 +43,7 @@ def test_bank_transitions_equal_per_asset_tracker(
 ) -> None:
     if policy.raise_m > policy.raise_n or policy.critical_m > policy.raise_n:
         return
-    rows = 6
+    rows = 12
     every = {"innovation_mean": 1.0, "band": 3.0}  # two keys, two off-delay counts
     trackers = [AlertTracker(policy, every) for _ in range(rows)]
     bank = TrackerBank(policy, KEYS, capacity=2, intervals=every)
