@@ -369,8 +369,8 @@ class TrackerBank:
             [policy.quiet_needed(every.get(key.split("/")[0])) for key in self.keys],
             dtype=np.int64,
         )
-        # the quiet run stops counting there: the smallest type that holds it
-        run_type = np.uint16 if int(self.quiet_needed.max()) < 2**16 else np.uint32
+        # the quiet run stops counting one past that: the smallest type that holds it
+        run_type = np.uint16 if int(self.quiet_needed.max()) < 2**16 - 1 else np.uint32
         shape = (capacity, len(self.keys))
         self.alarms = np.zeros(shape, dtype=self._bits)
         self.criticals = np.zeros(shape, dtype=self._bits)

@@ -139,6 +139,9 @@ def test_bank_quiet_runs_saved_wider_load_into_the_smallest_type() -> None:
     assert again.observe_one(0, 0, 1.0, 5.0, False, 2.0) is None
     cleared = again.observe_one(0, 0, 1.0, 5.0, False, 3.0)
     assert cleared is not None and cleared.state == "cleared"
+    # a run that must reach 65,535 counts one past it: that needs the wider type
+    long = AlertPolicy(clear_n=3, clear_after_s=65_534.0)
+    assert TrackerBank(long, keys, 1, {"innovation_mean": 1.0}).quiet_run.dtype == np.uint32
 
 
 @pytest.mark.parametrize(
