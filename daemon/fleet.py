@@ -101,6 +101,39 @@ _QUALITY_KINDS = ("out_of_range", "stuck", "gap", "stale")
 #: faster (tests/benchmarks/bench_monitor.py).
 _COMPILED_ROWS = 1024
 
+#: State arrays the compiled kernels take, in their argument order.
+_BASE_STATE = ("base_y", "base_u", "base_count", "theta0", "cov0", "sigma2")
+_DETECTOR_STATE = (
+    *("pw_count", "pw_sums", "pw_head", "pw_past", "pw_scale"),
+    *("c_high", "c_low", "n_high", "n_low", "var_s"),
+    *("wh_count", "wh_sums", "wh_head", "wh_past"),
+)
+_LIVE_STATE = ("rls_y", "rls_u", "rls_count", "rls", "samples")
+#: Rows of the compiled innovation kernel's outputs (fleetnative.FLOAT_OUT, INT_OUT).
+(
+    _F_PREDICTION,
+    _F_Z,
+    _F_C_HIGH,
+    _F_C_LOW,
+    _F_CUSUM_STATISTIC,
+    _F_VARIANCE_S,
+    _F_VARIANCE_STATISTIC,
+    _F_VARIANCE_THRESHOLD,
+) = range(len(FLOAT_OUT))
+(
+    _I_CHANGING,
+    _I_READY,
+    _I_JUDGED,
+    _I_FIT,
+    _I_N_HIGH,
+    _I_N_LOW,
+    _I_CUSUM_ALARM,
+    _I_CUSUM_BUSY,
+    _I_VARIANCE_ALARM,
+    _I_VARIANCE_BUSY,
+    _I_BLOCK_ENDED,
+) = range(len(INT_OUT))
+
 Float = NDArray[np.float64]
 Index = NDArray[np.intp]
 #: Channels or positions: a slice when they form a contiguous range (views, no copies).
@@ -521,12 +554,12 @@ class _Group:
         try:
             self.live_compiled(
                 ch,
-                np.ascontiguousarray(y),
-                np.ascontiguousarray(u),
+                y,
+                u,
                 self.structure,
                 self.nb,
                 self.nk,
-                *(a[name] for name in ("rls_y", "rls_u", "rls_count", "rls", "samples")),
+                *map(a.__getitem__, _LIVE_STATE),
                 self.live_constants,
                 out,
             )
@@ -596,16 +629,14 @@ class _Group:
         assert self.kernel_compiled is not None
         self.kernel_compiled(
             ch,
-            np.ascontiguousarray(y),
-            np.ascontiguousarray(u),
+            y,
+            u,
             self.structure,
             self.nb,
             self.nk,
-            *(a[name] for name in ("base_y", "base_u", "base_count", "theta0", "cov0", "sigma2")),
+            *map(a.__getitem__, _BASE_STATE),
             self.tri_index,
-            *(a[name] for name in ("pw_count", "pw_sums", "pw_head", "pw_past", "pw_scale")),
-            *(a[name] for name in ("c_high", "c_low", "n_high", "n_low", "var_s")),
-            *(a[name] for name in ("wh_count", "wh_sums", "wh_head", "wh_past")),
+            *map(a.__getitem__, _DETECTOR_STATE),
             tracker.raised,
             tracker.alarms,
             self.settings,
@@ -613,39 +644,42 @@ class _Group:
             out_i,
             totals,
         )
-        f = dict(zip(FLOAT_OUT, out_f, strict=True))
-        i = dict(zip(INT_OUT, out_i, strict=True))
-        n = dict(zip(TOTALS, totals.tolist(), strict=True))
+        ready, judged, fit, cusum_busy, variance_busy, block_ended = totals.tolist()
+        changing = out_i[_I_CHANGING] != 0
         every = slice(0, k)  # the kernel leaves nan where a value was not computed
-        if n["ready"]:
-            self.tap["base"] = (every, f["prediction"], f["z"])
-        if n["fit"]:
-            for c in ch[i["fit"] != 0].tolist():
+        if ready:
+            self.tap["base"] = (every, out_f[_F_PREDICTION], out_f[_F_Z])
+        if fit:
+            for c in ch[out_i[_I_FIT] != 0].tolist():
                 self._fit_prewhitener(c)
         found: list[tuple[int, int, Evidence, BankTransition]] = []
-        if not n["judged"]:
-            return found, i["changing"] != 0
-        self.tap["cusum"] = (every, f["c_high"], f["c_low"])
-        if n["cusum_busy"]:
-            busy = np.flatnonzero(i["cusum_busy"])
+        if not judged:
+            return found, changing
+        c_high, c_low = out_f[_F_C_HIGH], out_f[_F_C_LOW]
+        self.tap["cusum"] = (every, c_high, c_low)
+        if cusum_busy:
+            busy = np.flatnonzero(out_i[_I_CUSUM_BUSY])
+            alarm = out_i[_I_CUSUM_ALARM, busy] != 0
+            statistic = out_f[_F_CUSUM_STATISTIC, busy]
             cusum_h = float(self.config.cusum.h)
-            alarm = i["cusum_alarm"][busy] != 0
-            statistic = f["cusum_statistic"][busy]
+            n_high, n_low = out_i[_I_N_HIGH], out_i[_I_N_LOW]
             for t in tracker.observe(ch[busy], 0, statistic, cusum_h, alarm, time_s[busy]):
                 r = int(busy[t.position])
-                ev = self._cusum_evidence(f["c_high"], f["c_low"], i["n_high"], i["n_low"], r)
+                ev = self._cusum_evidence(c_high, c_low, n_high, n_low, r)
                 found.append((r, 0, ev, t))
-        if n["variance_busy"]:
-            busy = np.flatnonzero(i["variance_busy"])
-            statistic, threshold = f["variance_statistic"][busy], f["variance_threshold"][busy]
-            alarm = i["variance_alarm"][busy] != 0
+        if variance_busy:
+            busy = np.flatnonzero(out_i[_I_VARIANCE_BUSY])
+            statistic = out_f[_F_VARIANCE_STATISTIC, busy]
+            threshold = out_f[_F_VARIANCE_THRESHOLD, busy]
+            alarm = out_i[_I_VARIANCE_ALARM, busy] != 0
             for t in tracker.observe(ch[busy], 1, statistic, threshold, alarm, time_s[busy]):
                 r = int(busy[t.position])
-                found.append((r, 1, self._variance_evidence(float(f["variance_s"][r])), t))
-        if n["block_ended"]:
-            ended = np.flatnonzero(i["block_ended"])
+                s = float(out_f[_F_VARIANCE_S, r])
+                found.append((r, 1, self._variance_evidence(s), t))
+        if block_ended:
+            ended = np.flatnonzero(out_i[_I_BLOCK_ENDED])
             found += self._end_blocks(ended, ch[ended], time_s[ended])
-        return found, i["changing"] != 0
+        return found, changing
 
     def _innovations(
         self, rp: Sel, rc: Sel, time_s: Float, z: Float
@@ -1353,9 +1387,10 @@ class FleetMonitor:
         """
         slot_a = np.asarray(slots, dtype=np.intp)
         time_a = np.asarray(time_s, dtype=np.float64)
-        y_a = np.asarray(y, dtype=np.float64)
+        # contiguous, as the compiled kernels take them
+        y_a = np.ascontiguousarray(y, dtype=np.float64)
         k = slot_a.shape[0]
-        u_a = np.asarray(u, dtype=np.float64).reshape(k, len(self.names.inputs))
+        u_a = np.ascontiguousarray(np.reshape(u, (k, len(self.names.inputs))), dtype=np.float64)
         if not (time_a.shape == y_a.shape == slot_a.shape) or len(modes) != k:
             raise ValueError(
                 f"rows disagree in length: slots {slot_a.shape}, time_s {time_a.shape}, "
@@ -1363,86 +1398,103 @@ class FleetMonitor:
             )
         if k == 0:
             return []
-        inside = (slot_a >= 0) & (slot_a < self._used.shape[0])
-        held = np.zeros(k, dtype=np.bool_)
-        held[inside] = self._used[slot_a[inside]]
-        if not held.all():
+        used = self._used
+        if slot_a.min() < 0 or slot_a.max() >= used.shape[0] or not used[slot_a].all():
+            inside = (slot_a >= 0) & (slot_a < used.shape[0])
+            held = np.zeros(k, dtype=np.bool_)
+            held[inside] = used[slot_a[inside]]
             raise ValueError(f"slot {int(slot_a[~held][0])} holds no asset")
+        # one mode label for every row (the usual case) is a scalar code: no array to build
         labels = set(modes)
+        get = self._mode_codes.get
+        code_a: int | NDArray[np.int16]
         if len(labels) == 1:
-            only = self._mode_codes.get(next(iter(labels)), _OTHER_MODE)
-            code_a = np.full(k, only, dtype=np.int16)
+            code_a = get(next(iter(labels)), _OTHER_MODE)
         else:
-            get = self._mode_codes.get
             code_a = np.array([get(m, _OTHER_MODE) for m in modes], dtype=np.int16)
         restart_a = np.asarray(restart, dtype=np.bool_)
         records: list[tuple[int, int, dict[str, Any]]] = []
         # waves of rows with distinct sample times: each asset has one row per wave
-        if time_a.min() == time_a.max():  # one sample time (a live grid point)
-            waves = [np.arange(k)]
+        if time_a.min() == time_a.max():  # one sample time (a live grid point): every row
+            if k > 1 and np.bincount(slot_a).max() > 1:
+                raise ValueError("an asset has two rows with the same sample time")
+            records = self._wave(None, slot_a, time_a, y_a, u_a, code_a, restart_a)
         else:
             order = np.argsort(time_a, kind="stable")
-            waves = np.split(order, np.flatnonzero(np.diff(time_a[order])) + 1)
-        for wave in waves:
-            if np.bincount(slot_a[wave]).max() > 1:
-                raise ValueError("an asset has two rows with the same sample time")
-            records += self._wave(wave, slot_a, time_a, y_a, u_a, code_a, restart_a)
-        records.sort(key=lambda item: (item[0], item[1]))
+            for wave in np.split(order, np.flatnonzero(np.diff(time_a[order])) + 1):
+                if np.bincount(slot_a[wave]).max() > 1:
+                    raise ValueError("an asset has two rows with the same sample time")
+                records += self._wave(wave, slot_a, time_a, y_a, u_a, code_a, restart_a)
+        if len(records) > 1:
+            records.sort(key=lambda item: (item[0], item[1]))
         return [record for _, _, record in records]
 
     def _wave(
         self,
-        rows: Index,
+        rows: Index | None,
         slots: Index,
         time_s: Float,
         y: Float,
         u: Float,
-        codes: NDArray[np.int16],
+        codes: int | NDArray[np.int16],
         restart: NDArray[np.bool_],
     ) -> list[tuple[int, int, dict[str, Any]]]:
-        s = slots[rows]
-        restarting = restart[rows]
+        """Judge the rows ``rows`` (None: every row, in order) of one sample time."""
+        if rows is None:
+            s, restarting, code = slots, restart, codes
+        else:
+            s, restarting = slots[rows], restart[rows]
+            code = codes if isinstance(codes, int) else codes[rows]
+            time_s, y, u = time_s[rows], y[rows], u[rows]
         if restarting.any():
             for slot in s[restarting].tolist():
                 self.restart(slot)
-        code = codes[rows]
-        if code.min() >= 0:  # the usual case: every row's mode has a code
+        # from here on, positions are within the wave; ``rows`` maps them back
+        if isinstance(code, int) and code < 0:  # one mode, and no baseline has it
+            group = np.full(s.shape[0], -1, dtype=np.intp)
+        elif isinstance(code, int) or code.min() >= 0:  # every row's mode has a code
             group = self._chan_group[s, code].astype(np.intp)
-            index = self._chan_index[s, code].astype(np.intp)
         else:
             known = code >= 0
-            group = np.full(rows.shape[0], -1, dtype=np.intp)
-            index = np.full(rows.shape[0], -1, dtype=np.intp)
+            group = np.full(s.shape[0], -1, dtype=np.intp)
             group[known] = self._chan_group[s[known], code[known]]
-            index[known] = self._chan_index[s[known], code[known]]
-        has = group >= 0
         # a mode switch into a mode with a baseline restarts that mode's histories
-        switch = has & (code != self._last_mode[s])
+        switch = self._last_mode[s] != code
         self._last_mode[s] = code
         out: list[tuple[int, int, dict[str, Any]]] = []
         low, high = int(group.min()), int(group.max())
-        if low < 0:  # rows in a mode without a baseline
+        everyone = low >= 0
+        if not everyone:  # rows in a mode without a baseline
+            has = group >= 0
             self.skipped += int((~has).sum())
             if high < 0:
                 return []
             low = int(group[has].min())
+            switch &= has
         trace = self._trace
-        for g in [low] if low == high else np.unique(group[has]).tolist():
+        for g in [low] if low == high else np.unique(group[group >= 0]).tolist():
             target = self._groups[g]
-            if low == high and has.all():  # one group takes every row: no selection
-                ch, where, switched = index, rows, switch
+            if low == high and everyone:  # one group takes every row: no selection
+                where: Index | None = None
+                index = self._chan_index[s, code].astype(np.intp)
+                ch, switched, t_g, y_g, u_g = index, switch, time_s, y, u
             else:
-                member = group == g
-                ch, where, switched = index[member], rows[member], switch[member]
+                where = np.flatnonzero(group == g)
+                s_g = s[where]
+                code_g = code if isinstance(code, int) else code[where]
+                ch = self._chan_index[s_g, code_g].astype(np.intp)
+                switched, t_g, y_g, u_g = switch[where], time_s[where], y[where], u[where]
             if switched.any():
                 target.restart(ch[switched])
-            found = target.step(ch, time_s[where], y[where], u[where])
+            found = target.step(ch, t_g, y_g, u_g)
             if trace is not None:
-                self._trace_group(trace, target, ch, time_s[where], y[where])
+                self._trace_group(trace, target, ch, t_g, y_g)
             inflate: set[int] = set()
             for pos, key, evidence, transition in found:
-                c, row = int(ch[pos]), int(where[pos])
-                record = self._record(target, c, key, evidence, transition, float(time_s[row]))
+                c = int(ch[pos])
+                wave_pos = pos if where is None else int(where[pos])
+                row = wave_pos if rows is None else int(rows[wave_pos])
+                record = self._record(target, c, key, evidence, transition, float(t_g[pos]))
                 out.append((row, key, record))
                 if transition.state == "raised" and evidence.detector in CHANGE_DETECTORS:
                     inflate.add(c)
