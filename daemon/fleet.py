@@ -63,7 +63,7 @@ from arxwatch.estimators.detect.prewhiten import fit_reference
 from arxwatch.estimators.detect.whiteness import block_statistics, evidence_of_block
 from arxwatch.estimators.estimator import ArxEstimator, Backend, resolve_backend
 from arxwatch.estimators.native import NON_FINITE
-from arxwatch.estimators.readout import feature_matrix, feature_names, read_out
+from arxwatch.estimators.readout import feature_names, read_out
 from arxwatch.estimators.rls import TRACE_CHECK_EVERY, StateLayout, build_kernel
 
 __all__ = ["DETECTORS", "FleetMonitor", "TraceSink"]
@@ -955,9 +955,9 @@ class _Group:
         theta0 = a["theta0"][:, dc].T
         cov0 = a["cov0"][:, dc].T[:, self.tri_index]
         found: list[tuple[int, int, Evidence, BankTransition]] = []
-        # feature Wald test
-        x0, c0 = self.drift.project(theta0, cov0)
-        x, cx = self.drift.project(thetas, covs)
+        # feature Wald test; the read-outs serve the bands and the records too
+        base, x0, c0 = self.drift.read_and_project(theta0, cov0)
+        live, x, cx = self.drift.read_and_project(thetas, covs)
         wald = self.drift.distances(x0, c0, x, cx)
         self.tap["evaluate"] = (dp, dc, wald)
         # the reset covariance shrinks the distance: it cannot say "back to normal"
@@ -968,8 +968,6 @@ class _Group:
             ev = self.drift.evidence(wald, x0, x, t.position)
             found.append((int(dp[t.position]), 3, ev, t))
         # physical bands (PhysicalBands.update, element-wise)
-        live = feature_matrix(self.order, thetas, self.sample_period_s)
-        base = feature_matrix(self.order, theta0, self.sample_period_s)
         found += self._bands(dp, dc, live, base, np.sqrt(sigma2), time_s)
         # the live read-out the records show
         rss = a["rls"][layout.rss, dc]

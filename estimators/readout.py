@@ -55,6 +55,7 @@ from arxwatch.estimators.errors import DimensionError
 __all__ = [
     "PhysicalReadout",
     "feature_jacobians",
+    "features_and_jacobians",
     "feature_matrix",
     "feature_names",
     "feature_vector",
@@ -446,19 +447,38 @@ def _sequential_sum(columns: NDArray[np.float64]) -> NDArray[np.float64]:
 
 
 def _features(order: ArxOrder, th: NDArray[np.float64], ts: float) -> NDArray[np.float64]:
-    k, na = th.shape[0], order.na
-    a = th[:, :na]
+    constant = th[:, -1] if order.constant else None
+    return _features_from(order, th[:, : order.na], _input_sums(order, th), constant, ts)
+
+
+def _input_sums(order: ArxOrder, th: NDArray[np.float64]) -> list[NDArray[np.float64]]:
+    """B_i(1) of every input for each row of theta, summed left to right."""
+    return [_sequential_sum(th[:, order.input_slice(i)]) for i in range(order.n_inputs)]
+
+
+def _features_from(
+    order: ArxOrder,
+    a: NDArray[np.float64],
+    sums: list[NDArray[np.float64]],
+    constant: NDArray[np.float64] | None,
+    ts: float,
+) -> NDArray[np.float64]:
+    """Features from the A coefficients (k, na), the B_i(1) sums and the constant c.
+
+    Split from :func:`_features` so the Jacobian can move the A coefficients
+    alone and reuse the sums, with the same operations (the same bits).
+    """
+    k = a.shape[0]
     a_at_one = 1.0 + _sequential_sum(a)
     scale = 1.0 + _sequential_sum(np.abs(a))
     integrating = np.abs(a_at_one) <= _A1_RTOL * scale
     columns = []
     with np.errstate(divide="ignore", invalid="ignore"):
-        for i in range(order.n_inputs):
-            gain = _sequential_sum(th[:, order.input_slice(i)]) / a_at_one
-            columns.append(np.where(integrating, np.nan, gain))
+        for total in sums:
+            columns.append(np.where(integrating, np.nan, total / a_at_one))
         columns.append(_time_constants(a, integrating, ts))
-        if order.constant:
-            columns.append(np.where(integrating, np.nan, th[:, -1] / a_at_one))
+        if constant is not None:
+            columns.append(np.where(integrating, np.nan, constant / a_at_one))
     return np.stack(columns, axis=1) if k else np.zeros((0, len(columns)))
 
 
@@ -539,6 +559,30 @@ def feature_jacobians(
     ValueError
         If a value or the step is not finite, or the sample period is not positive.
     """
+    return features_and_jacobians(order, thetas, sample_period_s, relative_step=relative_step)[1]
+
+
+def features_and_jacobians(
+    order: ArxOrder,
+    thetas: ArrayLike,
+    sample_period_s: float,
+    *,
+    relative_step: float = _DEFAULT_STEP,
+) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """:func:`feature_matrix` and :func:`feature_jacobians` of the same rows, in one pass.
+
+    The differences need the features at theta anyway (an undefined feature
+    has no derivative); a caller that wants both, like the delta method of
+    a drift test, gets them without reading theta out twice. Parameters,
+    errors and values are those of the two functions.
+
+    Returns
+    -------
+    features : ndarray, shape (k, n_features)
+        ``feature_matrix(order, thetas, sample_period_s)``.
+    jacobians : ndarray, shape (k, n_features, n_params)
+        ``feature_jacobians(order, thetas, sample_period_s, ...)``.
+    """
     arr = np.array(thetas, dtype=np.float64)
     if arr.ndim != 2 or arr.shape[1] != order.n_params:
         raise DimensionError(
@@ -559,26 +603,58 @@ def feature_jacobians(
 
 def _jacobians(
     order: ArxOrder, th: NDArray[np.float64], ts: float, rel: float
-) -> NDArray[np.float64]:
+) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """Features at theta and their central differences (k, n_features, n_params).
+
+    Only the entries a step can move are differenced: a_j moves every
+    feature, a coefficient of B_i only the gain of input i, c only the
+    offset. Every other entry is ``(f - f) / width``, which is 0, or nan
+    where f is not finite, as differencing the whole read-out gives; the
+    moved entries come from the same operations as :func:`_features` on the
+    stepped theta, so the result is the full difference bit for bit.
+    """
     k, n = th.shape
-    # every +h and -h perturbation of every row, read out in one call
+    na = order.na
     h = rel * np.maximum(np.abs(th), 1.0)
-    plus = np.repeat(th[None, :, :], n, axis=0)  # (n, k, n): perturbation j of each row
-    minus = plus.copy()
-    index = np.arange(n)
-    plus[index, :, index] += h.T
-    minus[index, :, index] -= h.T
-    width = plus[index, :, index] - minus[index, :, index]  # the step actually taken, (n, k)
-    both = np.concatenate((plus.reshape(n * k, n), minus.reshape(n * k, n)))
-    values = _features(order, both, ts)
-    f_plus = values[: n * k].reshape(n, k, -1)
-    f_minus = values[n * k :].reshape(n, k, -1)
-    jac = ((f_plus - f_minus) / width[:, :, None]).transpose(1, 2, 0)  # (k, f, n)
+    plus = th + h
+    minus = th - h
+    width = plus - minus  # the step actually taken
+    a = th[:, :na]
+    sums = _input_sums(order, th)
+    constant = th[:, -1] if order.constant else None
+    at_theta = _features_from(order, a, sums, constant, ts)
+    jac = np.where(np.isfinite(at_theta)[:, :, None], np.zeros(n), np.nan)
+    if na:
+        # block j: a with a_j stepped up; block na + j: stepped down
+        stepped = np.tile(a, (2 * na, 1))
+        for j in range(na):
+            stepped[j * k : (j + 1) * k, j] = plus[:, j]
+            stepped[(na + j) * k : (na + j + 1) * k, j] = minus[:, j]
+        values = _features_from(
+            order,
+            stepped,
+            [np.tile(total, 2 * na) for total in sums],
+            None if constant is None else np.tile(constant, 2 * na),
+            ts,
+        ).reshape(2, na, k, -1)
+        jac[:, :, :na] = ((values[0] - values[1]) / width[:, :na].T[:, :, None]).transpose(1, 2, 0)
+    a_at_one = 1.0 + _sequential_sum(a)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        for i in range(order.n_inputs):
+            cols = order.input_slice(i)
+            for j in range(cols.start, cols.stop):
+                up = th[:, cols].copy()
+                down = up.copy()
+                up[:, j - cols.start] = plus[:, j]
+                down[:, j - cols.start] = minus[:, j]
+                gain_up = _sequential_sum(up) / a_at_one
+                jac[:, i, j] = (gain_up - _sequential_sum(down) / a_at_one) / width[:, j]
+        if order.constant:
+            jac[:, -1, -1] = (plus[:, -1] / a_at_one - minus[:, -1] / a_at_one) / width[:, -1]
     # a feature undefined at theta has no derivative there, even when both
     # neighbours are finite (the gain of an integrator jumps from -inf to +inf)
-    at_theta = _features(order, th, ts)
     jac[np.isnan(at_theta)] = np.nan
-    return np.ascontiguousarray(jac)
+    return at_theta, jac
 
 
 def _check_theta(order: ArxOrder, theta: ArrayLike) -> NDArray[np.float64]:

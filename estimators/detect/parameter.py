@@ -69,7 +69,7 @@ from arxwatch.estimators.detect._checks import (
 )
 from arxwatch.estimators.detect.evidence import Evidence
 from arxwatch.estimators.errors import DimensionError
-from arxwatch.estimators.readout import feature_jacobians, feature_matrix, feature_names
+from arxwatch.estimators.readout import feature_names, features_and_jacobians
 
 __all__ = [
     "FeatureDrift",
@@ -811,39 +811,80 @@ class FeatureDrift(_WaldDrift):
 
     _name = "feature_drift"
     _signal = "features"
-    __slots__ = ("config", "_rows", "_names")
+    __slots__ = ("config", "_rows", "_names", "_support")
 
     def __init__(self, config: FeatureDriftConfig) -> None:
         self.config = config
         super().__init__(config.alpha, config.every, config.rcond)
-        names = feature_names(config.order)
+        order = config.order
+        names = feature_names(order)
         chosen = config.features if config.features is not None else names
         self._rows = [names.index(f) for f in chosen]
         self._names = tuple(chosen)
+        # Parameters each tested feature depends on (the others give exact
+        # zeros in J): every A coefficient, and an input's B coefficients for
+        # its gain, c for the offset.
+        moved = [list(range(order.na)) for _ in names]
+        for i in range(order.n_inputs):
+            cols = order.input_slice(i)
+            moved[i] += list(range(cols.start, cols.stop))
+        if order.constant:
+            moved[-1].append(order.n_params - 1)
+        self._support = [tuple(moved[r]) for r in self._rows]
 
     def _baseline_params(self, n_given: int) -> int:
         return self.config.order.n_params
 
     def project(self, thetas: _Vector, covs: _Vector) -> tuple[_Vector, _Vector]:
         """Features of theta rows (k, n) and their covariances ``J Cov J'`` (delta method)."""
+        _, f, cf = self.read_and_project(thetas, covs)
+        return f, cf
+
+    def read_and_project(self, thetas: _Vector, covs: _Vector) -> tuple[_Vector, _Vector, _Vector]:
+        """:meth:`project`, with every feature of the rows as ``feature_matrix`` gives them.
+
+        The Jacobian needs the read-out at theta anyway; a caller that also
+        shows or bands the features (the fleet's hourly evaluation) takes
+        them from here instead of reading theta out again.
+
+        Returns
+        -------
+        features : ndarray, shape (k, n_features)
+            ``feature_matrix(order, thetas, sample_period_s)``.
+        x, cx : ndarray, shapes (k, m) and (k, m, m)
+            What :meth:`project` returns.
+        """
         order, ts = self.config.order, self.config.sample_period_s
-        f = feature_matrix(order, thetas, ts)[:, self._rows]
-        jac = feature_jacobians(order, thetas, ts)[:, self._rows, :]
+        features, full = features_and_jacobians(order, thetas, ts)
+        rows, support = self._rows, self._support
+        f = features[:, rows]
+        jac = full[:, rows, :]
         # nan rows of J (undefined features) would spread nan over the whole
         # product; zero them here and let the finiteness mask on f drop them.
         bad = np.asarray(~np.isfinite(jac).all(axis=2), dtype=np.bool_)
         jac[bad] = 0.0
-        # J Cov J' with sums in a fixed order, so a row does not depend on its batch
-        k, m, n = jac.shape
-        left = np.zeros((k, m, n))
-        for i in range(n):
-            left = left + jac[:, :, i, None] * covs[:, None, i, :]
-        cf = np.zeros((k, m, m))
-        for j in range(n):
-            cf = cf + left[:, :, None, j] * jac[:, None, :, j]
+        # J Cov J' with sums in a fixed order (ascending parameter), so a row
+        # does not depend on its batch; the terms where J is structurally 0
+        # are left out, which changes no finite sum.
+        k, m = f.shape
+        left = np.empty((k, m, covs.shape[2]))
+        for r, moved in enumerate(support):
+            acc = np.zeros((k, covs.shape[2]))
+            for i in moved:
+                acc = acc + jac[:, r, i, None] * covs[:, i, :]
+            left[:, r, :] = acc
+        cf = np.empty((k, m, m))
+        for r, moved in enumerate(support):
+            acc = np.zeros((k, m))
+            for j in moved:
+                acc = acc + left[:, :, j] * jac[:, r, j, None]
+            cf[:, :, r] = acc
+        # a covariance with an entry that is not finite leaves nothing to test
+        # (the full product, 0 * inf included, is nan everywhere)
+        cf[~np.isfinite(covs).all(axis=(1, 2))] = np.nan
         cf[bad[:, :, None] | bad[:, None, :]] = np.nan
         f[bad] = np.nan
-        return f, cf
+        return features, f, cf
 
     def _tested_size(self, n_params: int) -> int:
         if n_params != self.config.order.n_params:

@@ -18,7 +18,14 @@ from arxwatch.estimators.detect import (
 )
 from arxwatch.estimators.errors import DimensionError
 from arxwatch.estimators.estimator import ArxEstimator
-from arxwatch.estimators.readout import feature_vector, read_out, readout_jacobian
+from arxwatch.estimators.readout import (
+    feature_jacobians,
+    feature_matrix,
+    feature_names,
+    feature_vector,
+    read_out,
+    readout_jacobian,
+)
 from arxwatch.estimators.rls import RlsConfig
 
 THETA = np.array([-0.8, 0.3, 0.1])
@@ -139,6 +146,41 @@ def test_feature_drift_leaves_out_undefined_features() -> None:
     only_tau.set_baseline(THETA, COV)
     ev = only_tau.update([-1.0, 0.3, 0.1], COV)  # integrating
     assert ev is not None and ev.detail == "undefined" and not ev.alarm
+
+
+@pytest.mark.parametrize("features", [None, ("offset", "gain_1")])
+def test_feature_projection_is_the_full_product_and_the_read_out(
+    features: tuple[str, ...] | None,
+) -> None:
+    # Reference: J Cov J' summed over every parameter in ascending order
+    # (terms where J is 0 included), J from feature_jacobians with its nan
+    # rows zeroed and masked afterwards; features from feature_matrix.
+    order = ArxOrder(na=2, nb=(2,), nk=(1,))
+    det = FeatureDrift(FeatureDriftConfig(order, 60.0, features=features))
+    rng = np.random.default_rng(3)
+    thetas = np.array([-1.2, 0.36, 0.05, 0.03, 0.4]) + 0.05 * rng.normal(size=(40, 5))
+    thetas[0, :2] = [-2.0, 1.0]  # integrating: gains and offset undefined
+    root = rng.normal(size=(40, 5, 5)) * 1e-2
+    covs = root @ root.transpose(0, 2, 1)
+    covs[1, 2, 2] = np.nan  # a broken covariance leaves nothing to test
+    rows = [feature_names(order).index(f) for f in features or feature_names(order)]
+    jac = feature_jacobians(order, thetas, 60.0)[:, rows, :]
+    bad = ~np.isfinite(jac).all(axis=2)
+    jac[bad] = 0.0
+    expected = np.zeros((40, len(rows), len(rows)))
+    for r in range(40):
+        left = np.zeros((len(rows), 5))
+        for i in range(5):
+            left = left + jac[r, :, i, None] * covs[r, None, i, :]
+        for j in range(5):
+            expected[r] = expected[r] + left[:, None, j] * jac[r, None, :, j]
+    expected[bad[:, :, None] | bad[:, None, :]] = np.nan
+    all_features, x, cx = det.read_and_project(thetas, covs)
+    assert all_features.tobytes() == feature_matrix(order, thetas, 60.0).tobytes()
+    np.testing.assert_array_equal(x, np.where(bad, np.nan, all_features[:, rows]))
+    assert np.isnan(cx[1]).all()
+    np.testing.assert_array_equal(np.delete(cx, 1, axis=0), np.delete(expected, 1, axis=0))
+    assert det.project(thetas, covs)[1].tobytes() == cx.tobytes()
 
 
 def test_works_on_a_live_rls_estimator_with_a_gain_change() -> None:

@@ -20,8 +20,11 @@ from arxwatch.estimators.arx import ArxOrder
 from arxwatch.estimators.errors import DimensionError
 from arxwatch.estimators.readout import (
     PhysicalReadout,
+    feature_jacobians,
+    feature_matrix,
     feature_names,
     feature_vector,
+    features_and_jacobians,
     read_out,
     readout_jacobian,
 )
@@ -312,6 +315,48 @@ def test_jacobian_delta_method_shape() -> None:
     assert np.all(np.isfinite(cov_features))
     # Gains do not depend on the other input's coefficients.
     assert np.all(jac[0, 4:5] == 0.0) and np.all(jac[1, 2:4] == 0.0)
+
+
+@pytest.mark.parametrize(
+    "order",
+    [
+        FIRST_ORDER,
+        ArxOrder(na=2, nb=(2,), nk=(2,)),
+        ArxOrder(na=2, nb=(3, 1), nk=(1, 1), constant=False),
+        ArxOrder(na=3, nb=(1,), nk=(1,)),
+        ArxOrder(na=0, nb=(2,), nk=(1,)),
+    ],
+    ids=str,
+)
+def test_jacobians_are_the_full_central_difference_bit_for_bit(order: ArxOrder) -> None:
+    # Reference: the definition readout_jacobian states, every parameter
+    # stepped by h_j = eps**(1/3) max(|theta_j|, 1) and the whole read-out
+    # (feature_matrix) differenced; nan where the feature is nan at theta.
+    # Only the entries a step can move are differenced in the module; the
+    # others must still come out as (f - f) / width.
+    rng = np.random.default_rng(7)
+    grid = np.array([-2.0, -1.0, -0.81, -0.5, 0.0, 0.25, 0.5, 1.0, 1.6])
+    thetas = rng.uniform(-2.0, 2.0, size=(60, order.n_params))
+    coarse = rng.random(thetas.shape) < 0.4
+    thetas[coarse] = rng.choice(grid, size=int(coarse.sum()))
+    thetas[0, : order.na] = 0.0  # poles at the origin
+    thetas[1, -1] = 1e300  # an infinite gain or offset
+    h = float(np.finfo(np.float64).eps) ** (1.0 / 3.0) * np.maximum(np.abs(thetas), 1.0)
+    expected = np.empty((60, len(feature_names(order)), order.n_params))
+    with np.errstate(all="ignore"):
+        for j in range(order.n_params):
+            up, down = thetas.copy(), thetas.copy()
+            up[:, j] += h[:, j]
+            down[:, j] -= h[:, j]
+            width = up[:, j] - down[:, j]
+            step = feature_matrix(order, up, 60.0) - feature_matrix(order, down, 60.0)
+            expected[:, :, j] = step / width[:, None]
+        at_theta = feature_matrix(order, thetas, 60.0)
+        expected[np.isnan(at_theta)] = np.nan
+        features, jacobians = features_and_jacobians(order, thetas, 60.0)
+    assert features.tobytes() == at_theta.tobytes()
+    assert jacobians.tobytes() == expected.tobytes()
+    assert jacobians.tobytes() == feature_jacobians(order, thetas, 60.0).tobytes()
 
 
 def test_jacobian_is_nan_where_feature_undefined() -> None:
