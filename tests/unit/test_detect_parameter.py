@@ -16,6 +16,7 @@ from arxwatch.estimators.detect import (
     calibrate,
     wald_distance,
 )
+from arxwatch.estimators.detect.parameter import wald_distances
 from arxwatch.estimators.errors import DimensionError
 from arxwatch.estimators.estimator import ArxEstimator
 from arxwatch.estimators.readout import (
@@ -98,6 +99,34 @@ def test_singular_covariance_falls_back_to_its_range() -> None:
     assert ev.threshold == pytest.approx(chi2.ppf(0.95, 2), rel=1e-12)
     with pytest.raises(ValueError, match="covariance has rank 0"):
         wald_distance([1.0, 2.0], np.zeros((2, 2)))
+
+
+@pytest.mark.parametrize("n", [1, 2, 3, 5])
+def test_distances_near_the_rank_cut_off_agree_with_eigh(n: int) -> None:
+    # Reference: numpy.linalg.eigh, the eigenvalues above rcond times the
+    # largest kept and d2 summed over them (the pseudo-inverse on the kept
+    # range). Smallest over largest eigenvalue spread around rcond = 1e-10,
+    # as the feature covariances of a running fleet are (tau in s^2 next
+    # to gains): the factored path must keep exactly the same rank.
+    rng = np.random.default_rng(n)
+    k = 2000
+    q, _ = np.linalg.qr(rng.normal(size=(k, n, n)))
+    eigenvalues = 10 ** rng.uniform(-4.0, 0.0, size=(k, n))
+    eigenvalues[:, 0] = 1.0
+    if n > 1:
+        eigenvalues[:, -1] = 1e-10 * 10 ** rng.uniform(-0.05, 0.05, size=k)
+    eigenvalues *= 10 ** rng.uniform(-6.0, 6.0, size=(k, 1))
+    cov = q @ (eigenvalues[:, :, None] * q.transpose(0, 2, 1))
+    delta = rng.normal(size=(k, n)) * np.sqrt(np.diagonal(cov, axis1=1, axis2=2))
+    d2, rank = wald_distances(delta, cov)
+    w, v = np.linalg.eigh(0.5 * (cov + cov.transpose(0, 2, 1)))
+    keep = w > 1e-10 * w[:, -1:]
+    projected = np.einsum("kij,ki->kj", v, delta)
+    expected = np.where(keep, projected**2 / w, 0.0).sum(axis=1)
+    np.testing.assert_array_equal(rank, keep.sum(axis=1))
+    # Tolerance: both are backward stable, so they agree to about the
+    # condition number (1e10) times eps, relative.
+    np.testing.assert_allclose(d2, expected, rtol=1e-4)
 
 
 def test_empirical_threshold_from_calibrate_is_used() -> None:
