@@ -44,8 +44,7 @@ from arxwatch.daemon.fleetnative import (
     FLOAT_OUT,
     INT_OUT,
     TOTALS,
-    innovation_kernel,
-    live_kernel,
+    group_kernels,
 )
 from arxwatch.daemon.monitor import (
     CHANGE_DETECTORS,
@@ -241,12 +240,10 @@ class _Group:
         self.variance_upper = config.variance.upper_limit
         self.variance_lower = config.variance.lower_limit
         self.settle = config.settle_samples()
-        # the compiled innovation path and live estimate (fleetnative) and their settings
-        self.kernel_compiled = innovation_kernel() if compiled else None
-        self.live_compiled: Any = None
-        self.live_constants: Float = np.zeros(0)
-        if compiled:
-            self.live_compiled, self.live_constants = live_kernel(self.layout, config.rls)
+        # the compiled innovation path and live estimate (fleetnative), in one call per wave
+        self.compiled = (
+            group_kernels(self.layout, config.rls, self.p, self.lags) if compiled else None
+        )
         self.structure = np.array(
             [
                 order.na,
@@ -504,10 +501,9 @@ class _Group:
         """
         a, config = self.arrays, self.config
         self.tap = {}
-        if self.kernel_compiled is not None and ch.shape[0] <= _COMPILED_ROWS:
+        if self.compiled is not None and ch.shape[0] <= _COMPILED_ROWS:
             # steps 1 and 2 compiled, then step 3 as below
-            found, changing = self._innovate_compiled(ch, time_s, y, u)
-            due_eval = self._live_compiled(ch, y, u)
+            found, changing, due_eval = self._step_compiled(ch, time_s, y, u)
             if due_eval.any():
                 dp = np.flatnonzero(due_eval)
                 found += self._evaluate(dp, ch[dp], time_s[dp], changing[dp])
@@ -539,34 +535,6 @@ class _Group:
                 dp = _indices(rp)[due_eval]
                 found += self._evaluate(dp, _indices(rc)[due_eval], time_s[dp], changing[dp])
         return found
-
-    def _live_compiled(self, ch: Index, y: Float, u: Float) -> NDArray[np.bool_]:
-        """Step 2 of :meth:`step` in one compiled call; return the rows due for an evaluation.
-
-        Raises
-        ------
-        ValueError
-            If a sample is not finite (the numpy path lets nan into the
-            state instead; AssetMonitor refuses it as this does).
-        """
-        a, out = self.arrays, np.zeros((2, ch.shape[0]), dtype=np.int64)
-        assert self.live_compiled is not None
-        try:
-            self.live_compiled(
-                ch,
-                y,
-                u,
-                self.structure,
-                self.nb,
-                self.nk,
-                *map(a.__getitem__, _LIVE_STATE),
-                self.live_constants,
-                out,
-            )
-        except NON_FINITE:
-            raise ValueError("a sample for the live estimate is not finite") from None
-        due: NDArray[np.bool_] = out[1] != 0
-        return due
 
     def _innovate(
         self, sel: Sel, time_s: Float, y: Float, u: Float
@@ -614,36 +582,68 @@ class _Group:
         self._push("base", sel, y_past, u)
         return found, changing
 
-    def _innovate_compiled(
+    def _step_compiled(
         self, ch: Index, time_s: Float, y: Float, u: Float
-    ) -> tuple[list[tuple[int, int, Evidence, BankTransition]], NDArray[np.bool_]]:
-        """:meth:`_innovate` in one compiled call (:mod:`arxwatch.daemon.fleetnative`).
+    ) -> tuple[
+        list[tuple[int, int, Evidence, BankTransition]], NDArray[np.bool_], NDArray[np.bool_]
+    ]:
+        """Run steps 1 and 2 of :meth:`step` in one compiled call (:mod:`.fleetnative`).
 
-        The kernel updates the state arrays; the rare steps and the tracker's
-        episodes touched (busy) are taken here, by the numpy path's code.
+        The kernel updates the state arrays; the rare steps of the innovation
+        path and the tracker's episodes touched (busy) are taken here, by the
+        numpy path's code. Returns the transitions, per row whether an
+        innovation alert was up before the row (``changing``), and the rows
+        due for an evaluation.
+
+        Raises
+        ------
+        ValueError
+            If a sample is not finite (the numpy path lets nan into the
+            state instead; AssetMonitor refuses it as this does).
         """
         a, k, tracker = self.arrays, ch.shape[0], self.tracker
         out_f = np.empty((len(FLOAT_OUT), k))
         out_i = np.zeros((len(INT_OUT), k), dtype=np.int64)
         totals = np.zeros(len(TOTALS), dtype=np.int64)
-        assert self.kernel_compiled is not None
-        self.kernel_compiled(
-            ch,
-            y,
-            u,
-            self.structure,
-            self.nb,
-            self.nk,
-            *map(a.__getitem__, _BASE_STATE),
-            self.tri_index,
-            *map(a.__getitem__, _DETECTOR_STATE),
-            tracker.raised,
-            tracker.alarms,
-            self.settings,
-            out_f,
-            out_i,
-            totals,
-        )
+        live = np.zeros((2, k), dtype=np.int64)
+        assert self.compiled is not None
+        try:
+            self.compiled.wave(
+                ch,
+                y,
+                u,
+                self.structure,
+                self.nb,
+                self.nk,
+                *map(a.__getitem__, _BASE_STATE),
+                self.tri_index,
+                *map(a.__getitem__, _DETECTOR_STATE),
+                tracker.raised,
+                tracker.alarms,
+                self.settings,
+                out_f,
+                out_i,
+                totals,
+                *map(a.__getitem__, _LIVE_STATE),
+                self.compiled.constants,
+                live,
+            )
+        except NON_FINITE:
+            raise ValueError("a sample for the live estimate is not finite") from None
+        due: NDArray[np.bool_] = live[1] != 0
+        found, changing = self._innovated(ch, time_s, out_f, out_i, totals)
+        return found, changing, due
+
+    def _innovated(
+        self,
+        ch: Index,
+        time_s: Float,
+        out_f: Float,
+        out_i: NDArray[np.int64],
+        totals: NDArray[np.int64],
+    ) -> tuple[list[tuple[int, int, Evidence, BankTransition]], NDArray[np.bool_]]:
+        """Take what the compiled innovation path left for Python: taps, fits, busy episodes."""
+        k, tracker = ch.shape[0], self.tracker
         ready, judged, fit, cusum_busy, variance_busy, block_ended = totals.tolist()
         changing = out_i[_I_CHANGING] != 0
         every = slice(0, k)  # the kernel leaves nan where a value was not computed

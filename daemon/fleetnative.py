@@ -4,19 +4,23 @@
 the rows of one sample time in about a hundred numpy calls per model order,
 whatever the number of assets: at a few hundred assets (a site's VAV boxes
 replayed from a trend export) the calls, not the arithmetic, take the time.
-This module does the innovation path of one group's rows in one call into
-machine code, a row at a time: the baseline model's residual and its
-winsorising, the regressor histories, prewhitening (the reference's running
-sums while it is collected, the AR filter after), CUSUM, the moving
-variance and the whiteness test's running sums, and which tracker episodes
-the evaluations touch (:func:`innovation_kernel`); then the live estimate:
-regressor, the per-asset RLS kernel of :mod:`arxwatch.estimators.native`,
-histories and sample counts (:func:`live_kernel`). The rare steps (fitting a
-prewhitening filter, ending a whiteness block, the tracker's transitions,
-the hourly evaluations, the evidence of a record) stay with the numpy code
-of :mod:`arxwatch.daemon.fleet`. A row at a time pays while a wave's state
-stays in the processor's cache: the fleet hands waves of more than about a
-thousand channels to its numpy path (``_COMPILED_ROWS``).
+This module does what every row needs in one call into machine code per
+wave and group, a row at a time: first the innovation path of every row
+(:func:`_innovate`: the baseline model's residual and its winsorising, the
+regressor histories, prewhitening (the reference's running sums while it is
+collected, the AR filter after), CUSUM, the moving variance and the
+whiteness test's running sums, and which tracker episodes the evaluations
+touch), then the live estimate of every row (regressor, the per-asset RLS
+kernel of :mod:`arxwatch.estimators.native`, histories and sample counts).
+Both are generated per model structure and detector settings
+(:func:`group_kernels`), so that the loops over parameters, prewhitening
+coefficients and whiteness lags have constant bounds the compiler unrolls.
+The rare steps (fitting a prewhitening filter, ending a whiteness block,
+the tracker's transitions, the hourly evaluations, the evidence of a
+record) stay with the numpy code of :mod:`arxwatch.daemon.fleet`. A row at
+a time pays while a wave's state stays in the processor's cache: the fleet
+hands waves of more than about a thousand channels to its numpy path
+(``_COMPILED_ROWS``).
 
 numba is the optional ``fast`` extra, as for
 :mod:`arxwatch.estimators.native`: it is imported on the first kernel
@@ -53,14 +57,21 @@ import sys
 import types
 from functools import lru_cache
 from pathlib import Path
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 from numpy.typing import NDArray
 
 from arxwatch.estimators.rls import RlsConfig, StateLayout, kernel_constants, kernel_source
 
-__all__ = ["FLOAT_OUT", "INT_OUT", "TOTALS", "compiled_helpers", "innovation_kernel", "live_kernel"]
+__all__ = [
+    "FLOAT_OUT",
+    "INT_OUT",
+    "TOTALS",
+    "GroupKernels",
+    "compiled_helpers",
+    "group_kernels",
+]
 
 #: Rows of the kernel's float output, by name.
 FLOAT_OUT = (
@@ -92,10 +103,12 @@ INT_OUT = (
 
 
 def _add_value(
-    sums: Any, head: Any, past: Any, c: int, count: int, x: float
+    sums: Any, head: Any, past: Any, c: int, count: int, x: float, lags: int
 ) -> None:  # pragma: no cover - compiled
-    """``_Group._add_values`` for one channel (``add_value`` of detect._sums)."""
-    lags = past.shape[0]
+    """``_Group._add_values`` for one channel (``add_value`` of detect._sums).
+
+    ``lags`` is ``len(past)``, an argument so that generated kernels can make it a constant.
+    """
     sums[0, c] += x
     sums[1, c] += x * x
     for lag in range(1, lags + 1):
@@ -194,8 +207,7 @@ def _innovate(
     clip, k_ref, h = settings[0], settings[1], settings[2]
     lam, low_threshold, upper = settings[3], settings[4], settings[5]
     keep = 1.0 - lam
-    n = theta0.shape[0]
-    p = pw_past.shape[0]
+    n, p, lags = theta0.shape[0], pw_past.shape[0], wh_past.shape[0]
     phi = np.empty(n)
     for i in range(ch.shape[0]):
         c = ch[i]
@@ -226,7 +238,7 @@ def _innovate(
             # 2. prewhitening (_Group._innovations)
             count = pw_count[c]
             if count < reference:
-                _add_value(pw_sums, pw_head, pw_past, c, count, z)
+                _add_value(pw_sums, pw_head, pw_past, c, count, z, p)
                 pw_count[c] = count + 1
                 if count + 1 >= reference:
                     out_i[3, i] = 1
@@ -281,7 +293,7 @@ def _innovate(
                     totals[4] += 1
                 # 5. whiteness sums (_Group._whiteness)
                 count = wh_count[c]
-                _add_value(wh_sums, wh_head, wh_past, c, count, eps)
+                _add_value(wh_sums, wh_head, wh_past, c, count, eps, lags)
                 wh_count[c] = count + 1
                 if count + 1 >= window:
                     out_i[10, i] = 1
@@ -290,13 +302,15 @@ def _innovate(
         _push(base_y, base_u, base_count, c, y_past, u, i, depth)
 
 
-_LIVE_MODULE = '''"""The fleet's compiled live estimate for one model structure.
+_GROUP_MODULE = '''"""The fleet's compiled kernels for one model structure and detector settings.
 
-Generated by arxwatch.daemon.fleetnative.live_kernel; numba caches what it
-compiles from this file beside it. Helpers inlined from fleetnative: {helpers}
+Generated by arxwatch.daemon.fleetnative.group_kernels; numba caches what it
+compiles from this file beside it. Helpers called from fleetnative: {helpers}
 (numba's cache of this file does not see their changes; their digest names
 another file).
 """
+
+from __future__ import annotations
 
 import math
 
@@ -307,11 +321,15 @@ from arxwatch.daemon import fleetnative
 from arxwatch.estimators.native import NON_FINITE as _NonFinite
 
 _sqrt, _isfinite, _inf = math.sqrt, math.isfinite, math.inf
-_regressor, _push = fleetnative.compiled_helpers()
+_add_value, _regressor, _push = fleetnative.compiled_helpers()
 
 
 @numba.njit(fastmath=False, error_model="python", cache={cache})
 {native}
+
+
+@numba.njit(fastmath=False, error_model="numpy", cache={cache})
+{innovate}
 
 
 @numba.njit(fastmath=False, error_model="numpy", cache={cache})
@@ -335,6 +353,12 @@ def live(ch, y, u, structure, nb, nk, rls_y, rls_u, rls_count, rls, samples, con
             out[0, i] = 1
             out[1, i] = samples[c] % every == 0
         _push(rls_y, rls_u, rls_count, c, y_hist, u, i, depth)
+
+
+@numba.njit(fastmath=False, error_model="numpy", cache={cache})
+def wave({innovate_parameters}, rls_y, rls_u, rls_count, rls, samples, constants, out):
+    innovate({innovate_parameters})
+    live(ch, y, u, structure, nb, nk, rls_y, rls_u, rls_count, rls, samples, constants, out)
 '''
 
 
@@ -360,25 +384,8 @@ def _helpers() -> dict[str, Any]:
     return options
 
 
-@lru_cache(maxsize=1)
-def innovation_kernel() -> Any:
-    """Return the compiled innovation path.
-
-    It is compiled at its first call for each set of argument types (a few
-    seconds), then read from numba's cache on disk in later processes, where
-    the package's folder is writable.
-
-    Raises
-    ------
-    ImportError
-        If numba is not installed.
-    """
-    options = _helpers()
-    return importlib.import_module("numba").njit(**options)(_innovate)
-
-
 def _generated_folder() -> Path:
-    """Return where :func:`live_kernel` writes its modules: the package's ``__pycache__``.
+    """Return where :func:`group_kernels` writes its modules: the package's ``__pycache__``.
 
     In ``__pycache__`` itself, so that no source folder appears (numba then
     caches in ``__pycache__/__pycache__``).
@@ -386,30 +393,49 @@ def _generated_folder() -> Path:
     return Path(__file__).resolve().parent / "__pycache__"
 
 
-def compiled_helpers() -> tuple[Any, Any]:
-    """Return the compiled ``_regressor`` and ``_push`` (for the generated live module)."""
+def compiled_helpers() -> tuple[Any, Any, Any]:
+    """Return the compiled ``_add_value``, ``_regressor`` and ``_push`` (for generated modules)."""
     _helpers()
-    return globals()["_regressor"], globals()["_push"]
+    return globals()["_add_value"], globals()["_regressor"], globals()["_push"]
+
+
+class GroupKernels(NamedTuple):
+    """The compiled kernels of one group (:func:`group_kernels`)."""
+
+    #: ``wave(<the innovation kernel's arguments>, rls_y, rls_u, rls_count,
+    #: rls, samples, constants, out)``: the innovation path of every row,
+    #: then the live estimate of every row, in one call.
+    wave: Any
+    #: ``live(ch, y, u, structure, nb, nk, rls_y, rls_u, rls_count, rls,
+    #: samples, constants, out)``: the live estimate alone.
+    live: Any
+    #: The RLS kernel's settings (``constants`` above).
+    constants: NDArray[np.float64]
+
+
+#: The line of ``_innovate`` that the generated kernels replace with constants.
+_SIZES = "    n, p, lags = theta0.shape[0], pw_past.shape[0], wh_past.shape[0]\n"
 
 
 @lru_cache(maxsize=64)
-def live_kernel(layout: StateLayout, config: RlsConfig) -> tuple[Any, NDArray[np.float64]]:
-    """Return the compiled live estimate of a group's rows, and the settings it takes.
+def group_kernels(layout: StateLayout, config: RlsConfig, ar_order: int, lags: int) -> GroupKernels:
+    """Return the compiled kernels of a group: one model structure and detector settings.
 
-    ``live(ch, y, u, structure, nb, nk, rls_y, rls_u, rls_count, rls,
-    samples, constants, out)`` does step 2 of ``_Group.step`` a row at a
-    time: the regressor from the live histories, the per-asset RLS kernel
+    ``live`` does step 2 of ``_Group.step`` a row at a time: the regressor
+    from the live histories, the per-asset RLS kernel
     (:func:`~arxwatch.estimators.rls.kernel_source`, target ``"native"``,
     compiled as :mod:`arxwatch.estimators.native` compiles it: the same bits
     as the batched numpy kernel of the numpy path), the filter-cleaned
     output into the histories, and the sample count; ``out[0]`` marks the
-    rows updated, ``out[1]`` those due for an evaluation.
+    rows updated, ``out[1]`` those due for an evaluation. ``wave`` runs
+    :func:`_innovate` over the rows, then ``live``: one call per wave.
 
-    The code is generated for the model structure and written as a module
-    under the package's ``__pycache__`` folder, so that numba can cache what
-    it compiles: a few seconds the first time, a fraction of a second in
-    later processes. Where that folder is not writable, it is compiled in
-    memory in each process.
+    The code is generated for the model structure, the prewhitening order
+    and the whiteness lags (so that the compiler unrolls the loops over
+    them) and written as a module under the package's ``__pycache__``
+    folder, so that numba can cache what it compiles: a few seconds the
+    first time, a fraction of a second in later processes. Where that folder
+    is not writable, it is compiled in memory in each process.
 
     Raises
     ------
@@ -425,17 +451,22 @@ def live_kernel(layout: StateLayout, config: RlsConfig) -> tuple[Any, NDArray[np
         "y[i]",
         *(f"u[i, {q}]" for q in range(layout.n_inputs)),
     ]
+    innovate = inspect.getsource(_innovate).replace("def _innovate(", "def innovate(", 1)
+    assert _SIZES in innovate, "_SIZES must be a line of _innovate"
+    innovate = innovate.replace(_SIZES, f"    n, p, lags = {layout.n_params}, {ar_order}, {lags}\n")
     constants = np.array(list(kernel_constants(layout, config).values()))
     plain = [getattr(f, "py_func", f) for f in compiled_helpers()]  # the Python source
     helpers = hashlib.sha256("".join(map(inspect.getsource, plain)).encode()).hexdigest()[:16]
     fields = {
         "native": native_source,
+        "innovate": innovate,
+        "innovate_parameters": ", ".join(inspect.signature(_innovate).parameters),
         "n": layout.n_params,
         "arguments": ", ".join(arguments),
         "helpers": helpers,
     }
-    source = _LIVE_MODULE.format(cache=True, **fields)
-    name = "arxwatch_fleet_live_" + hashlib.sha256(source.encode()).hexdigest()[:16]
+    source = _GROUP_MODULE.format(cache=True, **fields)
+    name = "arxwatch_fleet_group_" + hashlib.sha256(source.encode()).hexdigest()[:16]
     folder = _generated_folder()
     path = folder / f"{name}.py"
     try:
@@ -452,6 +483,6 @@ def live_kernel(layout: StateLayout, config: RlsConfig) -> tuple[Any, NDArray[np
         spec.loader.exec_module(module)
     except (OSError, RuntimeError):  # not writable, or no place for numba's cache
         module = types.ModuleType(name)
-        uncached = _LIVE_MODULE.format(cache=False, **fields)
+        uncached = _GROUP_MODULE.format(cache=False, **fields)
         exec(compile(uncached, f"<{name}>", "exec"), module.__dict__)
-    return module.live, constants
+    return GroupKernels(module.wave, module.live, constants)

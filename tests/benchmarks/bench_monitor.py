@@ -24,7 +24,7 @@ rows:
   ``arxwatch replay`` uses when numba is installed): the innovation
   detectors and the live estimate a row at a time in compiled code (waves
   of up to 1,024 assets of one order; larger ones run the numpy path),
-  against its live estimate alone (``fleetnative.live_kernel``: regressor
+  against its live estimate alone (``fleetnative.group_kernels(...).live``: regressor
   from the histories, RLS update, histories pushed, the same compiled call
   the fleet makes).
 """
@@ -39,15 +39,15 @@ import numpy as np
 
 from arxwatch.daemon.alert import SignalNames
 from arxwatch.daemon.fleet import FleetMonitor
-from arxwatch.daemon.fleetnative import live_kernel
-from arxwatch.daemon.monitor import AssetMonitor
+from arxwatch.daemon.fleetnative import group_kernels
+from arxwatch.daemon.monitor import AssetMonitor, MonitorConfig
 from arxwatch.daemon.simulate import REFERENCE_LOOPS, daily_operation
 from arxwatch.estimators.arx import regression_matrix
 from arxwatch.estimators.baseline import Baseline, BaselineSet, fit_baseline
 from arxwatch.estimators.batch import BatchRls
 from arxwatch.estimators.estimator import ArxEstimator
 from arxwatch.estimators.native import available
-from arxwatch.estimators.rls import RlsConfig, StateLayout
+from arxwatch.estimators.rls import StateLayout
 
 TS = 60.0
 PER_DAY = 1440
@@ -128,7 +128,8 @@ def fleet_figures(baseline: Baseline, count: int, steps: int, repeat: int) -> No
     for j in range(series):
         rows, _ = regression_matrix(order, y[:, j], u[:, j : j + 1])
         phi[steps - rows.shape[0] :, pick == j] = rows[:, None, :]
-    config = RlsConfig(forgetting=0.998)
+    monitor_config = MonitorConfig()
+    config = monitor_config.rls  # the fleet's own settings, for both references
     times = 1.7e9 + TS * np.arange(steps)
     slots = np.arange(count)
     modes: list[str | None] = [None] * count
@@ -151,7 +152,10 @@ def fleet_figures(baseline: Baseline, count: int, steps: int, repeat: int) -> No
     def live_only() -> float:
         """Time the compiled fleet's live estimate alone, called as the fleet calls it."""
         layout = StateLayout(order.n_params, order.n_inputs)
-        kernel, constants = live_kernel(layout, config)
+        kernels = group_kernels(
+            layout, config, monitor_config.prewhiten.ar_order, monitor_config.whiteness.lags
+        )
+        kernel, constants = kernels.live, kernels.constants
         # the entries of _Group.structure that live reads: constant, depth, evaluate_every
         structure = np.array([order.na, order.constant, order.depth, 0, 0, 0, 0, 60])
         nb, nk = np.array(order.nb), np.array(order.nk)
@@ -194,7 +198,7 @@ def fleet_figures(baseline: Baseline, count: int, steps: int, repeat: int) -> No
         "python": ("batched RLS alone (BatchRls.update)", rls_only)
     }
     if available():
-        backends["compiled"] = ("live estimate alone (live_kernel)", live_only)
+        backends["compiled"] = ("live estimate alone (kernels.live)", live_only)
     best = {f"{b}/{part}": float("inf") for b in backends for part in ("reference", "fleet")}
     for _ in range(repeat):  # interleaved, so a busy moment hits every figure alike
         for backend, (_, reference) in backends.items():

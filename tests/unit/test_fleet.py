@@ -344,7 +344,7 @@ def test_compiled_live_estimate_without_a_writable_cache_folder(
     blocked = tmp_path / "not-a-folder"
     blocked.write_text("")
     monkeypatch.setattr(fleetnative, "_generated_folder", lambda: blocked)
-    fleetnative.live_kernel.cache_clear()
+    fleetnative.group_kernels.cache_clear()
     try:
         asset = "block-a/ahu-2"
         got = []
@@ -360,4 +360,4 @@ def test_compiled_live_estimate_without_a_writable_cache_folder(
         assert got[0] == got[1]
         assert not list(tmp_path.glob("**/*.py"))
     finally:
-        fleetnative.live_kernel.cache_clear()
+        fleetnative.group_kernels.cache_clear()
