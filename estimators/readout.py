@@ -496,24 +496,27 @@ def _time_constants(
     elif na == 2:
         b, c = a[:, 0], a[:, 1]
         disc = b * b - 4.0 * c
-        pair = disc < 0.0
         root = np.sqrt(np.abs(disc))
-        # complex pair: -b/2 +- i sqrt(-disc)/2; "real" if the imaginary part is negligible
-        re_pair = -0.5 * b
-        im_pair = 0.5 * root
-        mod_pair = np.hypot(re_pair, im_pair)
-        flat = im_pair <= _IMAG_RTOL * np.maximum(1.0, mod_pair)
         # two real roots q and c/q (stable form), or a double zero
         q = -0.5 * (b + np.copysign(root, b))
         with np.errstate(divide="ignore", invalid="ignore"):
-            other = np.where(q != 0.0, c / np.where(q != 0.0, q, 1.0), 0.0)
+            other = np.where(q != 0.0, c / q, 0.0)
         m1, m2 = np.abs(q), np.abs(other)
         largest = np.maximum(m1, m2)
         tie = np.minimum(m1, m2) >= largest * (1.0 - _TIE_RTOL)
-        dominant_real = np.where(tie, np.maximum(q, other), np.where(m1 >= m2, q, other))
-        real = np.where(pair, re_pair, dominant_real)
-        modulus = np.where(pair & ~flat, mod_pair, np.abs(real))
-        negative = (~pair | flat) & (real < 0.0)
+        real = np.where(tie, np.maximum(q, other), np.where(m1 >= m2, q, other))
+        modulus = np.abs(real)
+        negative = real < 0.0
+        pair = np.flatnonzero(disc < 0.0)
+        if pair.shape[0]:
+            # complex pair: -b/2 +- i sqrt(-disc)/2; "real" if the imaginary
+            # part is negligible (only these rows: hypot is slow)
+            re_pair = -0.5 * b[pair]
+            im_pair = 0.5 * root[pair]
+            mod_pair = np.hypot(re_pair, im_pair)
+            flat = im_pair <= _IMAG_RTOL * np.maximum(1.0, mod_pair)
+            modulus[pair] = np.where(flat, np.abs(re_pair), mod_pair)
+            negative[pair] = flat & (re_pair < 0.0)
     else:
         modulus = np.empty(k)
         negative = np.empty(k, dtype=np.bool_)
@@ -619,41 +622,47 @@ def _jacobians(
     plus = th + h
     minus = th - h
     width = plus - minus  # the step actually taken
-    a = th[:, :na]
     sums = _input_sums(order, th)
     constant = th[:, -1] if order.constant else None
-    at_theta = _features_from(order, a, sums, constant, ts)
-    jac = np.where(np.isfinite(at_theta)[:, :, None], np.zeros(n), np.nan)
+    # one read-out of every row: block 0 is theta, block 1 + j has a_j
+    # stepped up, block 1 + na + j stepped down
+    blocks = 2 * na + 1
+    a = np.tile(th[:, :na], (blocks, 1))
+    for j in range(na):
+        a[(1 + j) * k : (2 + j) * k, j] = plus[:, j]
+        a[(1 + na + j) * k : (2 + na + j) * k, j] = minus[:, j]
+    values = _features_from(
+        order,
+        a,
+        [np.tile(total, blocks) for total in sums],
+        None if constant is None else np.tile(constant, blocks),
+        ts,
+    )
+    at_theta = values[:k]
+    jac = np.zeros((k, at_theta.shape[1], n))
+    undefined = ~np.isfinite(at_theta)
+    if undefined.any():
+        jac[undefined] = np.nan  # (f - f) / width where f is not finite
     if na:
-        # block j: a with a_j stepped up; block na + j: stepped down
-        stepped = np.tile(a, (2 * na, 1))
-        for j in range(na):
-            stepped[j * k : (j + 1) * k, j] = plus[:, j]
-            stepped[(na + j) * k : (na + j + 1) * k, j] = minus[:, j]
-        values = _features_from(
-            order,
-            stepped,
-            [np.tile(total, 2 * na) for total in sums],
-            None if constant is None else np.tile(constant, 2 * na),
-            ts,
-        ).reshape(2, na, k, -1)
-        jac[:, :, :na] = ((values[0] - values[1]) / width[:, :na].T[:, :, None]).transpose(1, 2, 0)
-    a_at_one = 1.0 + _sequential_sum(a)
+        f_up, f_down = values[k:].reshape(2, na, k, -1)
+        jac[:, :, :na] = ((f_up - f_down) / width[:, :na].T[:, :, None]).transpose(1, 2, 0)
+    a_at_one = 1.0 + _sequential_sum(th[:, :na])
     with np.errstate(divide="ignore", invalid="ignore"):
         for i in range(order.n_inputs):
-            cols = order.input_slice(i)
-            for j in range(cols.start, cols.stop):
-                up = th[:, cols].copy()
-                down = up.copy()
-                up[:, j - cols.start] = plus[:, j]
-                down[:, j - cols.start] = minus[:, j]
-                gain_up = _sequential_sum(up) / a_at_one
-                jac[:, i, j] = (gain_up - _sequential_sum(down) / a_at_one) / width[:, j]
+            cols = range(order.input_slice(i).start, order.input_slice(i).stop)
+            for j in cols:
+                # B_i(1) with b_j stepped, summed in _sequential_sum's order
+                up = down = np.zeros(k)
+                for p in cols:
+                    up = up + (plus[:, p] if p == j else th[:, p])
+                    down = down + (minus[:, p] if p == j else th[:, p])
+                jac[:, i, j] = (up / a_at_one - down / a_at_one) / width[:, j]
         if order.constant:
             jac[:, -1, -1] = (plus[:, -1] / a_at_one - minus[:, -1] / a_at_one) / width[:, -1]
-    # a feature undefined at theta has no derivative there, even when both
-    # neighbours are finite (the gain of an integrator jumps from -inf to +inf)
-    jac[np.isnan(at_theta)] = np.nan
+    if undefined.any():
+        # a feature undefined at theta has no derivative there, even when both
+        # neighbours are finite (the gain of an integrator jumps from -inf to +inf)
+        jac[np.isnan(at_theta)] = np.nan
     return at_theta, jac
 
 

@@ -634,21 +634,23 @@ class _WaldDrift(ABC):
         diag0 = np.diagonal(c0, axis1=1, axis2=2)
         diagx = np.diagonal(cx, axis1=1, axis2=2)
         usable = np.isfinite(x0) & np.isfinite(x) & np.isfinite(diag0) & np.isfinite(diagx)
-        d2 = np.zeros(k)
-        rank = np.zeros(k, dtype=np.intp)
-        if usable.all():  # the common case: one pattern, every row
-            patterns, groups = np.ones((1, m), dtype=np.bool_), np.zeros(k, dtype=np.intp)
+        if usable.all():  # the common case: every entry of every row, no selections
+            d2, rank = wald_distances(x - x0, c0 + cx, rcond=self._rcond)
         else:
+            d2 = np.zeros(k)
+            rank = np.zeros(k, dtype=np.intp)
             patterns, groups = np.unique(usable, axis=0, return_inverse=True)
-        for g, pattern in enumerate(patterns):
-            idx = np.flatnonzero(pattern)
-            if idx.shape[0] == 0:
-                continue
-            members = np.flatnonzero(groups.reshape(-1) == g)
-            sub = np.ix_(members, idx, idx)
-            pair = np.ix_(members, idx)
-            delta: _Vector = x[pair] - x0[pair]
-            d2[members], rank[members] = wald_distances(delta, c0[sub] + cx[sub], rcond=self._rcond)
+            for g, pattern in enumerate(patterns):
+                idx = np.flatnonzero(pattern)
+                if idx.shape[0] == 0:
+                    continue
+                members = np.flatnonzero(groups.reshape(-1) == g)
+                sub = np.ix_(members, idx, idx)
+                pair = np.ix_(members, idx)
+                delta: _Vector = x[pair] - x0[pair]
+                d2[members], rank[members] = wald_distances(
+                    delta, c0[sub] + cx[sub], rcond=self._rcond
+                )
         if empirical is not None:
             threshold = np.where(rank > 0, float(empirical), math.inf)
         else:
@@ -887,7 +889,7 @@ class FeatureDrift(_WaldDrift):
 
     _name = "feature_drift"
     _signal = "features"
-    __slots__ = ("config", "_rows", "_names", "_support")
+    __slots__ = ("config", "_rows", "_names", "_moved")
 
     def __init__(self, config: FeatureDriftConfig) -> None:
         self.config = config
@@ -897,16 +899,16 @@ class FeatureDrift(_WaldDrift):
         chosen = config.features if config.features is not None else names
         self._rows = [names.index(f) for f in chosen]
         self._names = tuple(chosen)
-        # Parameters each tested feature depends on (the others give exact
-        # zeros in J): every A coefficient, and an input's B coefficients for
-        # its gain, c for the offset.
-        moved = [list(range(order.na)) for _ in names]
+        # Every feature depends on each A coefficient; beyond those, (tested
+        # row, parameter) pairs where J is not structurally 0: an input's B
+        # coefficients move its gain, c the offset. Ascending parameter.
+        moved = []
         for i in range(order.n_inputs):
             cols = order.input_slice(i)
-            moved[i] += list(range(cols.start, cols.stop))
+            moved += [(i, j) for j in range(cols.start, cols.stop)]
         if order.constant:
-            moved[-1].append(order.n_params - 1)
-        self._support = [tuple(moved[r]) for r in self._rows]
+            moved.append((len(names) - 1, order.n_params - 1))
+        self._moved = [(self._rows.index(r), j) for r, j in moved if r in self._rows]
 
     def _baseline_params(self, n_given: int) -> int:
         return self.config.order.n_params
@@ -932,34 +934,43 @@ class FeatureDrift(_WaldDrift):
         """
         order, ts = self.config.order, self.config.sample_period_s
         features, full = features_and_jacobians(order, thetas, ts)
-        rows, support = self._rows, self._support
-        f = features[:, rows]
-        jac = full[:, rows, :]
+        rows = self._rows
+        if rows == list(range(features.shape[1])):
+            f, jac = features.copy(), full
+        else:
+            f, jac = features[:, rows], full[:, rows, :]
         # nan rows of J (undefined features) would spread nan over the whole
         # product; zero them here and let the finiteness mask on f drop them.
-        bad = np.asarray(~np.isfinite(jac).all(axis=2), dtype=np.bool_)
-        jac[bad] = 0.0
+        bad: NDArray[np.bool_] | None = None
+        finite = np.isfinite(jac)
+        if not finite.all():
+            bad = np.asarray(~finite.all(axis=2), dtype=np.bool_)
+            jac[bad] = 0.0
         # J Cov J' with sums in a fixed order (ascending parameter), so a row
-        # does not depend on its batch; the terms where J is structurally 0
-        # are left out, which changes no finite sum.
+        # does not depend on its batch. Every feature moves with the A
+        # coefficients; a later parameter moves one feature at most, and the
+        # terms where J is structurally 0 are left out (they change no
+        # finite sum).
         k, m = f.shape
-        left = np.empty((k, m, covs.shape[2]))
-        for r, moved in enumerate(support):
-            acc = np.zeros((k, covs.shape[2]))
-            for i in moved:
-                acc = acc + jac[:, r, i, None] * covs[:, i, :]
-            left[:, r, :] = acc
-        cf = np.empty((k, m, m))
-        for r, moved in enumerate(support):
-            acc = np.zeros((k, m))
-            for j in moved:
-                acc = acc + left[:, :, j] * jac[:, r, j, None]
-            cf[:, :, r] = acc
+        na = self.config.order.na
+        left = np.zeros((k, m, covs.shape[2]))
+        for i in range(na):
+            left = left + jac[:, :, i, None] * covs[:, None, i, :]
+        for r, i in self._moved:
+            left[:, r, :] += jac[:, r, i, None] * covs[:, i, :]
+        cf = np.zeros((k, m, m))
+        for j in range(na):
+            cf = cf + left[:, :, None, j] * jac[:, None, :, j]
+        for r, j in self._moved:
+            cf[:, :, r] += left[:, :, j] * jac[:, r, j, None]
         # a covariance with an entry that is not finite leaves nothing to test
         # (the full product, 0 * inf included, is nan everywhere)
-        cf[~np.isfinite(covs).all(axis=(1, 2))] = np.nan
-        cf[bad[:, :, None] | bad[:, None, :]] = np.nan
-        f[bad] = np.nan
+        usable = np.isfinite(covs)
+        if not usable.all():
+            cf[~usable.all(axis=(1, 2))] = np.nan
+        if bad is not None:
+            cf[bad[:, :, None] | bad[:, None, :]] = np.nan
+            f[bad] = np.nan
         return features, f, cf
 
     def _tested_size(self, n_params: int) -> int:
