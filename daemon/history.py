@@ -24,6 +24,13 @@ A line that cannot be read stops the reading with a :class:`HistoryError`
 naming the file and line (``on_bad_line="stop"``, the default), or is
 counted and skipped (``"skip"``). A bad header is always an error: without
 it no line can be read. Files ending in ``.gz`` are read through gzip.
+
+A trend export is also read in blocks of rows (:meth:`HistoryReader.blocks`,
+what replay uses): a few hundred lines split at once and their cells
+converted into one array of numbers, the rows, values and errors being those
+of the row by row reading. A block with a quote or a NUL character hands the
+rest of the file to the ``csv`` module. A second process can read the blocks
+ahead of the one that uses them.
 """
 
 from __future__ import annotations
@@ -33,17 +40,25 @@ import binascii
 import csv
 import gzip
 import io
+import itertools
 import json
 import math
 import os
+import pickle
+import subprocess
+import sys
 import zlib
-from collections.abc import Iterator
+from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass
 from datetime import datetime, tzinfo
 from pathlib import Path
 from typing import IO, Any, Final, Literal
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
+import numpy as np
+from numpy.typing import NDArray
+
+from arxwatch.daemon.decode import DECIMAL_CHARS
 from arxwatch.daemon.route import validate_topic
 
 __all__ = [
@@ -53,6 +68,7 @@ __all__ = [
     "HistoryError",
     "HistoryReader",
     "Recorded",
+    "TrendBlock",
     "TrendRow",
     "parse_time",
     "time_zone",
@@ -61,6 +77,10 @@ __all__ = [
 BadLinePolicy = Literal["stop", "skip"]
 #: What a reader does with a line it cannot read.
 BAD_LINE_POLICIES: Final[tuple[str, ...]] = ("stop", "skip")
+#: Lines of a trend export read into one :class:`TrendBlock`.
+BLOCK_LINES: Final = 512
+#: Characters :meth:`str.strip` removes from an ASCII cell, but for the line ends.
+_ASCII_BLANKS: Final = " \t\x0b\x0c\x1c\x1d\x1e\x1f"
 
 
 class HistoryError(ValueError):
@@ -71,6 +91,10 @@ class HistoryError(ValueError):
         self.path = str(path)
         self.line = line
         self.reason = message
+
+    def __reduce__(self) -> tuple[type[HistoryError], tuple[str, int, str]]:
+        """Pickle by the arguments (a reader reading ahead sends it to its parent)."""
+        return HistoryError, (self.path, self.line, self.reason)
 
 
 @dataclass(frozen=True, slots=True)
@@ -118,6 +142,123 @@ class TrendRow:
     time_s: float
     line: int
     cells: list[str]
+
+
+@dataclass(frozen=True, eq=False)
+class TrendBlock:
+    """Consecutive rows of a trend export, their plain numbers as one array.
+
+    Attributes
+    ----------
+    time_s : ndarray of float64, shape (n,)
+        Row times, epoch seconds.
+    line : ndarray of int64, shape (n,)
+        Line of each row in the file (1-based).
+    values : ndarray of float64, shape (n, k)
+        Each point cell's number where the cell is a plain decimal (the
+        characters of ``DECIMAL_CHARS`` only) that ``float`` reads as
+        finite, as the decoder reads a bare number; NaN where the cell is
+        empty or anything else (a label, ``nan``, ``1e999``...).
+    empty : ndarray of bool, shape (n, k), or None
+        Where a cell is empty; None when none is.
+    longest : int
+        Characters of the longest point cell.
+    texts : list of str
+        Per row, its line (a block split by the fast path) or, joined by
+        NUL (never in such a line), its stripped cells (a block read
+        by the ``csv`` module); :meth:`cells` gives them back.
+    split : bool
+        Whether ``texts`` are lines (True) or joined cells.
+    """
+
+    time_s: NDArray[np.float64]
+    line: NDArray[np.int64]
+    values: NDArray[np.float64]
+    empty: NDArray[np.bool_] | None
+    longest: int
+    texts: list[str]
+    split: bool
+
+    def __len__(self) -> int:
+        return int(self.time_s.shape[0])
+
+    def cells(self, row: int) -> list[str]:
+        """Return the stripped point cells of one row, as :attr:`TrendRow.cells`."""
+        if not self.split:
+            return self.texts[row].split("\x00")
+        return [cell.strip() for cell in self.texts[row].rstrip("\r\n").split(",")[1:]]
+
+    @classmethod
+    def of_rows(cls, rows: Sequence[TrendRow]) -> TrendBlock:
+        """Return the block of rows read one by one (their cells already stripped)."""
+        width = len(rows[0].cells) if rows else 0
+        texts = ["\x00".join(row.cells) for row in rows]
+        plain_text = all(text.isascii() and "_" not in text for text in texts)
+        cells = [c for row in rows for c in row.cells]
+        values, empty, longest = _numbers(cells, width, plain_text=plain_text)
+        return cls(
+            time_s=np.array([row.time_s for row in rows], dtype=np.float64),
+            line=np.array([row.line for row in rows], dtype=np.int64),
+            values=values,
+            empty=empty,
+            longest=longest,
+            texts=texts,
+            split=False,
+        )
+
+
+def _numbers(
+    cells: list[str], width: int, *, plain_text: bool
+) -> tuple[NDArray[np.float64], NDArray[np.bool_] | None, int]:
+    """Convert stripped cells, row after row ``width`` a row, to (values, empty, longest).
+
+    All at once where every cell reads as a number; else a column at a time:
+    one ``float`` per cell where every cell of the column reads; cell by
+    cell, with the decoder's test of a plain decimal, where one does not.
+    ``plain_text=False`` says the cells may hold characters ``float`` takes
+    beyond a plain decimal's (``_``, non-ASCII digits): every column is then
+    read cell by cell.
+    """
+    n = len(cells) // width if width else 0
+    if not n:
+        return np.empty((0, width)), None, 0
+    if plain_text:
+        try:  # the usual block, a number in every cell: all at once, in memory order
+            values = np.array([float(cell) for cell in cells], dtype=np.float64).reshape(n, width)
+        except ValueError:
+            pass
+        else:
+            values[~np.isfinite(values)] = math.nan
+            return values, None, max(map(len, cells))
+    columns: list[list[float]] = []
+    empty: NDArray[np.bool_] | None = None
+    for j in range(width):
+        column = cells[j::width]
+        if plain_text:
+            try:
+                columns.append([float(cell) for cell in column])
+                continue
+            except ValueError:
+                pass
+        columns.append([_plain_number(cell) for cell in column])
+        if "" in column:
+            if empty is None:
+                empty = np.zeros((n, width), dtype=np.bool_)
+            empty[:, j] = [not cell for cell in column]
+    values = np.array(columns, dtype=np.float64).T
+    # "nan", "inf", "1e999": not plain finite decimals, left to the decoder as the text they are
+    values[~np.isfinite(values)] = math.nan
+    return values, empty, max(map(len, cells))
+
+
+def _plain_number(cell: str) -> float:
+    """Return the cell's number if it is a plain decimal ``float`` reads, else NaN (as decode)."""
+    if not cell or cell.strip(DECIMAL_CHARS):
+        return math.nan
+    try:
+        return float(cell)
+    except ValueError:
+        return math.nan
 
 
 def parse_time(text: str, zone: tzinfo) -> float:
@@ -232,6 +373,7 @@ class HistoryReader:
             raise ValueError(f"on_bad_line must be one of {BAD_LINE_POLICIES}, got {on_bad_line!r}")
         self.path = Path(path)
         self._zone = time_zone(zone)
+        self._zone_name = zone
         self.on_bad_line = on_bad_line
         self.size = self.path.stat().st_size
         self.kind = self._kind(kind)
@@ -242,6 +384,7 @@ class HistoryReader:
         self.last_time_s: float | None = None
         self.backwards = 0
         self.chars_read = 0
+        self._handed = 0  # physical lines read from the file
         #: MQTT topics of a trend export's point columns, once its header is read.
         self.topics: list[str] = []
         self._latest = -math.inf
@@ -295,14 +438,106 @@ class HistoryReader:
         with self._open() as handle:
             yield from self._csv(self._counted(handle))
 
+    def blocks(self, *, ahead: bool = False) -> Iterator[TrendBlock]:
+        """Iterate over the rows of a trend export in blocks (see :class:`TrendBlock`).
+
+        The rows of :meth:`rows`, a few hundred at a time, with the same bad
+        lines: at an unreadable line that stops the reading, the rows before
+        it come as a block first, then the :class:`HistoryError`. With
+        ``ahead``, a child process reads and converts the blocks while the
+        caller works on the one before (a second core); the reader's
+        tallies (:attr:`lines`, :attr:`chars_read`...) are the child's as of
+        the block last handed out.
+
+        Raises
+        ------
+        ValueError
+            If the file is a capture.
+        HistoryError
+            As :meth:`rows`.
+        """
+        if self.kind != "csv":
+            raise ValueError(f"{self.path} is a capture, not a trend export: it has no rows")
+        if ahead:
+            yield from self._blocks_ahead()
+            return
+        with self._open() as handle:
+            yield from self._blocks(self._counted(handle))
+
+    def _state(self) -> tuple[Any, ...]:
+        """Return the tallies a reader reading ahead sends its parent with each block."""
+        return (
+            self.topics,
+            self.lines,
+            self.bad_lines,
+            self.first_problem,
+            self.first_time_s,
+            self.last_time_s,
+            self.backwards,
+            self.chars_read,
+        )
+
+    def _take_state(self, state: tuple[Any, ...]) -> None:
+        """Take the tallies of :meth:`_state` (from the child reading ahead)."""
+        (
+            self.topics,
+            self.lines,
+            self.bad_lines,
+            self.first_problem,
+            self.first_time_s,
+            self.last_time_s,
+            self.backwards,
+            self.chars_read,
+        ) = state
+
+    def _blocks_ahead(self) -> Iterator[TrendBlock]:
+        """:meth:`blocks` read by a child process, a block or so ahead.
+
+        The child (this module run by the same interpreter) reads the file
+        as :meth:`blocks` does and writes each block, pickled, with the
+        reader's tallies to its standard output; an exception it meets comes
+        after the blocks before it and is raised here. The pipe holds it
+        back once it is ahead. The child is ended and waited for however
+        the iteration ends.
+        """
+        command = [
+            sys.executable,
+            "-c",
+            _AHEAD_MAIN,
+            json.dumps([sys.path, str(self.path), self.on_bad_line, self._zone_name]),
+        ]
+        child = subprocess.Popen(command, stdin=subprocess.DEVNULL, stdout=subprocess.PIPE)
+        pipe: IO[bytes] = child.stdout  # type: ignore[assignment]  # stdout=PIPE: never None
+        try:
+            while True:
+                try:
+                    kind, item, state = pickle.load(pipe)
+                except EOFError:
+                    raise OSError(
+                        f"the process reading {self.path} ended (exit code {child.wait()})"
+                    ) from None
+                self._take_state(state)
+                if kind == "block":
+                    yield item
+                elif kind == "raise":
+                    raise item
+                else:
+                    return
+        finally:
+            pipe.close()
+            if child.poll() is None:
+                child.terminate()
+            child.wait()
+
     def _counted(self, handle: IO[str]) -> Iterator[str]:
         try:
             for line in handle:
                 self.chars_read += len(line)
+                self._handed += 1
                 yield line
         except (EOFError, gzip.BadGzipFile, zlib.error) as err:
             # a compressed file cut short (a capture killed mid-write) or damaged
-            self._bad(self.lines + 1, f"compressed data ends or breaks here: {err}")
+            self._bad(self._handed + 1, f"compressed data ends or breaks here: {err}")
 
     def _bad(self, line: int, message: str) -> None:
         """Stop or count an unreadable line."""
@@ -324,8 +559,131 @@ class HistoryReader:
             self.last_time_s = time_s
 
     # -- trend export ---------------------------------------------------------
+    def _blocks(self, lines: Iterator[str]) -> Iterator[TrendBlock]:
+        rows = csv.reader(lines, strict=True)
+        width = self._header(rows)  # the csv module reads no further than the header's lines
+        limit = csv.field_size_limit()
+        while True:
+            chunk: list[str] = []
+            broken: HistoryError | None = None
+            try:
+                chunk.extend(itertools.islice(lines, BLOCK_LINES))
+            except HistoryError as err:  # a compressed file breaks off (it stops there)
+                broken = err
+            if not chunk and broken is None:
+                return
+            if any('"' in line or "\x00" in line or len(line) > limit for line in chunk):
+                # quoted cells (a line break may be in one), NUL, huge fields: the csv module
+                yield from self._csv_blocks(itertools.chain(chunk, lines), width, self.lines)
+                return
+            yield from self._chunk(chunk, width)
+            if broken is not None:
+                raise broken
+
+    def _csv_blocks(self, lines: Iterable[str], width: int, before: int) -> Iterator[TrendBlock]:
+        """Blocks of the rows the csv module reads from ``lines`` (line ``before + 1`` on)."""
+        rows: list[TrendRow] = []
+        try:
+            for row in self._csv_rows(csv.reader(lines, strict=True), width, before):
+                rows.append(row)
+                if len(rows) == BLOCK_LINES:
+                    yield TrendBlock.of_rows(rows)
+                    rows = []
+        except HistoryError:
+            if rows:  # the rows before the line that stops the reading come first
+                yield TrendBlock.of_rows(rows)
+            raise
+        if rows:
+            yield TrendBlock.of_rows(rows)
+
+    def _chunk(self, chunk: list[str], width: int) -> Iterator[TrendBlock]:
+        """Read lines without quotes or NUL (each a row) into a block, as ``_csv_rows`` would."""
+        before = self.lines
+        commas = width - 1
+        problems: list[tuple[int, str]] = []
+        if all(line.count(",") == commas for line in chunk):
+            kept, numbers = chunk, list(range(before + 1, before + 1 + len(chunk)))
+        else:
+            kept, numbers = [], []
+            for number, line in enumerate(chunk, start=before + 1):
+                fields = line.count(",") + 1
+                if fields == width:
+                    kept.append(line)
+                    numbers.append(number)
+                elif fields > 1 or line.strip():  # a line of blanks is a blank line
+                    problems.append((number, f"{fields} fields, the header has {width}"))
+        body = ",".join(line.rstrip("\r\n") for line in kept)
+        cells = body.split(",") if kept else []
+        if any(blank in body for blank in _ASCII_BLANKS) or not body.isascii():
+            cells = [cell.strip() for cell in cells]
+        times = cells[::width]
+        del cells[::width]
+        try:
+            time_s = [float(text) for text in times]
+            timed = all(map(math.isfinite, time_s))
+        except ValueError:
+            timed = False
+        if not timed:  # ISO 8601 times, or bad ones: one at a time
+            time_s = []
+            for number, text in zip(numbers, times, strict=True):
+                try:
+                    time_s.append(parse_time(text, self._zone))
+                except ValueError as err:
+                    problems.append((number, f"first column: {err}"))
+                    time_s.append(math.nan)
+        good = list(range(len(kept)))
+        end = before + len(chunk)
+        if problems:
+            problems.sort()
+            if self.on_bad_line == "stop":  # the rows before the first, then the error
+                end = problems[0][0]
+                problems = problems[:1]
+            bad = {number for number, _ in problems}
+            good = [i for i in good if numbers[i] <= end and numbers[i] not in bad]
+        if good:
+            values, empty, longest = _numbers(
+                cells, width - 1, plain_text=body.isascii() and "_" not in body
+            )
+            if len(good) < len(kept):
+                values = values[good]
+                empty = None if empty is None else empty[good]
+                if empty is not None and not empty.any():
+                    empty = None
+            times_kept = np.array(time_s, dtype=np.float64)[good]
+            self._seen_many(times_kept)
+            self.lines = end
+            yield TrendBlock(
+                time_s=times_kept,
+                line=np.array(numbers, dtype=np.int64)[good],
+                values=values,
+                empty=empty,
+                longest=longest,
+                texts=[kept[i] for i in good],
+                split=True,
+            )
+        self.lines = end
+        for number, message in problems:
+            self._bad(number, message)
+
+    def _seen_many(self, times: NDArray[np.float64]) -> None:
+        """:meth:`_seen` for each of ``times`` in turn."""
+        if not times.shape[0]:
+            return
+        running = np.maximum.accumulate(np.concatenate(([self._latest], times)))
+        self.backwards += int(np.count_nonzero(times < running[:-1]))
+        self._latest = float(running[-1])
+        low, high = float(times.min()), float(times.max())
+        if self.first_time_s is None or low < self.first_time_s:
+            self.first_time_s = low
+        if self.last_time_s is None or high > self.last_time_s:
+            self.last_time_s = high
+
     def _csv(self, lines: Iterator[str]) -> Iterator[TrendRow]:
         rows = csv.reader(lines, strict=True)
+        yield from self._csv_rows(rows, self._header(rows), 0)
+
+    def _header(self, rows: Any) -> int:
+        """Read the header row from a ``csv.reader``; set :attr:`topics`; return its width."""
         try:
             header = next(rows)
         except StopIteration:
@@ -334,17 +692,20 @@ class HistoryReader:
             raise HistoryError(self.path, rows.line_num, f"header: {err}") from None
         self.lines = rows.line_num
         self.topics = self._topics(header, rows.line_num)
-        width = len(header)
+        return len(header)
+
+    def _csv_rows(self, rows: Any, width: int, before: int) -> Iterator[TrendRow]:
+        """Read the rows of a ``csv.reader`` whose first line is line ``before + 1`` of the file."""
         while True:
             try:
                 row = next(rows)
             except StopIteration:
                 return
             except csv.Error as err:
-                self.lines = rows.line_num
-                self._bad(rows.line_num, f"not CSV: {err}")
+                self.lines = before + rows.line_num
+                self._bad(self.lines, f"not CSV: {err}")
                 continue
-            line = rows.line_num
+            line = before + rows.line_num
             self.lines = line
             if not row or (len(row) == 1 and not row[0].strip()):
                 continue  # a blank line
@@ -397,6 +758,31 @@ class HistoryReader:
             time_s, topic, payload = item
             self._seen(time_s)
             yield Recorded(time_s, topic, payload, False, number)
+
+
+def _read_ahead(arguments: str) -> None:
+    """Child process of :meth:`HistoryReader.blocks` with ``ahead``: read, write, end."""
+    path_list, path, on_bad_line, zone = json.loads(arguments)
+    sys.path[:] = path_list
+    out = sys.stdout.buffer
+    reader = HistoryReader(path, kind="csv", on_bad_line=on_bad_line, zone=zone)
+    try:
+        for block in reader.blocks():
+            pickle.dump(("block", block, reader._state()), out, pickle.HIGHEST_PROTOCOL)
+    except BrokenPipeError:
+        return  # the parent stopped reading
+    except Exception as err:  # what stops the reading stops the parent's
+        message: tuple[str, Any, tuple[Any, ...]] = ("raise", err, reader._state())
+    else:
+        message = ("end", None, reader._state())
+    pickle.dump(message, out, pickle.HIGHEST_PROTOCOL)
+    out.flush()
+
+
+#: What the child process of :meth:`HistoryReader.blocks` with ``ahead`` runs.
+_AHEAD_MAIN: Final = (
+    "import sys; from arxwatch.daemon.history import _read_ahead; _read_ahead(sys.argv[1])"
+)
 
 
 def _captured(text: str) -> tuple[float, str, bytes]:

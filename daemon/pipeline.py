@@ -49,7 +49,6 @@ from __future__ import annotations
 
 import io
 import json
-import operator
 import sys
 from collections import Counter, deque
 from collections.abc import Callable, Mapping, Sequence
@@ -60,8 +59,9 @@ import numpy as np
 from numpy.typing import NDArray
 
 from arxwatch.daemon.config import AssetClassConfig, Config
-from arxwatch.daemon.decode import DECIMAL_CHARS, PayloadFormat, Rejected, decode
+from arxwatch.daemon.decode import PayloadFormat, Rejected, decode
 from arxwatch.daemon.fleet import FleetMonitor
+from arxwatch.daemon.history import TrendBlock, TrendRow
 from arxwatch.daemon.intake import OUTCOMES, IntakeBank, RowBatch, cells_for
 from arxwatch.daemon.route import Refused, Router
 from arxwatch.estimators.baseline import BaselineSet, LiveBaselineLearner
@@ -81,8 +81,6 @@ FITS_PER_ADVANCE = 2
 #: traffic under the subscription (``no matching rule`` is usually that).
 NOTEWORTHY_REFUSALS = frozenset({"asset limit", "asset class conflict"})
 
-#: str.translate table deleting the characters of a plain decimal number (as the decoder allows)
-_DECIMAL_DELETE = str.maketrans("", "", DECIMAL_CHARS)
 _ACCEPTED = OUTCOMES.index("accepted")
 _OUT_OF_RANGE = OUTCOMES.index("out_of_range")
 
@@ -330,12 +328,52 @@ class _ColumnPlan:
     low: NDArray[np.float64]
     high: NDArray[np.float64]
     max_chars: int
-    take: Callable[[Sequence[str]], Any] = field(init=False)
-    every: NDArray[np.bool_] = field(init=False)  # all columns present
 
-    def __post_init__(self) -> None:
-        self.take = operator.itemgetter(*self.index.tolist())
-        self.every = np.ones(self.index.shape[0], dtype=np.bool_)
+    def rows(self, block: TrendBlock) -> _PlanRows:
+        """Scale and check this plan's cells of every row of ``block`` at once."""
+        scaled = block.values[:, self.index] * self.scale + self.offset
+        finite = np.isfinite(scaled)
+        plain: NDArray[np.bool_]
+        if block.empty is None:
+            present = None
+            plain = np.asarray(finite.all(axis=1))
+            full = np.ones(len(block), dtype=np.bool_)
+            count = np.full(len(block), self.index.shape[0])
+        else:
+            present = ~block.empty[:, self.index]
+            plain = np.asarray((finite | ~present).all(axis=1))
+            full = np.asarray(present.all(axis=1))
+            count = present.sum(axis=1)
+        if block.longest > self.max_chars:  # a cell too long for the decoder somewhere
+            columns = self.index.tolist()
+            for i in np.flatnonzero(plain).tolist():
+                cells = block.cells(i)
+                plain[i] = max(len(cells[j]) for j in columns) <= self.max_chars
+        return _PlanRows(
+            scaled=scaled,
+            usable=(self.low <= scaled) & (scaled <= self.high),
+            present=present,
+            plain=plain.tolist(),
+            full=full.tolist(),
+            count=count.tolist(),
+        )
+
+
+@dataclass(frozen=True, eq=False)
+class _PlanRows:
+    """A plan's cells of one :class:`TrendBlock`, scaled and checked (see :meth:`_ColumnPlan.rows`).
+
+    ``plain`` rows have a plain decimal number, finite once scaled and not
+    too long for the decoder, in each cell present (the others go cell by
+    cell through the decoder); ``full`` rows have a cell in every column.
+    """
+
+    scaled: NDArray[np.float64]  # (n, columns)
+    usable: NDArray[np.bool_]  # within the signal's plausible range
+    present: NDArray[np.bool_] | None  # None: every cell present
+    plain: list[bool]
+    full: list[bool]
+    count: list[int]  # cells present
 
 
 class TrendColumns:
@@ -353,6 +391,17 @@ class TrendColumns:
         self.refused: dict[str, list[int]] = {}
         self.plans: list[_ColumnPlan] = []
         self._columns: dict[str, list[tuple[int, int, int]]] = {}
+        self._block: TrendBlock | None = None
+        self._rows: dict[_ColumnPlan, _PlanRows] = {}
+
+    def rows(self, plan: _ColumnPlan, block: TrendBlock) -> _PlanRows:
+        """Return ``plan.rows(block)``, made once per plan and block."""
+        if block is not self._block:
+            self._block, self._rows = block, {}
+        rows = self._rows.get(plan)
+        if rows is None:
+            rows = self._rows[plan] = plan.rows(block)
+        return rows
 
     def add(self, name: str, state: _Class, columns: list[tuple[int, int, int]]) -> None:
         """Add numeric columns (position, slot, signal) of class ``name``; rebuild its plan."""
@@ -525,14 +574,7 @@ class Pipeline:
     ) -> list[dict[str, Any]]:
         """Take one row of a trend export; return the data-quality alert records it causes.
 
-        The same as :meth:`feed` with ``bare=True`` for each non-empty cell
-        in turn (topic from ``columns``, payload the cell, arrival
-        ``time_s``): the same counts, state and alert records, possibly in
-        another order within the row. Numeric cells of output and input
-        signals go through the intake a class at a time
-        (:meth:`IntakeBank.add_many`); mode labels, and any row with a cell
-        that is not a plain decimal number, go through :meth:`feed` cell by
-        cell.
+        :meth:`feed_block_row` of a block of this one row.
 
         Parameters
         ----------
@@ -544,25 +586,58 @@ class Pipeline:
         cells : sequence of str
             The point columns' cells, stripped; ``""`` for no value.
         """
+        block = TrendBlock.of_rows([TrendRow(time_s, 0, list(cells))])
+        return self.feed_block_row(columns, block, 0)
+
+    def feed_block_row(
+        self, columns: TrendColumns, block: TrendBlock, row: int
+    ) -> list[dict[str, Any]]:
+        """Take row ``row`` of a block of a trend export; return the data-quality alert records.
+
+        The same as :meth:`feed` with ``bare=True`` for each non-empty cell
+        in turn (topic from ``columns``, payload the cell, arrival the row
+        time): the same counts, state and alert records, possibly in another
+        order within the row. Numeric cells of output and input signals go
+        through the intake a class at a time (:meth:`IntakeBank.add_many`),
+        scaled and checked for the whole block at once; mode labels, and a
+        class's cells in a row with one that is not a plain decimal number,
+        go through :meth:`feed` cell by cell.
+
+        Parameters
+        ----------
+        columns : TrendColumns
+            Made for the file's header (``TrendColumns(reader.topics)``); it learns each
+            column's route at the column's first value.
+        block : TrendBlock
+            Rows of the file (:meth:`HistoryReader.blocks`).
+        row : int
+            The row of the block, ``0 <= row < len(block)``.
+        """
         if not self._admitted:
             self._admit()
         records: list[dict[str, Any]] = []
+        time_s = float(block.time_s[row])
+        present = None if block.empty is None else ~block.empty[row]
         if columns.unrouted:
-            self._route_columns(columns, cells)
-        for i in columns.by_message:
-            if cells[i]:
-                records += self.feed(columns.topics[i], cells[i].encode("utf-8"), time_s, bare=True)
+            self._route_columns(columns, present)
+        if columns.by_message:
+            cells = block.cells(row)
+            for i in columns.by_message:
+                if cells[i]:
+                    records += self.feed(
+                        columns.topics[i], cells[i].encode("utf-8"), time_s, bare=True
+                    )
         for reason, refused in columns.refused.items():
-            present = sum(1 for i in refused if cells[i])
-            self.counts.messages += present
-            self.counts.refused[reason] += present
+            given = len(refused) if present is None else int(present[refused].sum())
+            self.counts.messages += given
+            self.counts.refused[reason] += given
         for plan in columns.plans:
-            records += self._feed_plan(plan, time_s, cells)
+            records += self._feed_plan(plan, time_s, block, row, columns.rows(plan, block))
         return records
 
-    def _route_columns(self, columns: TrendColumns, cells: Sequence[str]) -> None:
-        """Route the columns that have their first value in ``cells``."""
-        new = [i for i in columns.unrouted if cells[i]]
+    def _route_columns(self, columns: TrendColumns, present: NDArray[np.bool_] | None) -> None:
+        """Route the columns that have their first value in a row (``present``: None for all)."""
+        new = [i for i in columns.unrouted if present is None or present[i]]
         if not new:
             return
         by_class: dict[str, list[tuple[int, int, int]]] = {}
@@ -589,38 +664,19 @@ class Pipeline:
             columns.add(name, self._classes[name], added)
 
     def _feed_plan(
-        self, plan: _ColumnPlan, time_s: float, cells: Sequence[str]
+        self, plan: _ColumnPlan, time_s: float, block: TrendBlock, row: int, rows: _PlanRows
     ) -> list[dict[str, Any]]:
-        """Feed the numeric cells of one class's columns in a row (see :meth:`feed_row`)."""
-        texts = plan.take(cells)
-        if len(plan.index) == 1:
-            texts = (texts,)
-        full = "" not in texts  # the common case: a value in every column
-        if full:
-            present, given = plan.every, list(texts)
-        else:
-            present = np.array([text != "" for text in texts], dtype=np.bool_)
-            given = [text for text in texts if text]
-        n = len(given)
+        """Feed the numeric cells of one class's columns in a row (see :meth:`feed_block_row`)."""
+        n = rows.count[row]
         if not n:
             return []
-        joined = "".join(given)
-        plain = not joined.translate(_DECIMAL_DELETE) and max(map(len, given)) <= plan.max_chars
-        if plain:
-            try:
-                # float() parses a plain decimal exactly as numpy's str -> float64 cast
-                raw = np.array([float(text) for text in given])
-            except ValueError:
-                plain = False
-        if plain:
-            if full:
-                values = raw * plan.scale + plan.offset
-            else:
-                values = raw * plan.scale[present] + plan.offset[present]
-            plain = bool(np.isfinite(values).all())
-        if not plain:  # something a decoder must look at: cell by cell
+        full = rows.full[row]
+        present = None if rows.present is None else rows.present[row]
+        if not rows.plain[row]:  # something a decoder must look at: cell by cell
             records: list[dict[str, Any]] = []
-            for i in np.flatnonzero(present).tolist():
+            cells = block.cells(row)
+            given = range(n) if present is None else np.flatnonzero(present).tolist()
+            for i in given:
                 column = int(plan.index[i])
                 records += self.feed(
                     plan.topics[i], cells[column].encode("utf-8"), time_s, bare=True
@@ -630,11 +686,11 @@ class Pipeline:
         counts = self.counts
         counts.messages += n
         if full:  # the plan's own arrays, not masked copies
-            slots, signals, low, high = plan.slots, plan.signals, plan.low, plan.high
+            slots, signals = plan.slots, plan.signals
+            values, usable = rows.scaled[row], rows.usable[row]
         else:
             slots, signals = plan.slots[present], plan.signals[present]
-            low, high = plan.low[present], plan.high[present]
-        usable = (low <= values) & (values <= high)
+            values, usable = rows.scaled[row][present], rows.usable[row][present]
         records = []
         crowded = state.intake.crowded
         if crowded and not crowded.isdisjoint(zip(slots.tolist(), signals.tolist(), strict=True)):

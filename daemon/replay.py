@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import json
 import math
+import os
 import sys
 import time
 from collections import Counter
@@ -47,6 +48,9 @@ ADVANCE_EVERY = 2000
 REPLAY_EXTRA_CELLS = 12
 #: Trend export rows between two progress reports.
 PROGRESS_ROWS = 64
+#: Trend exports of at least this size are read and converted by a second process, a block
+#: ahead of the one being judged (:meth:`HistoryReader.blocks`), where there is a second core.
+READ_AHEAD_BYTES = 4 * 2**20
 #: Alert records printed when they are not written to a file.
 SHOWN_RECORDS = 40
 
@@ -164,30 +168,36 @@ def _replay_rows(
     stale_every_s: float,
     progress: Callable[[int, float], None] | None,
 ) -> tuple[float, float]:
-    """Feed a trend export a row at a time (:meth:`Pipeline.feed_row`); return (latest, earliest).
+    """Feed a trend export a row at a time (:meth:`Pipeline.feed_block_row`).
+
+    Returns (latest, earliest) row time.
 
     The clock is the row time: before a row whose time is ``stale_every_s``
     past the last check, staleness is checked at that time, as the live
     loop's clock would before the row's samples arrive. The grid closes
     whenever an asset's held samples fill up (``IntakeBank.crowded``), so a
     pipeline made with :data:`REPLAY_EXTRA_CELLS` steps its fleet every
-    few rows.
+    few rows. A file of :data:`READ_AHEAD_BYTES` or more is read ahead by
+    a second process.
     """
     latest, earliest, last_stale = -math.inf, math.inf, -math.inf
     columns: TrendColumns | None = None
-    for n, row in enumerate(reader.rows(), start=1):
+    n = 0
+    ahead = reader.size >= READ_AHEAD_BYTES and (os.cpu_count() or 1) > 1
+    for block in reader.blocks(ahead=ahead):
         if columns is None:
             columns = TrendColumns(reader.topics)
-        time_s = row.time_s
-        earliest = min(earliest, time_s)
-        if time_s > latest:
-            latest = time_s
-            if latest - last_stale >= stale_every_s:
-                emit(pipeline.check_stale(latest))
-                last_stale = latest
-        emit(pipeline.feed_row(columns, time_s, row.cells))
-        if progress is not None and n % PROGRESS_ROWS == 0:
-            progress(pipeline.counts.messages, latest)
+        for row, time_s in enumerate(block.time_s.tolist()):
+            earliest = min(earliest, time_s)
+            if time_s > latest:
+                latest = time_s
+                if latest - last_stale >= stale_every_s:
+                    emit(pipeline.check_stale(latest))
+                    last_stale = latest
+            emit(pipeline.feed_block_row(columns, block, row))
+            n += 1
+            if progress is not None and n % PROGRESS_ROWS == 0:
+                progress(pipeline.counts.messages, latest)
     return latest, earliest
 
 

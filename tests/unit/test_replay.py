@@ -5,6 +5,7 @@ from pathlib import Path
 
 import pytest
 
+from arxwatch.daemon import replay as replay_module
 from arxwatch.daemon.cli import main
 from arxwatch.daemon.history import CaptureWriter, HistoryReader
 from arxwatch.daemon.pipeline import Pipeline
@@ -71,6 +72,16 @@ def test_capture_csv_and_live_give_the_same_alerts(
     assert sorted(map(key, from_csv)) == sorted(map(key, live))
 
 
+def test_a_trend_export_read_ahead_by_a_second_process_gives_the_same_records(
+    library_file: Path, recorded: dict[str, Path], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    config, libraries = file_site(library_file)
+    here = replayed(config, libraries, recorded["csv"])
+    monkeypatch.setattr(replay_module, "READ_AHEAD_BYTES", 0)
+    monkeypatch.setattr(replay_module.os, "cpu_count", lambda: 2)
+    assert replayed(config, libraries, recorded["csv"]) == here  # the same, in the same order
+
+
 def test_replay_command_writes_alert_lines_and_a_summary(
     tmp_path: Path, library_file: Path, recorded: dict[str, Path], capsys: pytest.CaptureFixture
 ) -> None:
@@ -92,7 +103,10 @@ def test_replay_command_writes_alert_lines_and_a_summary(
 
 
 def test_replay_command_names_bad_input(
-    tmp_path: Path, library_file: Path, capsys: pytest.CaptureFixture
+    tmp_path: Path,
+    library_file: Path,
+    capsys: pytest.CaptureFixture,
+    monkeypatch: pytest.MonkeyPatch,
 ) -> None:
     config = tmp_path / "site.yaml"
     config.write_text(SITE.format(baseline=f"{{file: {library_file}}}", model="auto"))
@@ -101,6 +115,11 @@ def test_replay_command_names_bad_input(
     assert main(["replay", "--config", str(config), "--input", str(trend)]) == 2
     err = capsys.readouterr().err
     assert f"{trend}:3: first column: time 'noon'" in err and "--on-bad-line skip" in err
+    with monkeypatch.context() as patch:  # read ahead by a second process: the same error
+        patch.setattr(replay_module, "READ_AHEAD_BYTES", 0)
+        patch.setattr(replay_module.os, "cpu_count", lambda: 2)
+        assert main(["replay", "--config", str(config), "--input", str(trend)]) == 2
+        assert f"{trend}:3: first column: time 'noon'" in capsys.readouterr().err
     assert main(["replay", "--config", str(config), "--input", str(trend),
                  "--on-bad-line", "skip"]) == 0  # fmt: skip
     out = capsys.readouterr().out
