@@ -1067,6 +1067,28 @@ class _Group:
         self.arrays["rls"][layout.diag, c] = scaled
 
 
+class _Route:
+    """How the rows of the last one-wave step reached their channels, kept for the next.
+
+    A site's assets report every sample time in the same order, so a step's
+    rows usually come from the same slots, in the same mode, as the last
+    one's: then the slot checks, the channel look-ups and the mode-switch
+    test (nothing switched) would find what they found last time, and are
+    skipped. Any other step, and any change of assets or baselines, drops it.
+    """
+
+    __slots__ = ("channels", "code", "group", "key", "slots")
+
+    def __init__(self, code: int, slots: Index, group: int, channels: Index) -> None:
+        self.code, self.group, self.channels = code, group, channels
+        self.slots = slots.copy()
+        self.key = slots.tobytes()
+
+    def matches(self, slots: Index, code: int | NDArray[np.int16]) -> bool:
+        """Whether rows from ``slots`` in mode ``code`` take this route."""
+        return isinstance(code, int) and code == self.code and slots.tobytes() == self.key
+
+
 class FleetMonitor:
     """Drift monitor of every asset of one asset class, in arrays.
 
@@ -1151,6 +1173,7 @@ class FleetMonitor:
         )
         self.skipped = 0
         self._trace: TraceSink | None = None
+        self._route: _Route | None = None  # see _Route
 
     # -- trace --------------------------------------------------------------
     @property
@@ -1280,6 +1303,7 @@ class FleetMonitor:
         return slot
 
     def _add_channel(self, slot: int, code: int, baseline: Baseline) -> None:
+        self._route = None
         key = (baseline.order, baseline.sample_period_s)
         g = self._group_of.get(key)
         if g is None:
@@ -1328,6 +1352,7 @@ class FleetMonitor:
             If the asset is not monitored.
         """
         slot = self._slots.pop(asset_id)
+        self._route = None
         for _, g, c in self._channels(slot):
             self._groups[g].remove(c)
         self._chan_group[slot] = -1
@@ -1396,12 +1421,6 @@ class FleetMonitor:
             )
         if k == 0:
             return []
-        used = self._used
-        if slot_a.min() < 0 or slot_a.max() >= used.shape[0] or not used[slot_a].all():
-            inside = (slot_a >= 0) & (slot_a < used.shape[0])
-            held = np.zeros(k, dtype=np.bool_)
-            held[inside] = used[slot_a[inside]]
-            raise ValueError(f"slot {int(slot_a[~held][0])} holds no asset")
         # one mode label for every row (the usual case) is a scalar code: no array to build
         labels = set(modes)
         get = self._mode_codes.get
@@ -1411,9 +1430,20 @@ class FleetMonitor:
         else:
             code_a = np.array([get(m, _OTHER_MODE) for m in modes], dtype=np.int16)
         restart_a = np.asarray(restart, dtype=np.bool_)
+        one_time = bool(time_a.min() == time_a.max())  # a live grid point: one wave
+        route = self._route
+        if one_time and route is not None and route.matches(slot_a, code_a):
+            return self._finish(self._wave_routed(route, time_a, y_a, u_a, restart_a))
+        self._route = None  # the rows below may switch modes: a route is made anew
+        used = self._used
+        if slot_a.min() < 0 or slot_a.max() >= used.shape[0] or not used[slot_a].all():
+            inside = (slot_a >= 0) & (slot_a < used.shape[0])
+            held = np.zeros(k, dtype=np.bool_)
+            held[inside] = used[slot_a[inside]]
+            raise ValueError(f"slot {int(slot_a[~held][0])} holds no asset")
         records: list[tuple[int, int, dict[str, Any]]] = []
         # waves of rows with distinct sample times: each asset has one row per wave
-        if time_a.min() == time_a.max():  # one sample time (a live grid point): every row
+        if one_time:
             if k > 1 and np.bincount(slot_a).max() > 1:
                 raise ValueError("an asset has two rows with the same sample time")
             records = self._wave(None, slot_a, time_a, y_a, u_a, code_a, restart_a)
@@ -1423,6 +1453,11 @@ class FleetMonitor:
                 if np.bincount(slot_a[wave]).max() > 1:
                     raise ValueError("an asset has two rows with the same sample time")
                 records += self._wave(wave, slot_a, time_a, y_a, u_a, code_a, restart_a)
+        return self._finish(records)
+
+    @staticmethod
+    def _finish(records: list[tuple[int, int, dict[str, Any]]]) -> list[dict[str, Any]]:
+        """Return the records of a step in row order, then key order."""
         if len(records) > 1:
             records.sort(key=lambda item: (item[0], item[1]))
         return [record for _, _, record in records]
@@ -1469,35 +1504,56 @@ class FleetMonitor:
                 return []
             low = int(group[has].min())
             switch &= has
-        trace = self._trace
         for g in [low] if low == high else np.unique(group[group >= 0]).tolist():
             target = self._groups[g]
             if low == high and everyone:  # one group takes every row: no selection
-                where: Index | None = None
-                index = self._chan_index[s, code].astype(np.intp)
-                ch, switched, t_g, y_g, u_g = index, switch, time_s, y, u
-            else:
-                where = np.flatnonzero(group == g)
-                s_g = s[where]
-                code_g = code if isinstance(code, int) else code[where]
-                ch = self._chan_index[s_g, code_g].astype(np.intp)
-                switched, t_g, y_g, u_g = switch[where], time_s[where], y[where], u[where]
+                ch = self._chan_index[s, code].astype(np.intp)
+                if switch.any():
+                    target.restart(ch[switch])
+                out += self._judge(target, ch, rows, time_s, y, u)
+                if rows is None and isinstance(code, int):
+                    self._route = _Route(code, s, g, ch)
+                continue
+            where = np.flatnonzero(group == g)
+            code_g = code if isinstance(code, int) else code[where]
+            ch = self._chan_index[s[where], code_g].astype(np.intp)
+            switched = switch[where]
             if switched.any():
                 target.restart(ch[switched])
-            found = target.step(ch, t_g, y_g, u_g)
-            if trace is not None:
-                self._trace_group(trace, target, ch, t_g, y_g)
-            inflate: set[int] = set()
-            for pos, key, evidence, transition in found:
-                c = int(ch[pos])
-                wave_pos = pos if where is None else int(where[pos])
-                row = wave_pos if rows is None else int(rows[wave_pos])
-                record = self._record(target, c, key, evidence, transition, float(t_g[pos]))
-                out.append((row, key, record))
-                if transition.state == "raised" and evidence.detector in CHANGE_DETECTORS:
-                    inflate.add(c)
-            for c in inflate:
-                target.inflate(c, self.config.reset_factor)
+            at = where if rows is None else rows[where]
+            out += self._judge(target, ch, at, time_s[where], y[where], u[where])
+        return out
+
+    def _wave_routed(
+        self, route: _Route, time_s: Float, y: Float, u: Float, restart: NDArray[np.bool_]
+    ) -> list[tuple[int, int, dict[str, Any]]]:
+        """Judge a one-wave step whose rows follow ``route`` (nothing to look up or switch)."""
+        if restart.any():
+            for slot in route.slots[restart].tolist():
+                self.restart(slot)
+        return self._judge(self._groups[route.group], route.channels, None, time_s, y, u)
+
+    def _judge(
+        self, target: _Group, ch: Index, rows: Index | None, time_s: Float, y: Float, u: Float
+    ) -> list[tuple[int, int, dict[str, Any]]]:
+        """Step ``target``'s channels ``ch``; return (row, key, record) of its transitions.
+
+        ``rows`` maps a position in ``ch`` to the step's row (None: the same).
+        """
+        found = target.step(ch, time_s, y, u)
+        if self._trace is not None:
+            self._trace_group(self._trace, target, ch, time_s, y)
+        out: list[tuple[int, int, dict[str, Any]]] = []
+        inflate: set[int] = set()
+        for pos, key, evidence, transition in found:
+            c = int(ch[pos])
+            row = pos if rows is None else int(rows[pos])
+            record = self._record(target, c, key, evidence, transition, float(time_s[pos]))
+            out.append((row, key, record))
+            if transition.state == "raised" and evidence.detector in CHANGE_DETECTORS:
+                inflate.add(c)
+        for c in inflate:
+            target.inflate(c, self.config.reset_factor)
         return out
 
     @staticmethod
@@ -1700,6 +1756,7 @@ class FleetMonitor:
             signals, or arrays that do not fit these settings; the monitor is
             then left as it was.
         """
+        self._route = None
         meta, arrays = state["meta"], state["arrays"]
         if meta.get("format") != "arxwatch.fleet" or meta.get("version") != _STATE_VERSION:
             raise ValueError(

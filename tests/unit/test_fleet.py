@@ -167,6 +167,46 @@ def test_records_equal_per_asset_monitors(
         } | {f"{m}:{k}" for m in scalar_monitor._modes for k in fleet._groups[-1].keys}
 
 
+@pytest.mark.parametrize("schedule", ["one-mode", "site-schedule"])
+@pytest.mark.parametrize("backend", BACKENDS)
+def test_steps_from_the_same_assets_reuse_their_route(
+    assets: dict, schedule: str, backend: str, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # One sample time per call, every asset in the same mode: the fleet
+    # reuses the last step's routing (FleetMonitor._Route). The records must
+    # stay those of per-asset monitors through what drops or changes a route:
+    # a missing row (1 % of rows), a restart after it, a site-wide mode
+    # switch, and a mode without a baseline ("purge").
+    if schedule == "one-mode":
+        chosen = {a: v for a, v in assets.items() if v[0].baselines[0].mode is None}
+    else:
+        modes = assets["block-d/ahu-9"][3]
+        chosen = {}
+        for k, (asset, (_, y, u, _)) in enumerate(assets.items()):
+            both = BaselineSet(
+                (
+                    _baseline(LOOPS[k % 2], "occupied", 1),
+                    _baseline(LOOPS[1 - k % 2], "unoccupied", 5),
+                )
+            )
+            chosen[asset] = (both, y, u, modes)
+    routed = 0
+    original = FleetMonitor._wave_routed
+
+    def counting(self: FleetMonitor, *args: object) -> list:
+        nonlocal routed
+        routed += 1
+        return original(self, *args)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(FleetMonitor, "_wave_routed", counting)
+    expected, got, _ = _run_both(chosen, MonitorConfig(), lambda k: 1, backend)
+    n = len(next(iter(chosen.values()))[1])
+    assert n // 2 < routed < n  # most steps took the route, not all
+    assert sum(len(v) for v in expected.values()) > 5
+    for asset in expected:
+        assert got[asset] == expected[asset], asset
+
+
 @pytest.mark.skipif(not available(), reason="numba is not installed (pip install '.[fast]')")
 @pytest.mark.parametrize("largest", [None, 5], ids=["compiled", "mixed"])
 def test_compiled_backend_leaves_the_same_state_bit_for_bit(
