@@ -1081,8 +1081,8 @@ class _Route:
 
     def __init__(self, code: int, slots: Index, group: int, channels: Index) -> None:
         self.code, self.group, self.channels = code, group, channels
-        self.slots = slots.copy()
         self.key = slots.tobytes()
+        self.slots: Index = np.frombuffer(self.key, dtype=np.intp)  # a view: no second copy
 
     def matches(self, slots: Index, code: int | NDArray[np.int16]) -> bool:
         """Whether rows from ``slots`` in mode ``code`` take this route."""
