@@ -469,6 +469,14 @@ class IntakeBank:
         self._arrays = arrays
         self._flat = {name: array.reshape(-1).data for name, array in arrays.items()}
         self._capacity = int(arrays["in_use"].shape[0])
+        self._slots_changed()
+
+    def _slots_changed(self) -> None:
+        """Forget what was worked out from the slots in use (they or the arrays changed)."""
+        # the slots and signals last found ready for add_many, and their flat pairs
+        self._ready: tuple[NDArray[np.intp], NDArray[np.intp], NDArray[np.intp]] | None = None
+        # slots in use, and the flat positions of their checked signals' newest times
+        self._in_use: tuple[NDArray[np.intp], NDArray[np.intp]] | None = None
 
     @property
     def capacity(self) -> int:
@@ -505,6 +513,7 @@ class IntakeBank:
             self._set_arrays(grown)
             slot = old
         self._arrays["in_use"][slot] = True
+        self._slots_changed()
         return slot
 
     def remove_asset(self, slot: int) -> None:
@@ -520,6 +529,7 @@ class IntakeBank:
         slot = self._slot(slot)
         for name, (_, _, fill) in _LAYOUT.items():
             self._arrays[name][slot] = fill
+        self._slots_changed()
         self.crowded = {pair for pair in self.crowded if pair[0] != slot}
         pending = self._pending.tolist()
         self._pending = array("d")
@@ -629,7 +639,8 @@ class IntakeBank:
         k = slots.shape[0]
         if not k:
             return np.empty(0, dtype=np.intp)
-        if not self._vector_ready(slots, signals, time_s, values):
+        pairs = self._vector_ready(slots, signals, time_s, values)
+        if pairs is None:
             return np.array(
                 [
                     _OUTCOME_CODE[self.add(int(s), int(q), time_s, float(v), usable=bool(u))]
@@ -646,7 +657,6 @@ class IntakeBank:
         arrays = self._arrays
         period = self.config.sample_period_s
         cell = _first_index(time_s, period)
-        pairs = slots * len(self.signals) + signals  # flat (slot, signal) positions
         newest = _flat(arrays["newest"])
         old_newest = newest[pairs]
         if usable.any() and cell * period <= time_s + self.config.staleness_s:
@@ -678,11 +688,43 @@ class IntakeBank:
         signals: NDArray[np.intp],
         time_s: float,
         values: NDArray[np.float64],
-    ) -> bool:
-        """Whether :meth:`add_many` can take these samples on arrays (see there)."""
+    ) -> NDArray[np.intp] | None:
+        """Whether :meth:`add_many` can take these samples on arrays (see there).
+
+        Returns their flat (slot, signal) positions if so, else None. What
+        depends on the slots and signals alone is worked out once for the
+        same two arrays (a trend export's columns, row after row) until a
+        slot is added or removed.
+        """
         period = self.config.sample_period_s
         if not math.isfinite(time_s) or abs(time_s) > _GRID_LIMIT * period:
-            return False
+            return None
+        ready = self._ready
+        if ready is not None and ready[0] is slots and ready[1] is signals:
+            pairs = ready[2]
+        else:
+            found = self._distinct_pairs(slots, signals)
+            if found is None:
+                return None
+            pairs = found
+            self._ready = (slots, signals, pairs)
+        if not np.isfinite(values).all():
+            return None
+        newest = _flat(self._arrays["newest"])[pairs]
+        if not (np.isnan(newest) | (newest < time_s)).all():
+            return None  # duplicates and older samples: as add decides, one by one
+        last = self._arrays["last_index"][slots]
+        cell = _first_index(time_s, period)
+        return pairs if bool(((last == _OPEN) | (cell > last)).all()) else None
+
+    def _distinct_pairs(
+        self, slots: NDArray[np.intp], signals: NDArray[np.intp]
+    ) -> NDArray[np.intp] | None:
+        """Flat positions of (slot, signal) pairs of slots in use and numeric signals, each once.
+
+        None if a slot or signal is out of range or not in use, a signal is
+        the mode signal, or a pair comes twice.
+        """
         n_signals = len(self.signals)
         if (
             slots.min() < 0
@@ -691,19 +733,13 @@ class IntakeBank:
             or signals.max() >= n_signals
             or (self._mode_index >= 0 and bool((signals == self._mode_index).any()))
             or not self._arrays["in_use"][slots].all()
-            or not np.isfinite(values).all()
         ):
-            return False
+            return None
         pairs = slots * n_signals + signals
         ordered = np.sort(pairs)
         if bool((ordered[1:] == ordered[:-1]).any()):  # a pair twice
-            return False
-        newest = _flat(self._arrays["newest"])[pairs]
-        if not (np.isnan(newest) | (newest < time_s)).all():
-            return False  # duplicates and older samples: as add decides, one by one
-        last = self._arrays["last_index"][slots]
-        cell = _first_index(time_s, period)
-        return bool(((last == _OPEN) | (cell > last)).all())
+            return None
+        return pairs
 
     def _hold_many(
         self,
@@ -776,10 +812,12 @@ class IntakeBank:
         run_starts[at] = run_start
         run_mins[at] = low
         run_maxs[at] = high
-        block = np.column_stack(
+        block = np.empty((slots.shape[0], _CHECK_FIELDS))
+        for j, column in enumerate(
             (slots, qs, values, interval, periods, gap, time_s - run_start, high - low, moved,
              gap_count, gap_total)
-        ).astype(np.float64)  # fmt: skip
+        ):  # fmt: skip
+            block[:, j] = column
         self._pending.frombytes(block.tobytes())
 
     def _signal(self, signal: int) -> int:
@@ -1210,15 +1248,21 @@ class IntakeBank:
         if not math.isfinite(now_s):
             raise ValueError(f"now_s must be finite, got {now_s!r}")
         arrays = self._arrays
-        slots = np.flatnonzero(arrays["in_use"])
+        if self._in_use is None:
+            used = np.flatnonzero(arrays["in_use"])
+            at = used[:, None] * len(self.signals) + self._quality_columns[None, :]
+            self._in_use = (used, at)
+        slots, newest_at = self._in_use
         if slots.size == 0 or not self.quality_signals:
             return []
-        last = arrays["newest"][slots][:, self._quality_columns]
+        last = _flat(arrays["newest"])[newest_at]  # (slots, checked signals)
         no_sample = np.isnan(last)
-        first_check = arrays["first_check_s"][slots]
-        first_check = np.where(no_sample & np.isnan(first_check), now_s, first_check)
-        arrays["first_check_s"][slots] = first_check
-        reference = np.where(no_sample, first_check, last)
+        reference = last
+        if no_sample.any():  # their age counts from their first check
+            first_check = arrays["first_check_s"][slots]
+            first_check = np.where(no_sample & np.isnan(first_check), now_s, first_check)
+            arrays["first_check_s"][slots] = first_check
+            reference = np.where(no_sample, first_check, last)
         age = np.maximum(0.0, now_s - reference)
         alarm = age > self._stale_after
         report = alarm | arrays["stale_alarm"][slots]

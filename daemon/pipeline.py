@@ -764,9 +764,14 @@ class Pipeline:
             return []
         records: list[dict[str, Any]] = []
         self.counts.rows += len(batch)
-        labels = [
-            None if code < 0 else state.intake.mode_label(int(code)) for code in batch.mode.tolist()
-        ]
+        labels: list[str | None]
+        if state.intake.mode_signal < 0:  # no mode signal: no label (-1) on any row
+            labels = [None] * len(batch)
+        else:
+            labels = [
+                None if code < 0 else state.intake.mode_label(int(code))
+                for code in batch.mode.tolist()
+            ]
         fleet_slots = state.fleet_slot[batch.slots]
         judged = fleet_slots >= 0
         if judged.any():
@@ -777,7 +782,7 @@ class Pipeline:
                 batch.time_s[idx],
                 batch.y[idx],
                 batch.u[idx],
-                [labels[i] for i in idx.tolist()],
+                list(labels) if idx.shape[0] == len(labels) else [labels[i] for i in idx.tolist()],
                 batch.restart[idx],
             )
             without = state.fleet.skipped - skipped
