@@ -953,7 +953,7 @@ class _Group:
         # per channel took 120 bytes per asset, which the memory target
         # (bench_service.py, under 2,048 bytes per asset) cannot spare.
         theta0 = a["theta0"][:, dc].T
-        cov0 = a["cov0"][:, dc].T[:, self.tri_index]
+        cov0 = a["cov0"][:, dc][self.tri_index].transpose(2, 0, 1)  # channels innermost
         found: list[tuple[int, int, Evidence, BankTransition]] = []
         # feature Wald test; the read-outs serve the bands and the records too
         base, x0, c0 = self.drift.read_and_project(theta0, cov0)
@@ -1013,12 +1013,16 @@ class _Group:
             statistic = np.where(defined, np.abs(change), np.inf)
             alarm = ~defined | (statistic >= tol)
             key = 4 + self.band_names.index(name)
-            w = np.flatnonzero(watched)
-            transitions = self.tracker.observe(
-                dc[w], key, statistic[w], tol[w], alarm[w], time_s[w]
-            )
+            if watched.all():  # the common case: every channel, no selections
+                w = None
+                transitions = self.tracker.observe(dc, key, statistic, tol, alarm, time_s)
+            else:
+                w = np.flatnonzero(watched)
+                transitions = self.tracker.observe(
+                    dc[w], key, statistic[w], tol[w], alarm[w], time_s[w]
+                )
             for t in transitions:
-                r = int(w[t.position])
+                r = t.position if w is None else int(w[t.position])
                 found.append(
                     (
                         int(dp[r]),

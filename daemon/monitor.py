@@ -189,12 +189,14 @@ def parameter_covariances(layout: StateLayout, states: NDArray[np.float64]) -> N
     rss = states[layout.rss]
     with np.errstate(divide="ignore", invalid="ignore"):
         sigma2 = np.where(rss > 0.0, rss / states[layout.weight], 1.0)
-    out = np.empty((k, n, n))
+    out = np.empty((n, n, k)).transpose(2, 0, 1)  # rows innermost, as the states
+    # U[i, m] D[m], each formed once (the products below associate the same way)
+    scaled = {(i, m): u(i, m) * diag[m] for i in range(n) for m in range(i, n)}
     for i in range(n):
         for j in range(i, n):
             acc = np.zeros(k)
             for m in range(j, n):
-                acc = acc + u(i, m) * diag[m] * u(j, m)
+                acc = acc + scaled[i, m] * u(j, m)
             out[:, i, j] = out[:, j, i] = sigma2 * acc
     return out
 

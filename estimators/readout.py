@@ -435,7 +435,7 @@ def feature_matrix(
         )
     if not np.isfinite(arr).all():
         raise ValueError("thetas must be finite")
-    return _features(order, arr, _check_sample_period(sample_period_s))
+    return np.ascontiguousarray(_features(order, arr, _check_sample_period(sample_period_s)))
 
 
 def _sequential_sum(columns: NDArray[np.float64]) -> NDArray[np.float64]:
@@ -479,7 +479,8 @@ def _features_from(
         columns.append(_time_constants(a, integrating, ts))
         if constant is not None:
             columns.append(np.where(integrating, np.nan, constant / a_at_one))
-    return np.stack(columns, axis=1) if k else np.zeros((0, len(columns)))
+    # feature-major in memory: the rows are the long, contiguous axis
+    return np.stack(columns).T if k else np.zeros((0, len(columns)))
 
 
 def _time_constants(
@@ -562,7 +563,8 @@ def feature_jacobians(
     ValueError
         If a value or the step is not finite, or the sample period is not positive.
     """
-    return features_and_jacobians(order, thetas, sample_period_s, relative_step=relative_step)[1]
+    jac = features_and_jacobians(order, thetas, sample_period_s, relative_step=relative_step)[1]
+    return np.ascontiguousarray(jac)
 
 
 def features_and_jacobians(
@@ -639,13 +641,15 @@ def _jacobians(
         ts,
     )
     at_theta = values[:k]
-    jac = np.zeros((k, at_theta.shape[1], n))
+    # parameter- and feature-major in memory, rows innermost: whole-row
+    # operations then run over long contiguous stretches
+    jac = np.zeros((at_theta.shape[1], n, k)).transpose(2, 0, 1)
     undefined = ~np.isfinite(at_theta)
     if undefined.any():
         jac[undefined] = np.nan  # (f - f) / width where f is not finite
     if na:
-        f_up, f_down = values[k:].reshape(2, na, k, -1)
-        jac[:, :, :na] = ((f_up - f_down) / width[:, :na].T[:, :, None]).transpose(1, 2, 0)
+        f_up, f_down = values.T[:, k:].reshape(-1, 2, na, k).transpose(1, 0, 2, 3)
+        jac[:, :, :na] = ((f_up - f_down) / width[:, :na].T).transpose(2, 0, 1)
     a_at_one = 1.0 + _sequential_sum(th[:, :na])
     with np.errstate(divide="ignore", invalid="ignore"):
         for i in range(order.n_inputs):

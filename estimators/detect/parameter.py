@@ -953,12 +953,12 @@ class FeatureDrift(_WaldDrift):
         # finite sum).
         k, m = f.shape
         na = self.config.order.na
-        left = np.zeros((k, m, covs.shape[2]))
+        left = np.zeros((m, covs.shape[2], k)).transpose(2, 0, 1)  # rows innermost
         for i in range(na):
             left = left + jac[:, :, i, None] * covs[:, None, i, :]
         for r, i in self._moved:
             left[:, r, :] += jac[:, r, i, None] * covs[:, i, :]
-        cf = np.zeros((k, m, m))
+        cf = np.zeros((m, m, k)).transpose(2, 0, 1)
         for j in range(na):
             cf = cf + left[:, :, None, j] * jac[:, None, :, j]
         for r, j in self._moved:
