@@ -93,6 +93,7 @@ from numpy.typing import NDArray
 from arxwatch.daemon.align import AddOutcome, AlignConfig, _mode_label
 from arxwatch.estimators.detect.evidence import Evidence
 from arxwatch.estimators.detect.quality import QualityConfig
+from arxwatch.estimators.estimator import Backend, resolve_backend
 
 __all__ = ["OUTCOMES", "IntakeBank", "IntakeOutcome", "RowBatch", "cells_for"]
 
@@ -308,6 +309,11 @@ class IntakeBank:
         see the module notes. Default 4; at least 2.
     max_mode_labels : int, optional
         Distinct mode labels the bank codes, 1 to 32767. Default 64.
+    backend : {"python", "compiled", "auto"}, optional
+        How :meth:`add_many` takes a row on its array path: numpy calls, or
+        one call into numba-compiled code
+        (:mod:`arxwatch.daemon.intakenative`, the optional ``fast`` extra);
+        the same state, outcomes and evidence. Default ``"python"``.
 
     Attributes
     ----------
@@ -327,6 +333,8 @@ class IntakeBank:
         signal, or ``staleness_s`` or ``lateness_s`` exceed ``2**50`` periods.
     TypeError
         If a quality value is not a :class:`QualityConfig`.
+    ImportError
+        If ``backend`` is ``"compiled"`` and numba is not installed.
 
     Examples
     --------
@@ -351,6 +359,7 @@ class IntakeBank:
         capacity: int = 64,
         cells: int = 4,
         max_mode_labels: int = 64,
+        backend: Backend = "python",
     ) -> None:
         for name, value, low, high in (
             ("capacity", capacity, 1, None),
@@ -386,6 +395,12 @@ class IntakeBank:
         self.config = config
         self.cells = cells
         self.max_mode_labels = max_mode_labels
+        self.backend = resolve_backend(backend)
+        self._native: Callable[..., int] | None = None
+        if self.backend == "compiled":
+            from arxwatch.daemon.intakenative import take_row
+
+            self._native = take_row
         #: (slot, signal) pairs that took their last free cell in :meth:`add`;
         #: :meth:`advance` removes the slots it advances. A caller feeding a
         #: burst advances the asset before giving a crowded signal another
@@ -425,6 +440,7 @@ class IntakeBank:
             .reshape(-1, 3)
             .T
         )
+        self._quality_rows = np.ascontiguousarray(self._quality_table)  # for the compiled path
         self._mode_index = len(self.signals) - 1 if config.mode is not None else -1
         self._count_keys = (
             *(o for o in _OUTCOMES if o != "unknown_signal"),
@@ -434,6 +450,9 @@ class IntakeBank:
             "overflow",
         )
         self._column = {key: i for i, key in enumerate(self._count_keys)}
+        self._native_columns = np.array(
+            [self._column[key] for key in ("accepted", "out_of_range", "overflow")], dtype=np.intp
+        )
         self._n_counts = len(self._count_keys)
         self._axes = {
             "signal": len(self.signals),
@@ -467,14 +486,18 @@ class IntakeBank:
         them as Python numbers several times faster than numpy indexing.
         """
         self._arrays = arrays
-        self._flat = {name: array.reshape(-1).data for name, array in arrays.items()}
+        self._flat_arrays = {name: _flat(array) for name, array in arrays.items()}
+        self._flat = {name: array.data for name, array in self._flat_arrays.items()}
         self._capacity = int(arrays["in_use"].shape[0])
         self._slots_changed()
 
     def _slots_changed(self) -> None:
         """Forget what was worked out from the slots in use (they or the arrays changed)."""
-        # the slots and signals last found ready for add_many, and their flat pairs
-        self._ready: tuple[NDArray[np.intp], NDArray[np.intp], NDArray[np.intp]] | None = None
+        # the slots and signals last found ready for add_many, their flat (slot, signal)
+        # pairs and flat (slot, checked signal) positions (-1: not checked)
+        self._ready: (
+            tuple[NDArray[np.intp], NDArray[np.intp], NDArray[np.intp], NDArray[np.intp]] | None
+        ) = None
         # slots in use, and the flat positions of their checked signals' newest times
         self._in_use: tuple[NDArray[np.intp], NDArray[np.intp]] | None = None
 
@@ -657,6 +680,8 @@ class IntakeBank:
         arrays = self._arrays
         period = self.config.sample_period_s
         cell = _first_index(time_s, period)
+        if self._native is not None:
+            return self._add_native(pairs, slots, signals, time_s, values, usable, cell)
         newest = _flat(arrays["newest"])
         old_newest = newest[pairs]
         if usable.any() and cell * period <= time_s + self.config.staleness_s:
@@ -681,6 +706,63 @@ class IntakeBank:
         low = int(at.min())
         _flat(arrays["counts"])[low : int(at.max()) + 1] += np.bincount(at - low).astype(np.int32)
         return outcome
+
+    def _add_native(
+        self,
+        pairs: NDArray[np.intp],
+        slots: NDArray[np.intp],
+        signals: NDArray[np.intp],
+        time_s: float,
+        values: NDArray[np.float64],
+        usable: NDArray[np.bool_],
+        cell: int,
+    ) -> NDArray[np.intp]:
+        """Take a row on the array path of :meth:`add_many` in one compiled call."""
+        if self._native is None:  # never: add_many calls it with a compiled kernel only
+            raise AssertionError("no compiled intake kernel")
+        a = self._flat_arrays
+        k = slots.shape[0]
+        crowded = np.zeros(k, dtype=np.bool_)
+        pending = np.empty((k, _CHECK_FIELDS))
+        ready = self._ready  # set by _vector_ready for these slots and signals
+        if ready is None:  # never: add_many found them ready just now
+            raise AssertionError("add_many's row was not checked")
+        queued = self._native(
+            pairs,
+            slots,
+            ready[3],
+            float(time_s),
+            np.ascontiguousarray(values, dtype=np.float64),
+            np.ascontiguousarray(usable, dtype=np.bool_),
+            cell,
+            self.config.sample_period_s,
+            self.config.staleness_s,
+            self.cells,
+            a["time"],
+            a["value"],
+            a["newest"],
+            a["first_index"],
+            a["last_index"],
+            a["counts"],
+            self._native_columns,
+            self._quality_rows,
+            a["gap_count"],
+            a["gap_total_s"],
+            a["run_min"],
+            a["run_max"],
+            a["run_start_s"],
+            a["has_moved"],
+            int(_OPEN),
+            crowded,
+            pending,
+        )
+        if crowded.any():
+            self.crowded.update(
+                zip(slots[crowded].tolist(), signals[crowded].tolist(), strict=True)
+            )
+        if queued:
+            self._pending.frombytes(pending[:queued].tobytes())
+        return np.where(usable, _OUTCOME_CODE["accepted"], _OUTCOME_CODE["out_of_range"])
 
     def _vector_ready(
         self,
@@ -707,7 +789,9 @@ class IntakeBank:
             if found is None:
                 return None
             pairs = found
-            self._ready = (slots, signals, pairs)
+            quality_of = self._quality_of_array[signals]
+            checks = np.where(quality_of >= 0, slots * len(self.quality_signals) + quality_of, -1)
+            self._ready = (slots, signals, pairs, checks)
         if not np.isfinite(values).all():
             return None
         newest = _flat(self._arrays["newest"])[pairs]

@@ -247,7 +247,9 @@ class _Class:
         # as many cells per signal as the lateness needs; feed() advances an
         # asset whose cells filled (IntakeBank.crowded), so none overflows
         align = config.align_config()
-        self.intake = IntakeBank(align, quality, cells=cells_for(align) + extra_cells)
+        self.intake = IntakeBank(
+            align, quality, cells=cells_for(align) + extra_cells, backend=backend
+        )
         self.fleet = FleetMonitor(
             config.signal_names(),
             config.monitor_config(),

@@ -14,11 +14,13 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
+import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from arxwatch.daemon.align import AlignConfig, Aligner, Row
 from arxwatch.daemon.intake import OUTCOMES, IntakeBank, RowBatch
+from arxwatch.estimators import native
 from arxwatch.estimators.detect import Evidence, QualityConfig, SignalQuality
 
 T0 = 1_767_225_600.0  # 2026-01-01T00:00:00Z
@@ -441,23 +443,46 @@ def rows_of_samples(draw: st.DrawFn, setup: Setup) -> list[Op]:
     return ops
 
 
+@pytest.mark.parametrize(
+    "backend",
+    [
+        "python",
+        pytest.param(
+            "compiled",
+            marks=pytest.mark.skipif(not native.available(), reason="numba is not installed"),
+        ),
+    ],
+)
 @settings(max_examples=150, deadline=None)
 @given(data=st.data())
-def test_add_many_is_add_one_by_one(data: st.DataObject) -> None:
-    # The array path of a trend export row against the per-sample path it stands for.
+def test_add_many_is_add_one_by_one(backend: str, data: st.DataObject) -> None:
+    # The array path of a trend export row (numpy calls, or one compiled call) against
+    # the per-sample path it stands for.
     setup = data.draw(setups())
     ops = data.draw(rows_of_samples(setup))
-    many = IntakeBank(setup.config, setup.quality, capacity=1, cells=setup.cells)
+    many = IntakeBank(
+        setup.config,
+        setup.quality,
+        capacity=1,
+        cells=setup.cells,
+        backend=backend,  # type: ignore[arg-type]
+    )
     one = IntakeBank(setup.config, setup.quality, capacity=1, cells=setup.cells)
     slots = [many.add_asset() for _ in range(setup.assets)]
     assert slots == [one.add_asset() for _ in range(setup.assets)]
+    columns: dict[tuple[int, ...], tuple[np.ndarray, np.ndarray]] = {}
     for op in ops:
         if op[0] == "row":
             _, t, row = op
             numbers = [(a, s, v, u) for a, s, v, u in row if not isinstance(v, str)]
+            key = tuple(x for a, s, _, _ in numbers for x in (slots[a], s))
+            if key not in columns:  # the same arrays for the same columns, as a trend export
+                columns[key] = (
+                    np.array([slots[a] for a, *_ in numbers], dtype=np.intp),
+                    np.array([s for _, s, _, _ in numbers], dtype=np.intp),
+                )
             got = many.add_many(
-                np.array([slots[a] for a, *_ in numbers], dtype=np.intp),
-                np.array([s for _, s, _, _ in numbers], dtype=np.intp),
+                *columns[key],
                 t,
                 np.array([v for *_, v, _ in numbers], dtype=np.float64),
                 np.array([u for *_, u in numbers], dtype=np.bool_),
