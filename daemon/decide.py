@@ -546,16 +546,16 @@ class TrackerBank:
             The transitions, in the order of ``rows``.
         """
         policy = self.policy
-        stat = np.asarray(statistic, dtype=np.float64)
-        limit = np.broadcast_to(np.asarray(threshold, dtype=np.float64), stat.shape)
         alarm = np.asarray(alarm, dtype=np.bool_)
-        when = np.broadcast_to(np.asarray(time_s, dtype=np.float64), stat.shape)
         # A quiet evaluation of a quiet episode changes nothing that matters
         # (see observe_one): work on the others only.
         busy = alarm | self.raised[rows, key] | (self.alarms[rows, key] != 0)
+        if not busy.any():  # the usual case: settled before anything else is made
+            return []
+        stat = np.asarray(statistic, dtype=np.float64)
+        limit = np.broadcast_to(np.asarray(threshold, dtype=np.float64), stat.shape)
+        when = np.broadcast_to(np.asarray(time_s, dtype=np.float64), stat.shape)
         if not busy.all():
-            if not busy.any():
-                return []
             if isinstance(rows, slice):
                 rows = np.arange(rows.start, rows.stop, dtype=np.intp)
             picked = np.flatnonzero(busy)

@@ -559,15 +559,18 @@ class _Group:
             phi = self._regressor("base", rc, [u_r[:, i] for i in range(u.shape[1])])
             theta = a["theta0"][:, rc]
             cov = a["cov0"][:, rc]
-            prediction = np.zeros(y_r.shape[0])
-            spread = np.zeros(y_r.shape[0])
-            n = self.order.n_params
+            # phi' theta and phi' C phi, each sum in index order from 0.0 as the
+            # compiled kernel and AssetMonitor add; C phi for every row at once
+            n, k = self.order.n_params, y_r.shape[0]
+            phi_a = np.stack(phi)
+            products = cov[self.tri_index] * phi_a  # (j, i, row): C[j, i] phi[i]
+            prediction, inner, spread = np.zeros(k), np.zeros((n, k)), np.zeros(k)
+            for i in range(n):
+                prediction += phi_a[i] * theta[i]
+                inner += products[:, i]
+            inner *= phi_a
             for j in range(n):
-                prediction += phi[j] * theta[j]
-                inner = np.zeros(y_r.shape[0])
-                for i in range(n):
-                    inner += cov[self.tri_index[j, i]] * phi[i]
-                spread += phi[j] * inner
+                spread += inner[j]
             e = y_r - prediction
             z = e / np.sqrt(a["sigma2"][rc] + spread)
             tap["base"] = (rp, prediction, z)
