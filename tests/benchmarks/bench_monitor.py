@@ -19,8 +19,10 @@ rows:
 
 - numpy (``backend="python"``, what ``arxwatch run`` uses): FleetMonitor.step,
   which does everything AssetMonitor does for every asset of a sample time
-  in one vectorised pass, against the batched RLS update alone
-  (BatchRls.update on ready-made regressors);
+  in one vectorised pass, against the estimate alone from the same samples
+  (each row's regressor from the histories, BatchRls.update, the histories
+  pushed: what ArxEstimator.update does per asset); the bare update on
+  ready-made regressors is printed beside it;
 - compiled (``backend="compiled"``, numba, the ``fast`` extra, what
   ``arxwatch replay`` uses when numba is installed): the innovation
   detectors and the live estimate a row at a time in compiled code (waves
@@ -153,6 +155,37 @@ def fleet_figures(baseline: Baseline, count: int, steps: int, repeat: int) -> No
             batch.update(phi[k], y_all[k], u_all[k][:, None])
         return (clock() - start) / (timed * count)
 
+    def estimate_only() -> float:
+        """Time the numpy estimate from samples: regressor from histories, update, push.
+
+        What ArxEstimator.update does per asset and the fleet's numpy path
+        does per wave (step 2 of _Group.step), with BatchRls.update.
+        """
+        batch = BatchRls(order.n_params, 1, count, config)
+        hist_y = np.zeros((order.na, count))
+        hist_u = np.zeros((max(order.input_depth - 1, 0), count))
+        (nb,), (nk,) = order.nb, order.nk
+        ones = np.ones(count)
+
+        def run(k: int) -> None:
+            u_k, y_k = u_all[k], y_all[k]
+            columns = [-hist_y[j] for j in range(order.na)]
+            columns += [u_k if lag == 0 else hist_u[lag - 1] for lag in range(nk, nk + nb)]
+            if order.constant:
+                columns.append(ones)
+            batch.update(np.stack(columns, axis=1), y_k, u_k[:, None])
+            hist_y[1:] = hist_y[:-1].copy()
+            hist_y[0] = y_k
+            hist_u[1:] = hist_u[:-1].copy()
+            hist_u[0] = u_k
+
+        for k in range(warm):
+            run(k)
+        start = clock()
+        for k in range(warm, steps):
+            run(k)
+        return (clock() - start) / (timed * count)
+
     def live_only() -> float:
         """Time the compiled fleet's live estimate alone, called as the fleet calls it."""
         layout = StateLayout(order.n_params, order.n_inputs)
@@ -197,14 +230,16 @@ def fleet_figures(baseline: Baseline, count: int, steps: int, repeat: int) -> No
             run(k)
         return (clock() - start) / (timed * count)
 
-    # back end -> (reference label, reference timer)
+    # back end -> (reference label, reference timer); "rls" is a bare-update figure beside them
     backends: dict[str, tuple[str, Callable[[], float]]] = {
-        "python": ("batched RLS alone (BatchRls.update)", rls_only)
+        "python": ("estimate alone (phi, RLS, histories)", estimate_only)
     }
     if available():
         backends["compiled"] = ("live estimate alone (kernels.live)", live_only)
     best = {f"{b}/{part}": float("inf") for b in backends for part in ("reference", "fleet")}
+    best["rls"] = float("inf")
     for _ in range(repeat):  # interleaved, so a busy moment hits every figure alike
+        best["rls"] = min(best["rls"], rls_only())
         for backend, (_, reference) in backends.items():
             best[f"{backend}/reference"] = min(best[f"{backend}/reference"], reference())
             best[f"{backend}/fleet"] = min(best[f"{backend}/fleet"], fleet(backend))
@@ -215,6 +250,9 @@ def fleet_figures(baseline: Baseline, count: int, steps: int, repeat: int) -> No
     for backend, (label, _) in backends.items():
         ref_ns, fleet_ns = best[f"{backend}/reference"] * 1e9, best[f"{backend}/fleet"] * 1e9
         print(f"  {backend} back end")
+        if backend == "python":
+            rls_ns = best["rls"] * 1e9
+            print(f"    {'RLS update alone (BatchRls.update)':37s} {rls_ns:8.0f} ns/asset-row")
         print(f"    {label:37s} {ref_ns:8.0f} ns/asset-row")
         print(f"    {'whole fleet (FleetMonitor.step)':37s} {fleet_ns:8.0f} ns/asset-row")
         print(
