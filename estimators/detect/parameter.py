@@ -28,6 +28,17 @@ are dropped, :math:`d^2 = \sum_{i \in \text{kept}} (v_i^T \delta)^2 / \lambda_i`
 kept. The difference along a dropped direction carries no evidence either
 way, so it is not tested.
 
+Units. The rank is decided on S in units of each entry's own spread,
+:math:`R = D^{-1/2} S D^{-1/2}` with :math:`D = \mathrm{diag}(S)`, and
+:math:`d^2 = (D^{-1/2}\delta)^T R^+ (D^{-1/2}\delta)`. Unscaled, a time
+constant in seconds (variance ~1e3 s^2) beside a gain (~1e-7) gives S a
+condition number near 1e10, and a slower loop would push the gain's
+direction under the cut-off: the test would stop looking at the gain
+because of the units of another feature. At full rank the distance is the
+same (:math:`D^{-1/2} R^{-1} D^{-1/2} = S^{-1}`); on a singular S it is the
+same for a difference in the range of S, since :math:`D^{-1/2} R^+
+D^{-1/2}` is a generalized inverse of S (Rao and Mitra).
+
 Empirical threshold. The chi-square law holds only as far as the covariances
 are right; RLS covariances with forgetting are only approximate. A threshold
 can instead be learned from d2 values seen during the baseline period with
@@ -98,7 +109,8 @@ def wald_distance(
         Symmetric positive semi-definite covariance of the difference.
     rcond : float, optional
         Eigenvalues at or below ``rcond`` times the largest are treated as
-        zero. Default 1e-10.
+        zero, those of the covariance scaled to a unit diagonal (module
+        notes). Default 1e-10.
 
     Returns
     -------
@@ -186,6 +198,12 @@ def wald_distances(
         raise ValueError("delta and covariance must be finite")
     n = d.shape[1]
     sym = 0.5 * (s + s.transpose(0, 2, 1))
+    # in units of each entry's own spread (unit diagonal), so that the rank
+    # does not depend on the units (see the module notes)
+    diagonal = np.diagonal(sym, axis1=1, axis2=2)
+    spread = np.sqrt(np.where(diagonal > 0.0, diagonal, 1.0))
+    d = d / spread
+    sym = sym / spread[:, :, None] / spread[:, None, :]
     d2, full = _full_rank_distances(d, sym, rcond)
     rank = np.where(full, n, 0).astype(np.intp)
     rest = np.flatnonzero(~full)
@@ -204,9 +222,7 @@ def _full_rank_distances(d: _Vector, s: _Vector, rcond: float) -> tuple[_Vector,
     certified row the condition number is below 1 / rcond, so the rounding
     of the factors and of eigh's eigenvalues stays within some
     ``n**2 eps / rcond``; ``mu = 1000 n**2 eps / rcond`` covers it (2e-2 for
-    three features and rcond 1e-10: the feature covariances of a running
-    fleet have condition numbers near 1e10, so the margin must be that
-    narrow). Other rows (d2 meaningless there) go to
+    three features and rcond 1e-10). Other rows (d2 meaningless there) go to
     :func:`_range_distances`. Column operations over the rows: for the few
     features tested, cheaper than one LAPACK call per row (Golub and Van
     Loan, *Matrix Computations*, 4th ed., 2013, section 4.1, LDL').

@@ -219,12 +219,22 @@ def test_wald_distance_equals_direct_numpy() -> None:
     d2, rank = wald_distance(delta, s)
     assert rank == 5
     assert d2 == pytest.approx(float(delta @ np.linalg.solve(s, delta)), rel=1e-10)
-    # Singular S: numpy.linalg.pinv with the same cut-off.
+    # Singular S: numpy.linalg.pinv with the same cut-off, on S in units of
+    # each entry's spread (D^-1/2 S D^-1/2, the module notes) ...
     b = rng.standard_normal((5, 3))
     s_low = b @ b.T
     d2, rank = wald_distance(delta, s_low)
     assert rank == 3
-    assert d2 == pytest.approx(float(delta @ np.linalg.pinv(s_low, rcond=1e-10) @ delta), rel=1e-8)
+    spread = np.sqrt(np.diag(s_low))
+    unit = s_low / np.outer(spread, spread)
+    z = delta / spread
+    assert d2 == pytest.approx(float(z @ np.linalg.pinv(unit, rcond=1e-10) @ z), rel=1e-8)
+    # ... which for a difference in the range of S is delta' S^+ delta, as
+    # any generalized inverse gives (Rao and Mitra 1971, quadratic forms).
+    in_range = s_low @ rng.standard_normal(5)
+    d2, rank = wald_distance(in_range, s_low)
+    expected = float(in_range @ np.linalg.pinv(s_low, rcond=1e-10) @ in_range)
+    assert d2 == pytest.approx(expected, rel=1e-8)
 
 
 def test_false_alarm_rate_is_alpha_for_a_linear_gaussian_model() -> None:

@@ -103,11 +103,13 @@ def test_singular_covariance_falls_back_to_its_range() -> None:
 
 @pytest.mark.parametrize("n", [1, 2, 3, 5])
 def test_distances_near_the_rank_cut_off_agree_with_eigh(n: int) -> None:
-    # Reference: numpy.linalg.eigh, the eigenvalues above rcond times the
+    # Reference: numpy.linalg.eigh of the covariance in units of each
+    # entry's spread (unit diagonal), the eigenvalues above rcond times the
     # largest kept and d2 summed over them (the pseudo-inverse on the kept
-    # range). Smallest over largest eigenvalue spread around rcond = 1e-10,
-    # as the feature covariances of a running fleet are (tau in s^2 next
-    # to gains): the factored path must keep exactly the same rank.
+    # range). Smallest over largest eigenvalue spread around rcond = 1e-10:
+    # the factored path must keep exactly the same rank. Then each entry
+    # is put in other units (spreads from 1e-6 to 1e6, as a gain beside a
+    # time constant in seconds): rank and d2 must not change.
     rng = np.random.default_rng(n)
     k = 2000
     q, _ = np.linalg.qr(rng.normal(size=(k, n, n)))
@@ -115,11 +117,13 @@ def test_distances_near_the_rank_cut_off_agree_with_eigh(n: int) -> None:
     eigenvalues[:, 0] = 1.0
     if n > 1:
         eigenvalues[:, -1] = 1e-10 * 10 ** rng.uniform(-0.05, 0.05, size=k)
-    eigenvalues *= 10 ** rng.uniform(-6.0, 6.0, size=(k, 1))
     cov = q @ (eigenvalues[:, :, None] * q.transpose(0, 2, 1))
-    delta = rng.normal(size=(k, n)) * np.sqrt(np.diagonal(cov, axis1=1, axis2=2))
-    d2, rank = wald_distances(delta, cov)
-    w, v = np.linalg.eigh(0.5 * (cov + cov.transpose(0, 2, 1)))
+    spread = np.sqrt(np.diagonal(cov, axis1=1, axis2=2))
+    unit = cov / spread[:, :, None] / spread[:, None, :]  # unit diagonal
+    unit = 0.5 * (unit + unit.transpose(0, 2, 1))
+    delta = rng.normal(size=(k, n))
+    d2, rank = wald_distances(delta, unit)
+    w, v = np.linalg.eigh(unit)
     keep = w > 1e-10 * w[:, -1:]
     projected = np.einsum("kij,ki->kj", v, delta)
     expected = np.where(keep, projected**2 / w, 0.0).sum(axis=1)
@@ -127,6 +131,12 @@ def test_distances_near_the_rank_cut_off_agree_with_eigh(n: int) -> None:
     # Tolerance: both are backward stable, so they agree to about the
     # condition number (1e10) times eps, relative.
     np.testing.assert_allclose(d2, expected, rtol=1e-4)
+    units = 10 ** rng.uniform(-6.0, 6.0, size=(k, n))
+    d2_units, rank_units = wald_distances(
+        delta * units, unit * units[:, :, None] * units[:, None, :]
+    )
+    np.testing.assert_array_equal(rank_units, rank)
+    np.testing.assert_allclose(d2_units, d2, rtol=1e-4)
 
 
 def test_empirical_threshold_from_calibrate_is_used() -> None:
