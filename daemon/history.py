@@ -760,10 +760,8 @@ class HistoryReader:
             yield Recorded(time_s, topic, payload, False, number)
 
 
-def _read_ahead(arguments: str) -> None:
+def _read_ahead(path: str, on_bad_line: BadLinePolicy, zone: str) -> None:
     """Child process of :meth:`HistoryReader.blocks` with ``ahead``: read, write, end."""
-    path_list, path, on_bad_line, zone = json.loads(arguments)
-    sys.path[:] = path_list
     out = sys.stdout.buffer
     reader = HistoryReader(path, kind="csv", on_bad_line=on_bad_line, zone=zone)
     try:
@@ -779,9 +777,14 @@ def _read_ahead(arguments: str) -> None:
     out.flush()
 
 
-#: What the child process of :meth:`HistoryReader.blocks` with ``ahead`` runs.
+#: What the child process of :meth:`HistoryReader.blocks` with ``ahead`` runs: the parent's
+#: import path first (the package may be importable only through it), then the reading.
 _AHEAD_MAIN: Final = (
-    "import sys; from arxwatch.daemon.history import _read_ahead; _read_ahead(sys.argv[1])"
+    "import json, sys\n"
+    "arguments = json.loads(sys.argv[1])\n"
+    "sys.path[:] = arguments[0]\n"
+    "from arxwatch.daemon.history import _read_ahead\n"
+    "_read_ahead(*arguments[1:])\n"
 )
 
 
