@@ -97,6 +97,15 @@ class HistoryError(ValueError):
         return HistoryError, (self.path, self.line, self.reason)
 
 
+class _Broken(Exception):
+    """Compressed data breaks off at ``line``; raised for a reader in blocks to apply its policy."""
+
+    def __init__(self, line: int, reason: str) -> None:
+        super().__init__(reason)
+        self.line = line
+        self.reason = reason
+
+
 @dataclass(frozen=True, slots=True)
 class Recorded:
     """One value of a recorded file, ready for :meth:`Pipeline.feed`.
@@ -462,7 +471,7 @@ class HistoryReader:
             yield from self._blocks_ahead()
             return
         with self._open() as handle:
-            yield from self._blocks(self._counted(handle))
+            yield from self._blocks(self._counted(handle, defer=True))
 
     def _state(self) -> tuple[Any, ...]:
         """Return the tallies a reader reading ahead sends its parent with each block."""
@@ -529,7 +538,12 @@ class HistoryReader:
                 child.terminate()
             child.wait()
 
-    def _counted(self, handle: IO[str]) -> Iterator[str]:
+    def _counted(self, handle: IO[str], *, defer: bool = False) -> Iterator[str]:
+        """Hand out the lines, counted; stop or count a break in compressed data.
+
+        With ``defer`` a break raises :class:`_Broken` whatever the policy:
+        the caller reads the lines before it first, then calls :meth:`_bad`.
+        """
         try:
             for line in handle:
                 self.chars_read += len(line)
@@ -537,7 +551,10 @@ class HistoryReader:
                 yield line
         except (EOFError, gzip.BadGzipFile, zlib.error) as err:
             # a compressed file cut short (a capture killed mid-write) or damaged
-            self._bad(self._handed + 1, f"compressed data ends or breaks here: {err}")
+            message = f"compressed data ends or breaks here: {err}"
+            if defer:
+                raise _Broken(self._handed + 1, message) from None
+            self._bad(self._handed + 1, message)
 
     def _bad(self, line: int, message: str) -> None:
         """Stop or count an unreadable line."""
@@ -561,24 +578,30 @@ class HistoryReader:
     # -- trend export ---------------------------------------------------------
     def _blocks(self, lines: Iterator[str]) -> Iterator[TrendBlock]:
         rows = csv.reader(lines, strict=True)
-        width = self._header(rows)  # the csv module reads no further than the header's lines
+        try:
+            width = self._header(rows)  # the csv module reads no further than the header's lines
+        except _Broken as err:
+            self._bad(err.line, err.reason)
+            width = self._header(rows)  # the file ends within the header: as rows() reads it
         limit = csv.field_size_limit()
         while True:
             chunk: list[str] = []
-            broken: HistoryError | None = None
+            broken: _Broken | None = None
             try:
                 chunk.extend(itertools.islice(lines, BLOCK_LINES))
-            except HistoryError as err:  # a compressed file breaks off (it stops there)
+            except _Broken as err:  # compressed data breaks off: the file ends there
                 broken = err
-            if not chunk and broken is None:
-                return
             if any('"' in line or "\x00" in line or len(line) > limit for line in chunk):
                 # quoted cells (a line break may be in one), NUL, huge fields: the csv module
-                yield from self._csv_blocks(itertools.chain(chunk, lines), width, self.lines)
-                return
-            yield from self._chunk(chunk, width)
+                rest = iter(()) if broken is not None else lines
+                yield from self._csv_blocks(itertools.chain(chunk, rest), width, self.lines)
+            elif chunk:
+                yield from self._chunk(chunk, width)
+                if broken is None:
+                    continue
             if broken is not None:
-                raise broken
+                self._bad(broken.line, broken.reason)
+            return
 
     def _csv_blocks(self, lines: Iterable[str], width: int, before: int) -> Iterator[TrendBlock]:
         """Blocks of the rows the csv module reads from ``lines`` (line ``before + 1`` on)."""
@@ -589,9 +612,12 @@ class HistoryReader:
                 if len(rows) == BLOCK_LINES:
                     yield TrendBlock.of_rows(rows)
                     rows = []
-        except HistoryError:
+        except (HistoryError, _Broken) as err:
             if rows:  # the rows before the line that stops the reading come first
                 yield TrendBlock.of_rows(rows)
+            if isinstance(err, _Broken):  # compressed data breaks off: the file ends there
+                self._bad(err.line, err.reason)
+                return
             raise
         if rows:
             yield TrendBlock.of_rows(rows)

@@ -100,15 +100,24 @@ def test_blocks_read_ahead_by_a_child_agree_with_rows(tmp_path: Path, policy: st
     assert (ahead[1] is None) == (policy == "skip")
 
 
-def test_blocks_of_a_broken_gzip_file(tmp_path: Path) -> None:
-    text = HEADER + "".join(f"{1767225600 + 60 * k},{k},{k},{k}\n" for k in range(3000))
-    packed = gzip.compress(text.encode())
+@pytest.mark.parametrize("quoted", [False, True])
+@pytest.mark.parametrize("policy", ["stop", "skip"])
+def test_blocks_of_a_broken_gzip_file(tmp_path: Path, policy: str, quoted: bool) -> None:
+    lines = [f"{1767225600 + 60 * k},{k},{k},{k}\n" for k in range(3000)]
+    lines[1200] = "1767297600,1,2\n"  # a field short, in the block where the data breaks off
+    if quoted:
+        lines[1100] = '1767291600,"1",2,3\n'
+    packed = gzip.compress((HEADER + "".join(lines)).encode())
     path = tmp_path / "t.csv.gz"
-    path.write_bytes(packed[: len(packed) // 2])  # cut short
-    for policy in ("stop", "skip"):
-        by_block = read(path, policy, blocks=True)
-        assert by_block == read(path, policy, blocks=False)
-        assert "compressed data ends or breaks here" in str(by_block[1] or by_block[2][2])
+    path.write_bytes(packed[: len(packed) // 2])  # cut short: breaks off near line 1,500
+    by_block = read(path, policy, blocks=True)
+    assert by_block == read(path, policy, blocks=False)
+    rows, error, (lines_read, bad, first, _), _ = by_block
+    if policy == "stop":
+        assert error is not None and ":1202: 3 fields" in error
+    else:
+        assert bad == 2 and first is not None and ":1202: 3 fields" in first
+        assert len(rows) > 1300
 
 
 def test_blocks_header_errors_and_captures(tmp_path: Path) -> None:
