@@ -65,7 +65,7 @@ from arxwatch.estimators.native import NON_FINITE
 from arxwatch.estimators.readout import feature_names, read_out
 from arxwatch.estimators.rls import TRACE_CHECK_EVERY, StateLayout, build_kernel
 
-__all__ = ["DETECTORS", "FleetMonitor", "TraceSink"]
+__all__ = ["COMPILED_ROWS", "DETECTORS", "FleetMonitor", "TraceSink"]
 
 #: Every detector whose evidence can become an alert (stable names, metric labels).
 DETECTORS = (
@@ -98,7 +98,7 @@ _QUALITY_KINDS = ("out_of_range", "stuck", "gap", "stale")
 #: beyond a thousand channels or so the row's state no longer stays in the
 #: cache between rows, and the numpy path (column at a time, same bits) is
 #: faster (tests/benchmarks/bench_monitor.py).
-_COMPILED_ROWS = 1024
+COMPILED_ROWS = 1024
 
 #: State arrays the compiled kernels take, in their argument order.
 _BASE_STATE = ("base_y", "base_u", "base_count", "theta0", "cov0", "sigma2")
@@ -501,7 +501,7 @@ class _Group:
         """
         a, config = self.arrays, self.config
         self.tap = {}
-        if self.compiled is not None and ch.shape[0] <= _COMPILED_ROWS:
+        if self.compiled is not None and ch.shape[0] <= COMPILED_ROWS:
             # steps 1 and 2 compiled, then step 3 as below
             found, changing, due_eval = self._step_compiled(ch, time_s, y, u)
             if due_eval.any():

@@ -20,7 +20,7 @@ the tracker's transitions, the hourly evaluations, the evidence of a
 record) stay with the numpy code of :mod:`arxwatch.daemon.fleet`. A row at
 a time pays while a wave's state stays in the processor's cache: the fleet
 hands waves of more than about a thousand channels to its numpy path
-(``_COMPILED_ROWS``).
+(``COMPILED_ROWS``).
 
 numba is the optional ``fast`` extra, as for
 :mod:`arxwatch.estimators.native`: it is imported on the first kernel

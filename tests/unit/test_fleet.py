@@ -216,7 +216,7 @@ def test_compiled_backend_leaves_the_same_state_bit_for_bit(
     # for a checkpoint of one back end to continue on the other. "mixed":
     # waves of all six assets go the numpy way, smaller ones compiled.
     if largest is not None:
-        monkeypatch.setattr(fleet_module, "_COMPILED_ROWS", largest)
+        monkeypatch.setattr(fleet_module, "COMPILED_ROWS", largest)
     config = MonitorConfig(cusum=CusumConfig(h=5.0, after_alarm="restart"))
     states = []
     for backend in ("python", "compiled"):
