@@ -962,7 +962,8 @@ class DetectorsConfig:
     gain_tolerance, time_constant_tolerance : float or None
         Relative bands of the gain and the time constant.
     evaluate_every : int or None
-        Samples between parameter-based evaluations.
+        Sample periods between parameter-based evaluations (at the first
+        sample of each such period of sample time).
     reference_samples : int or None
         Samples at the start of monitoring (and after a restart of the
         histories) from which the normal correlation of the innovations is

@@ -17,8 +17,8 @@ floating-point operation is the same one in the same order:
   per-asset kernel bit for bit;
 * prewhitening, CUSUM, variance and whiteness repeat the scalar updates
   element-wise, and the rare steps (fitting a prewhitening filter, ending a
-  whiteness block, the parameter-based evaluations every
-  ``evaluate_every`` samples, building records) call the very functions the
+  whiteness block, the parameter-based evaluations at the first sample of
+  each evaluation period, building records) call the very functions the
   scalar detectors use, one channel at a time;
 * the alert lifecycle is :class:`~arxwatch.daemon.decide.TrackerBank`.
 
@@ -253,7 +253,6 @@ class _Group:
                 config.whiteness.window,
                 config.cusum.after_alarm == "restart",
                 config.variance.lower,
-                config.evaluate_every,
             ],
             dtype=np.int64,
         )
@@ -499,13 +498,13 @@ class _Group:
             Position in ``ch`` and key of each transition, with the evidence
             that caused it.
         """
-        a, config = self.arrays, self.config
+        a = self.arrays
         self.tap = {}
         if self.compiled is not None and ch.shape[0] <= COMPILED_ROWS:
             # steps 1 and 2 compiled, then step 3 as below
-            found, changing, due_eval = self._step_compiled(ch, time_s, y, u)
-            if due_eval.any():
-                dp = np.flatnonzero(due_eval)
+            found, changing, updated = self._step_compiled(ch, time_s, y, u)
+            if self.evaluation_due(time_s) and updated.any():
+                dp = np.flatnonzero(updated)
                 found += self._evaluate(dp, ch[dp], time_s[dp], changing[dp])
             return found
         sel = _as_slice(ch)
@@ -527,14 +526,15 @@ class _Group:
             y_hist[rp] = prediction + w * e
             a["samples"][rc] += 1
         self._push("rls", sel, y_hist, u)
-        # 3. parameter-based evaluations, every evaluate_every samples per channel
-        if ready.any():
-            rp, rc = _narrow(every, ready), _narrow(sel, ready)
-            due_eval = a["samples"][rc] % config.evaluate_every == 0
-            if due_eval.any():
-                dp = _indices(rp)[due_eval]
-                found += self._evaluate(dp, _indices(rc)[due_eval], time_s[dp], changing[dp])
+        # 3. parameter-based evaluations, at the first sample of each evaluation period
+        if ready.any() and self.evaluation_due(time_s):
+            dp = _indices(_narrow(every, ready))
+            found += self._evaluate(dp, _indices(_narrow(sel, ready)), time_s[dp], changing[dp])
         return found
+
+    def evaluation_due(self, time_s: Float) -> bool:
+        """Whether this wave's sample time (one for every row) starts an evaluation period."""
+        return self.config.evaluation_due(float(time_s[0]), self.sample_period_s)
 
     def _innovate(
         self, sel: Sel, time_s: Float, y: Float, u: Float
@@ -596,7 +596,7 @@ class _Group:
         path and the tracker's episodes touched (busy) are taken here, by the
         numpy path's code. Returns the transitions, per row whether an
         innovation alert was up before the row (``changing``), and the rows
-        due for an evaluation.
+        whose live estimate was updated.
 
         Raises
         ------
@@ -608,7 +608,7 @@ class _Group:
         out_f = np.empty((len(FLOAT_OUT), k))
         out_i = np.zeros((len(INT_OUT), k), dtype=np.int64)
         totals = np.zeros(len(TOTALS), dtype=np.int64)
-        live = np.zeros((2, k), dtype=np.int64)
+        live = np.zeros(k, dtype=np.int64)
         assert self.compiled is not None
         try:
             self.compiled.wave(
@@ -633,9 +633,9 @@ class _Group:
             )
         except NON_FINITE:
             raise ValueError("a sample for the live estimate is not finite") from None
-        due: NDArray[np.bool_] = live[1] != 0
+        updated: NDArray[np.bool_] = live != 0
         found, changing = self._innovated(ch, time_s, out_f, out_i, totals)
-        return found, changing, due
+        return found, changing, updated
 
     def _innovated(
         self,

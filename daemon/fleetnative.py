@@ -334,7 +334,7 @@ _add_value, _regressor, _push = fleetnative.compiled_helpers()
 
 @numba.njit(fastmath=False, error_model="numpy", cache={cache})
 def live(ch, y, u, structure, nb, nk, rls_y, rls_u, rls_count, rls, samples, constants, out):
-    constant, depth, every = structure[1], structure[2], structure[7]
+    constant, depth = structure[1], structure[2]
     size = rls.shape[0]
     s = np.empty(size)
     phi = np.empty({n})
@@ -350,8 +350,7 @@ def live(ch, y, u, structure, nb, nk, rls_y, rls_u, rls_count, rls, samples, con
                 rls[q, c] = s[q]
             y_hist = prediction + w * e
             samples[c] += 1
-            out[0, i] = 1
-            out[1, i] = samples[c] % every == 0
+            out[i] = 1
         _push(rls_y, rls_u, rls_count, c, y_hist, u, i, depth)
 
 
@@ -426,8 +425,8 @@ def group_kernels(layout: StateLayout, config: RlsConfig, ar_order: int, lags: i
     (:func:`~arxwatch.estimators.rls.kernel_source`, target ``"native"``,
     compiled as :mod:`arxwatch.estimators.native` compiles it: the same bits
     as the batched numpy kernel of the numpy path), the filter-cleaned
-    output into the histories, and the sample count; ``out[0]`` marks the
-    rows updated, ``out[1]`` those due for an evaluation. ``wave`` runs
+    output into the histories, and the sample count; ``out`` marks the rows
+    whose estimate was updated. ``wave`` runs
     :func:`_innovate` over the rows, then ``live``: one call per wave.
 
     The code is generated for the model structure, the prewhitening order

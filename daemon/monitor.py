@@ -12,9 +12,10 @@ same way. Per sample and per mode that has a baseline:
    feeds the CUSUM (offsets, bias), the variance test (noise) and the
    whiteness test (unmodelled dynamics);
 2. the **live estimator** (RLS warm-started from the baseline) tracks the
-   current model; every ``evaluate_every`` samples, once it has settled, its
-   physical read-out is compared with the baseline by a Wald test on the
-   features and by relative bands (gain, time constant, offset);
+   current model; at the first sample of every ``evaluate_every`` sample
+   periods of sample time (on the hour at the defaults), once it has
+   settled, its physical read-out is compared with the baseline by a Wald
+   test on the features and by relative bands (gain, time constant, offset);
 3. every evidence goes through the alert lifecycle, and transitions become
    alert records (:mod:`arxwatch.daemon.alert`).
 
@@ -86,7 +87,10 @@ class MonitorConfig:
     bands : BandsConfig
         Relative tolerances of gain, time constant and offset.
     evaluate_every : int
-        Samples between evaluations of the parameter-based detectors.
+        Sample periods between evaluations of the parameter-based detectors:
+        they run at the first sample of each ``evaluate_every`` periods of
+        sample time (:meth:`evaluation_due`), the same instants for every
+        asset of a class, whatever gaps each had.
     settle_memories : float
         Memories of the live estimator to wait after a start before the
         parameter-based detectors are judged.
@@ -133,6 +137,19 @@ class MonitorConfig:
             raise ValueError(f"clip_sigma must be >= 1, got {self.clip_sigma!r}")
         if not 0.0 < self.drift_alpha < 1.0:
             raise ValueError(f"drift_alpha must be in (0, 1), got {self.drift_alpha!r}")
+
+    def evaluation_due(self, time_s: float, sample_period_s: float) -> bool:
+        """Whether the sample at ``time_s`` is the first of an evaluation period.
+
+        Periods of ``evaluate_every * sample_period_s`` seconds of sample
+        time (from the epoch): on a grid of ``sample_period_s``, exactly one
+        sample of each period is the first, unless missing. On a clock, not
+        on each asset's sample count, so that a class's assets are judged
+        in the same sample time (one batched evaluation, however their gaps
+        fell) and a technician sees the hourly checks on the hour.
+        """
+        period = self.evaluate_every * sample_period_s
+        return math.floor(time_s / period) != math.floor((time_s - sample_period_s) / period)
 
     def evaluation_intervals(self, sample_period_s: float) -> dict[str, float]:
         """Seconds between evaluations of each behaviour detector, for the off-delay."""
@@ -249,7 +266,7 @@ class _ModeMonitor:
         self.history.clear()
         self.estimator.restart_history()
 
-    def step(self, y: float, u: Sequence[float]) -> list[Evidence]:
+    def step(self, time_s: float, y: float, u: Sequence[float]) -> list[Evidence]:
         """Judge one sample; return the evidence of every detector evaluated."""
         config, evidence = self.config, []
         history, y_past = self.history, y
@@ -273,7 +290,7 @@ class _ModeMonitor:
         if self.estimator.update(y, u) is None:
             return evidence
         self.samples += 1
-        if self.samples % config.evaluate_every != 0:
+        if not config.evaluation_due(time_s, self.baseline.sample_period_s):
             return evidence
         relearning = any(key.split("/")[0] in CHANGE_DETECTORS for key in self.tracker.active())
         if relearning:
@@ -398,7 +415,7 @@ class AssetMonitor:
         if monitor is None:
             self.skipped += 1
             return []
-        records = self._records(monitor, monitor.tracker, monitor.step(y, u), time_s)
+        records = self._records(monitor, monitor.tracker, monitor.step(time_s, y, u), time_s)
         if any(r["state"] == "raised" and r["detector"] in CHANGE_DETECTORS for r in records):
             monitor.estimator.inflate_covariance(self.config.reset_factor)
         return records

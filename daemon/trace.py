@@ -4,9 +4,10 @@ A :class:`FleetTrace` assigned to :attr:`FleetMonitor.trace
 <arxwatch.daemon.fleet.FleetMonitor.trace>` receives, for every row the
 fleet judges, the measured output, the baseline model's one-step prediction,
 the normalised innovation and both sides of the CUSUM; and for every
-evaluation of the parameter-based detectors (every ``evaluate_every`` rows
-of a channel, once settled) the live physical read-out (gains, time
-constant, dead times, offset), the baseline's values and band limits, and
+evaluation of the parameter-based detectors (at the first row of each
+``evaluate_every`` sample periods, once settled) the live physical
+read-out (gains, time constant, dead times, offset), the baseline's values
+and band limits, and
 the Wald distance of the read-out from the baseline with its limit. It only
 reads what the fleet computed anyway: the fleet's results are the same with
 or without a trace (``tests/unit/test_trace.py``).

@@ -141,6 +141,7 @@ def fleet_figures(baseline: Baseline, count: int, steps: int, repeat: int) -> No
     slots = np.arange(count)
     modes: list[str | None] = [None] * count
     no_restart = np.zeros(count, dtype=bool)
+    started = np.random.default_rng(7).integers(0, 60, size=count)  # first sample of each asset
 
     # Timed after a warm-up: the prewhitening reference (480 samples) and the
     # settling of the live estimate (500) are a start-up cost, paid once.
@@ -194,8 +195,8 @@ def fleet_figures(baseline: Baseline, count: int, steps: int, repeat: int) -> No
             layout, config, monitor_config.prewhiten.ar_order, monitor_config.whiteness.lags
         )
         kernel, constants = kernels.live, kernels.constants
-        # the entries of _Group.structure that live reads: constant, depth, evaluate_every
-        structure = np.array([order.na, order.constant, order.depth, 0, 0, 0, 0, 60])
+        # the entries of _Group.structure that live reads: constant, depth
+        structure = np.array([order.na, order.constant, order.depth, 0, 0, 0, 0])
         nb, nk = np.array(order.nb), np.array(order.nk)
         hist_u = max(order.input_depth - 1, 0)
         rls_y, rls_u = np.zeros((order.na, count)), np.zeros((1, hist_u, count))
@@ -203,7 +204,7 @@ def fleet_figures(baseline: Baseline, count: int, steps: int, repeat: int) -> No
         rls = np.tile(np.array(layout.initial(config.p0))[:, None], (1, count))
 
         def run(k: int) -> None:
-            out = np.zeros((2, count), dtype=np.int64)
+            out = np.zeros(count, dtype=np.int64)
             kernel(slots, y_all[k], u_all[k][:, None], structure, nb, nk, rls_y, rls_u,
                    rls_count, rls, samples, constants, out)  # fmt: skip
 
@@ -224,7 +225,14 @@ def fleet_figures(baseline: Baseline, count: int, steps: int, repeat: int) -> No
                 slots, np.full(count, times[k]), y_all[k], u_all[k][:, None], modes, no_restart
             )
 
-        for k in range(warm):
+        # The assets start over an hour, as a site's do (commissioned, back
+        # from a gap or a restart at different times): their samples are
+        # not in step with each other's.
+        for k in range(60):
+            rows = slots[started <= k]
+            mon.step(rows, np.full(rows.shape[0], times[k]), y_all[k, rows],
+                     u_all[k, rows][:, None], modes[: rows.shape[0]], no_restart[rows])  # fmt: skip
+        for k in range(60, warm):
             run(k)
         start = clock()
         for k in range(warm, steps):

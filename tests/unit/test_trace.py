@@ -147,8 +147,8 @@ def test_trace_holds_the_readable_twins_numbers(baseline: Baseline, plant: dict)
     seen: list = []
     judge = twin.step
 
-    def step_and_keep(y: float, u: list[float]) -> list:
-        seen[:] = judge(y, u)
+    def step_and_keep(time_s: float, y: float, u: list[float]) -> list:
+        seen[:] = judge(time_s, y, u)
         return list(seen)
 
     twin.step = step_and_keep  # type: ignore[method-assign]
@@ -191,7 +191,7 @@ def test_trace_holds_the_readable_twins_numbers(baseline: Baseline, plant: dict)
         assert np.array_equal(np.isnan(got), np.isnan(want)), name
         np.testing.assert_allclose(got, want, rtol=1e-6, atol=1e-5, equal_nan=True, err_msg=name)
     assert trace.cusum_threshold == config.cusum.h
-    # evaluations: one per evaluate_every rows once settled, the twin's numbers
+    # evaluations: one per evaluation period once settled, the twin's numbers
     ev = trace.evaluations("larkspur/ahu-2")
     assert ev.features == readout_features(1)
     assert ev.time_s.tolist() == [t for t, _, _, _ in evaluations]
