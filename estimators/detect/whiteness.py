@@ -40,6 +40,7 @@ from typing import Any
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
+from scipy.special import chdtrc
 from scipy.stats import chi2
 
 from arxwatch.estimators.detect._checks import (
@@ -308,7 +309,9 @@ def block_statistics(
     for j in range(1, lags + 1):
         total = total + r[j - 1] * r[j - 1] / (n - j)
     q = n * (n + 2.0) * total
-    p_value = np.asarray(chi2.sf(q, lags), dtype=np.float64)
+    # chi2.sf(q, L) is chdtrc(L, q) (scipy computes it so), without the
+    # distribution object's ~60 us of argument handling per call
+    p_value = np.asarray(chdtrc(lags, q), dtype=np.float64)
     return q, p_value, r
 
 
