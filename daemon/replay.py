@@ -362,6 +362,12 @@ def run_replay(
         print(f"arxwatch replay: {error}", file=err)
         print("  (--on-bad-line skip counts such lines and goes on)", file=err)
         return 2
+    except OSError as error:  # the file, or the process reading ahead, failed mid-way
+        if progress is not None:
+            progress.finish()
+        print(f"arxwatch replay: {input_path}: cannot read on: {error}", file=err)
+        print(f"  ({written:,} alert records were given out before it)", file=err)
+        return 2
     finally:
         if sink is not None and sink is not sys.stdout:
             sink.close()

@@ -126,6 +126,16 @@ def test_replay_command_names_bad_input(
     assert "1 unreadable lines skipped" in out and "payloads rejected: not_a_number 1" in out
     assert main(["replay", "--config", str(config), "--input", str(tmp_path / "none.csv")]) == 2
     assert "none.csv: No such file or directory" in capsys.readouterr().err
+    with monkeypatch.context() as patch:  # the file (or the read-ahead process) fails mid-way
+
+        def failing(*args: object, **kwargs: object) -> None:
+            raise OSError(5, "Input/output error")
+
+        patch.setattr(replay_module, "replay", failing)
+        assert main(["replay", "--config", str(config), "--input", str(trend)]) == 2
+        err = capsys.readouterr().err
+        assert f"{trend}: cannot read on: [Errno 5] Input/output error" in err
+        assert "Traceback" not in err
     garbage = tmp_path / "b.json"
     garbage.write_text("{not json")
     config.write_text(SITE.format(baseline=f"{{file: {garbage}}}", model="auto"))
