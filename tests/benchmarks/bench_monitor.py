@@ -148,14 +148,18 @@ def fleet_figures(baseline: Baseline, count: int, steps: int, repeat: int) -> No
     warm = steps // 2
     timed = steps - warm
 
-    def rls_only() -> float:
-        batch = BatchRls(order.n_params, 1, count, config)
-        for k in range(warm):
-            batch.update(phi[k], y_all[k], u_all[k][:, None])
+    def per_row(run: Callable[[int], object], first: int = 0) -> float:
+        """Run sample times ``first`` to the end; return the CPU time per asset-row timed."""
+        for k in range(first, warm):
+            run(k)
         start = clock()
         for k in range(warm, steps):
-            batch.update(phi[k], y_all[k], u_all[k][:, None])
+            run(k)
         return (clock() - start) / (timed * count)
+
+    def rls_only() -> float:
+        batch = BatchRls(order.n_params, 1, count, config)
+        return per_row(lambda k: batch.update(phi[k], y_all[k], u_all[k][:, None]))
 
     def estimate_only() -> float:
         """Time the numpy estimate from samples: regressor from histories, update, push.
@@ -181,12 +185,7 @@ def fleet_figures(baseline: Baseline, count: int, steps: int, repeat: int) -> No
             hist_u[1:] = hist_u[:-1].copy()
             hist_u[0] = u_k
 
-        for k in range(warm):
-            run(k)
-        start = clock()
-        for k in range(warm, steps):
-            run(k)
-        return (clock() - start) / (timed * count)
+        return per_row(run)
 
     def live_only() -> float:
         """Time the compiled fleet's live estimate alone, called as the fleet calls it."""
@@ -208,12 +207,7 @@ def fleet_figures(baseline: Baseline, count: int, steps: int, repeat: int) -> No
             kernel(slots, y_all[k], u_all[k][:, None], structure, nb, nk, rls_y, rls_u,
                    rls_count, rls, samples, constants, out)  # fmt: skip
 
-        for k in range(warm):
-            run(k)
-        start = clock()
-        for k in range(warm, steps):
-            run(k)
-        return (clock() - start) / (timed * count)
+        return per_row(run)
 
     def fleet(backend: str) -> float:
         mon = FleetMonitor(NAMES, backend=backend)  # type: ignore[arg-type]
@@ -232,12 +226,7 @@ def fleet_figures(baseline: Baseline, count: int, steps: int, repeat: int) -> No
             rows = slots[started <= k]
             mon.step(rows, np.full(rows.shape[0], times[k]), y_all[k, rows],
                      u_all[k, rows][:, None], modes[: rows.shape[0]], no_restart[rows])  # fmt: skip
-        for k in range(60, warm):
-            run(k)
-        start = clock()
-        for k in range(warm, steps):
-            run(k)
-        return (clock() - start) / (timed * count)
+        return per_row(run, first=60)
 
     # back end -> (reference label, reference timer); "rls" is a bare-update figure beside them
     backends: dict[str, tuple[str, Callable[[], float]]] = {
