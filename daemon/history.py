@@ -324,6 +324,19 @@ def time_zone(name: str) -> tzinfo:
         ) from None
 
 
+#: What a reader has counted so far, as the child reading ahead sends it.
+_TALLIES = (
+    "topics",
+    "lines",
+    "bad_lines",
+    "first_problem",
+    "first_time_s",
+    "last_time_s",
+    "backwards",
+    "chars_read",
+)
+
+
 class HistoryReader:
     """Iterate over the values of a trend export or a capture, in file order.
 
@@ -475,29 +488,12 @@ class HistoryReader:
 
     def _state(self) -> tuple[Any, ...]:
         """Return the tallies a reader reading ahead sends its parent with each block."""
-        return (
-            self.topics,
-            self.lines,
-            self.bad_lines,
-            self.first_problem,
-            self.first_time_s,
-            self.last_time_s,
-            self.backwards,
-            self.chars_read,
-        )
+        return tuple(getattr(self, name) for name in _TALLIES)
 
     def _take_state(self, state: tuple[Any, ...]) -> None:
         """Take the tallies of :meth:`_state` (from the child reading ahead)."""
-        (
-            self.topics,
-            self.lines,
-            self.bad_lines,
-            self.first_problem,
-            self.first_time_s,
-            self.last_time_s,
-            self.backwards,
-            self.chars_read,
-        ) = state
+        for name, value in zip(_TALLIES, state, strict=True):
+            setattr(self, name, value)
 
     def _blocks_ahead(self) -> Iterator[TrendBlock]:
         """:meth:`blocks` read by a child process, a block or so ahead.
