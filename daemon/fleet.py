@@ -80,7 +80,7 @@ DETECTORS = (
     "stale",
 )
 
-_STATE_VERSION = 1
+_STATE_VERSION = 2
 #: Capacity grows by this factor, so at most a fifth of the arrays is slack.
 _GROWTH = 1.25
 #: ``_last_mode`` before an asset's first row (AssetMonitor's sentinel).
@@ -331,6 +331,8 @@ class _Group:
             "wh_sums": ((lags + 2,), np.float64, 0.0),
             "wh_head": ((lags,), np.float64, 0.0),
             "wh_past": ((lags,), np.float64, 0.0),
+            # the period of sample time of its open block (MonitorConfig.block_period); -1: none
+            "wh_period": ((), np.int64, -1),
             "samples": ((), np.int64, 0),
             "current": ((len(self.features) + 1,), np.float64, 0.0),
         }
@@ -500,16 +502,21 @@ class _Group:
         """
         a = self.arrays
         self.tap = {}
-        if self.compiled is not None and ch.shape[0] <= COMPILED_ROWS:
+        compiled = self.compiled is not None and ch.shape[0] <= COMPILED_ROWS
+        sel = ch if compiled else _as_slice(ch)
+        # 0. whiteness blocks of an earlier period are complete: test them first
+        found = self._enter_period(sel, time_s)
+        if compiled:
             # steps 1 and 2 compiled, then step 3 as below
-            found, changing, updated = self._step_compiled(ch, time_s, y, u)
+            innovated, changing, updated = self._step_compiled(ch, time_s, y, u)
+            found += innovated
             if self.evaluation_due(time_s) and updated.any():
                 dp = np.flatnonzero(updated)
                 found += self._evaluate(dp, ch[dp], time_s[dp], changing[dp])
             return found
-        sel = _as_slice(ch)
         every: Sel = slice(0, ch.shape[0])
-        found, changing = self._innovate(sel, time_s, y, u)
+        innovated, changing = self._innovate(sel, time_s, y, u)
+        found += innovated
         # 2. the live estimate (ArxEstimator.update)
         ready = a["rls_count"][sel] >= self.depth
         y_hist = y.copy()
@@ -531,6 +538,24 @@ class _Group:
             dp = _indices(_narrow(every, ready))
             found += self._evaluate(dp, _indices(_narrow(sel, ready)), time_s[dp], changing[dp])
         return found
+
+    def _enter_period(
+        self, sel: Sel, time_s: Float
+    ) -> list[tuple[int, int, Evidence, BankTransition]]:
+        """Whiteness.enter_period for each channel of ``sel``, with this wave's block period."""
+        period = self.config.block_period(float(time_s[0]), self.sample_period_s)
+        periods = self.arrays["wh_period"]
+        new = periods[sel] != period
+        if not new.any():
+            return []
+        positions = np.flatnonzero(new)
+        channels = _indices(sel)[positions]
+        periods[channels] = period
+        count = self.arrays["wh_count"][channels]
+        ending = np.flatnonzero(count > 0)
+        if not ending.size:
+            return []
+        return self._end_blocks(positions[ending], channels[ending], time_s[positions[ending]])
 
     def evaluation_due(self, time_s: Float) -> bool:
         """Whether this wave's sample time (one for every row) starts an evaluation period."""
@@ -904,19 +929,27 @@ class _Group:
     def _end_blocks(
         self, ep: Index, ec: Index, et: Float
     ) -> list[tuple[int, int, Evidence, BankTransition]]:
-        """Test the complete whiteness blocks of channels ``ec`` (at ``ep``); restart them."""
+        """Test the complete whiteness blocks of channels ``ec`` (at ``ep``); restart them.
+
+        A block shorter than ``shortest_block`` (its period cut it short) is dropped untested.
+        """
         a, config = self.arrays, self.config.whiteness
-        centred = centred_sums(
-            a["wh_sums"][:, ec], a["wh_head"][:, ec], a["wh_past"][:, ec], a["wh_count"][ec]
-        )
-        q, p_value, r = block_statistics(config, centred)
+        reset = ec
+        count = a["wh_count"][ec]
+        tested = count >= config.shortest_block
+        if not tested.all():
+            ep, ec, et, count = ep[tested], ec[tested], et[tested], count[tested]
+        centred = centred_sums(a["wh_sums"][:, ec], a["wh_head"][:, ec], a["wh_past"][:, ec], count)
         for name, initial in (
             ("wh_count", 0),
             ("wh_sums", 0.0),
             ("wh_head", 0.0),
             ("wh_past", 0.0),
         ):
-            a[name][..., ec] = initial
+            a[name][..., reset] = initial
+        if not ec.size:
+            return []
+        q, p_value, r = block_statistics(config, centred, count)
         alarm = p_value < config.alpha
         transitions = self.tracker.observe(ec, 2, q, self.whiteness_threshold, alarm, et)
         return [
@@ -929,6 +962,7 @@ class _Group:
                     float(q[t.position]),
                     float(p_value[t.position]),
                     r[:, t.position],
+                    int(count[t.position]),
                 ),
                 t,
             )

@@ -81,7 +81,11 @@ class MonitorConfig:
         AR filter fitted on the first residuals after a start, which whitens
         the residual's own correlation (the reference is taken as fault-free).
     cusum, variance, whiteness : configs
-        Innovation detectors on the prewhitened residual.
+        Innovation detectors on the prewhitened residual. Whiteness blocks
+        are periods of ``whiteness.window`` sample periods of sample time
+        (:meth:`block_period`; four hours from midnight UTC at the
+        defaults), so that a class's assets test theirs at the same sample
+        time.
     drift_alpha : float
         False-alarm probability per evaluation of the feature Wald test.
     bands : BandsConfig
@@ -150,6 +154,15 @@ class MonitorConfig:
         """
         period = self.evaluate_every * sample_period_s
         return math.floor(time_s / period) != math.floor((time_s - sample_period_s) / period)
+
+    def block_period(self, time_s: float, sample_period_s: float) -> int:
+        """Index of the whiteness block period the sample at ``time_s`` falls in.
+
+        Periods of ``whiteness.window * sample_period_s`` seconds of sample
+        time from the epoch (:meth:`Whiteness.enter_period
+        <arxwatch.estimators.detect.whiteness.Whiteness.enter_period>`).
+        """
+        return math.floor(time_s / (self.whiteness.window * sample_period_s))
 
     def evaluation_intervals(self, sample_period_s: float) -> dict[str, float]:
         """Seconds between evaluations of each behaviour detector, for the off-delay."""
@@ -270,6 +283,12 @@ class _ModeMonitor:
         """Judge one sample; return the evidence of every detector evaluated."""
         config, evidence = self.config, []
         history, y_past = self.history, y
+        # a whiteness block of an earlier period is complete: test it first
+        white = self.whiteness.enter_period(
+            config.block_period(time_s, self.baseline.sample_period_s)
+        )
+        if white is not None:
+            evidence.append(white)
         if history.ready:
             phi = history.regressor(u)
             e, z = self.baseline.residual(phi, y)

@@ -20,6 +20,14 @@ test rejects whiteness when the p-value ``chi2.sf(Q, L)`` is below alpha.
 Each block is tested once, when it is complete, so successive evaluations
 are independent under the null hypothesis.
 
+A caller with a clock may also tie blocks to periods of sample time
+(:meth:`Whiteness.enter_period`): a block then holds the samples of one
+period, at most W, and a block left short by missing samples is tested
+with its own n (the formula above with n for W) when the next period
+starts, if it holds at least half the window; a shorter one is dropped.
+Blocks tied to the clock end at the same sample time for every asset that
+shares the period, so a monitor of many assets tests them together.
+
 The block is not stored: its centred lag products follow exactly from
 running sums (:mod:`arxwatch.estimators.detect._sums`), so the detector
 holds ``3 L + 2`` numbers whatever W is. That keeps thousands of assets in
@@ -104,6 +112,16 @@ class WhitenessConfig:
         """Critical value of Q, chi2.ppf(1 - alpha, lags)."""
         return float(chi2.ppf(1.0 - self.alpha, self.lags))
 
+    @property
+    def shortest_block(self) -> int:
+        """Fewest samples a block cut short by its period must hold to be tested.
+
+        Half the window, rounded up, and more than ``lags`` (Q needs n > L);
+        the half is common practice, no source: fewer samples make the
+        chi-square approximation of Q rough and say little about the period.
+        """
+        return max((self.window + 1) // 2, self.lags + 1)
+
 
 def ljung_box(x: ArrayLike, lags: int) -> float:
     """Ljung–Box Q of a series, demeaned, over lags 1..L.
@@ -186,13 +204,39 @@ class Whiteness:
     series models", *Biometrika* 65 (1978), 297-303.
     """
 
-    __slots__ = ("config", "threshold", "_count", "_sums", "_head", "_past")
+    __slots__ = ("config", "threshold", "_count", "_sums", "_head", "_past", "_period")
 
     def __init__(self, config: WhitenessConfig | None = None) -> None:
         self.config = config if config is not None else WhitenessConfig()
         #: Critical value of Q, fixed by the settings.
         self.threshold = self.config.threshold
+        self._period: int | None = None
         self.reset()
+
+    def enter_period(self, period: int) -> Evidence | None:
+        """Tell the test that the caller's clock is in block period ``period``.
+
+        Call it before :meth:`update` for each sample, with the index of
+        the period of W sample periods the sample falls in (for example
+        ``floor(time / (W * sample period))``). When the open block belongs
+        to another period, it is complete: it is tested with its own n if
+        it holds at least ``config.shortest_block`` samples (otherwise it is
+        dropped), and an empty block starts for ``period``.
+
+        Returns
+        -------
+        Evidence or None
+            The evidence of the block tested (as :meth:`update` at a block
+            end, ``samples`` below ``window``), or None.
+        """
+        if period == self._period:
+            return None
+        evidence = None
+        if self._count >= self.config.shortest_block:
+            evidence = self._test()
+        self.reset()
+        self._period = period
+        return evidence
 
     def update(self, z: float) -> Evidence | None:
         """Take one normalised innovation; test the block when it is complete.
@@ -209,7 +253,8 @@ class Whiteness:
             each block once). At the block's last sample: ``statistic`` Q,
             ``threshold`` chi2.ppf(1 - alpha, L), ``alarm`` when the p-value
             is below alpha; ``values``: ``q``, ``p_value``, ``lags``,
-            ``window`` and ``max_abs_autocorrelation`` (over lags 1..L).
+            ``window``, ``samples`` (the block's n) and
+            ``max_abs_autocorrelation`` (over lags 1..L).
             The next sample starts a new block.
 
         Raises
@@ -223,15 +268,18 @@ class Whiteness:
         self._count += 1
         if self._count < self.config.window:
             return None
-        centred = centred_sums(
-            np.array(self._sums), np.array(self._head), np.array(self._past), self._count
-        )
-        evidence = block_evidence(self.config, self.threshold, centred.tolist())
+        evidence = self._test()
         self.reset()
         return evidence
 
+    def _test(self) -> Evidence:
+        centred = centred_sums(
+            np.array(self._sums), np.array(self._head), np.array(self._past), self._count
+        )
+        return block_evidence(self.config, self.threshold, centred.tolist(), self._count)
+
     def reset(self) -> None:
-        """Start a new, empty block."""
+        """Start a new, empty block (in the same period, if one was entered)."""
         lags = self.config.lags
         self._count = 0
         self._sums = [0.0] * (lags + 2)
@@ -243,13 +291,14 @@ class Whiteness:
         return Whiteness(self.config)
 
     def to_state(self) -> dict[str, Any]:
-        """Learned state as plain JSON-safe data (the running sums of the open block)."""
+        """Learned state as plain JSON-safe data (the open block's running sums and period)."""
         return {
             "detector": _NAME,
             "count": self._count,
             "sums": list(self._sums),
             "head": list(self._head),
             "past": list(self._past),
+            "period": self._period,
         }
 
     def load_state(self, state: dict[str, Any]) -> None:
@@ -260,33 +309,40 @@ class Whiteness:
         ValueError
             If the state was saved by another detector, has missing or
             unknown keys, sums of the wrong length or non-finite values, or
-            a count outside [0, window).
+            a count outside [0, window), or a period that is neither null
+            nor an integer.
         """
-        data = expect_state(state, _NAME, ("count", "sums", "head", "past"))
+        data = expect_state(state, _NAME, ("count", "sums", "head", "past", "period"))
         lags = self.config.lags
         count = state_int(data, _NAME, "count")
         if count >= self.config.window:
             raise ValueError(
                 f"{_NAME} state: count must be below window={self.config.window}, got {count}"
             )
+        period = data["period"]
+        if period is not None and not is_int(period):
+            raise ValueError(f"{_NAME} state: period must be null or an integer, got {period!r}")
         self._sums = state_floats(data, _NAME, "sums", lags + 2)
         self._head = state_floats(data, _NAME, "head", lags)
         self._past = state_floats(data, _NAME, "past", lags)
         self._count = count
+        self._period = None if period is None else int(period)
 
 
 def block_statistics(
-    config: WhitenessConfig, centred: NDArray[np.float64]
+    config: WhitenessConfig, centred: NDArray[np.float64], samples: NDArray[Any]
 ) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]]:
     """Ljung–Box Q, its p-value and the autocorrelations of complete blocks.
 
     Parameters
     ----------
     config : WhitenessConfig
-        Settings (W, L).
+        Settings (L).
     centred : ndarray, shape (L + 1, k)
         Centred lag sums ``C_0 .. C_L`` of k blocks, from
         :func:`arxwatch.estimators.detect._sums.centred_sums`.
+    samples : ndarray, shape (k,)
+        Each block's length n (> L): W, or fewer for a block its period cut short.
 
     Returns
     -------
@@ -300,7 +356,7 @@ def block_statistics(
     Element-wise arithmetic with the sum over lags in a fixed order, so a
     block's numbers do not depend on the other blocks.
     """
-    lags, n = config.lags, float(config.window)
+    lags, n = config.lags, samples.astype(np.float64)
     denom = centred[0]
     constant = denom <= 0.0
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -315,7 +371,9 @@ def block_statistics(
     return q, p_value, r
 
 
-def block_evidence(config: WhitenessConfig, threshold: float, centred: Sequence[float]) -> Evidence:
+def block_evidence(
+    config: WhitenessConfig, threshold: float, centred: Sequence[float], samples: int
+) -> Evidence:
     """Evidence of one complete block from its centred lag sums ``C_0 .. C_L``.
 
     Parameters
@@ -326,14 +384,18 @@ def block_evidence(config: WhitenessConfig, threshold: float, centred: Sequence[
         ``config.threshold``, computed once by the caller (scipy is slow).
     centred : sequence of float, length L + 1
         From :func:`arxwatch.estimators.detect._sums.centred_sums`.
+    samples : int
+        The block's length n (> L).
 
     Returns
     -------
     Evidence
         As :meth:`Whiteness.update` at a block end.
     """
-    q, p_value, r = block_statistics(config, np.asarray(centred, dtype=np.float64)[:, None])
-    return evidence_of_block(config, threshold, float(q[0]), float(p_value[0]), r[:, 0])
+    q, p_value, r = block_statistics(
+        config, np.asarray(centred, dtype=np.float64)[:, None], np.array([samples])
+    )
+    return evidence_of_block(config, threshold, float(q[0]), float(p_value[0]), r[:, 0], samples)
 
 
 def evidence_of_block(
@@ -342,8 +404,9 @@ def evidence_of_block(
     q: float,
     p_value: float,
     r: NDArray[np.float64],
+    samples: int,
 ) -> Evidence:
-    """Evidence of one block from :func:`block_statistics`' numbers for it."""
+    """Evidence of one block of ``samples`` values from :func:`block_statistics`' numbers for it."""
     return Evidence(
         detector=_NAME,
         family="behaviour",
@@ -356,6 +419,7 @@ def evidence_of_block(
             "p_value": p_value,
             "lags": float(config.lags),
             "window": float(config.window),
+            "samples": float(samples),
             "max_abs_autocorrelation": float(np.max(np.abs(r))),
         },
     )

@@ -210,6 +210,23 @@ def test_ljung_box_equals_statsmodels(seed: int, n: int, lags: int) -> None:
     assert ev.values["p_value"] == pytest.approx(p_ref, rel=1e-7, abs=1e-12)
 
 
+def test_a_block_cut_short_by_its_period_equals_statsmodels_with_its_own_n() -> None:
+    # Source: statsmodels.stats.diagnostic.acorr_ljungbox on the samples the
+    # block holds: a block its period cut short is tested with its own n.
+    rng = np.random.default_rng(5)
+    e = rng.standard_normal(171)
+    x = e[1:] + 0.4 * e[:-1]
+    det = Whiteness(WhitenessConfig(window=240, lags=6))
+    det.enter_period(0)
+    for v in x:
+        assert det.update(float(v)) is None
+    ev = det.enter_period(1)
+    assert ev is not None and ev.values["samples"] == 170.0
+    table = acorr_ljungbox(x, lags=[6])
+    assert ev.statistic == pytest.approx(float(table["lb_stat"].iloc[0]), rel=1e-9)
+    assert ev.values["p_value"] == pytest.approx(float(table["lb_pvalue"].iloc[0]), rel=1e-7)
+
+
 def test_wald_distance_equals_direct_numpy() -> None:
     # Source: the definition d2 = delta' S^-1 delta, computed by numpy.linalg.solve.
     rng = np.random.default_rng(4)

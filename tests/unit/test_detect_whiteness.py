@@ -108,3 +108,60 @@ def test_bad_input_and_state_are_refused() -> None:
         ljung_box([1.0, 2.0, 3.0], 3)
     with pytest.raises(ValueError, match="lags must be an integer >= 1, got 0"):
         ljung_box([1.0, 2.0, 3.0], 0)
+
+
+def test_a_block_cut_short_by_its_period_is_tested_with_its_own_n() -> None:
+    # Periods of 50 samples; samples 10..29 of the first period are missing.
+    config = WhitenessConfig(window=50, lags=3)
+    det = Whiteness(config)
+    z = _stream(5, n=120)
+    kept = [k for k in range(120) if not 10 <= k < 30]
+    ended = {}
+    for k in kept:
+        ev = det.enter_period(k // 50)
+        if ev is not None:
+            ended[k] = ev
+        ev = det.update(z[k])
+        if ev is not None:
+            ended[k] = ev
+    # the first block (30 samples) ends at the first sample of the next
+    # period; the second, complete, at its 50th sample, as without a clock
+    assert sorted(ended) == [50, 99]
+    first = ended[50]
+    block = np.array([z[k] for k in kept if k < 50])
+    assert first.values["samples"] == 30.0 and first.values["window"] == 50.0
+    assert first.statistic == pytest.approx(ljung_box(block, 3), rel=1e-9)
+    assert ended[99].values["samples"] == 50.0
+    assert ended[99].statistic == pytest.approx(ljung_box(np.array(z[50:100]), 3), rel=1e-9)
+
+
+def test_a_block_shorter_than_half_the_window_is_dropped() -> None:
+    config = WhitenessConfig(window=50, lags=3)
+    assert config.shortest_block == 25
+    assert WhitenessConfig(window=12, lags=10).shortest_block == 11  # Q needs n > L
+    det = Whiteness(config)
+    assert det.enter_period(7) is None
+    for v in _stream(6, n=24):
+        assert det.update(v) is None
+    assert det.enter_period(7) is None  # same period: nothing ends
+    assert det.to_state()["count"] == 24
+    assert det.enter_period(8) is None  # 24 < 25: dropped, untested
+    assert det.to_state()["count"] == 0 and det.to_state()["period"] == 8
+    for v in _stream(7, n=25):
+        det.update(v)
+    ev = det.enter_period(9)
+    assert ev is not None and ev.values["samples"] == 25.0
+
+
+def test_the_period_survives_a_state_round_trip_and_bad_periods_are_refused() -> None:
+    det = Whiteness(WhitenessConfig(window=20, lags=2))
+    det.enter_period(3)
+    for v in _stream(8, n=15):
+        det.update(v)
+    twin = det.clone()
+    twin.load_state(json.loads(json.dumps(det.to_state())))
+    assert twin.enter_period(3) is None and twin.to_state() == det.to_state()
+    tested = det.enter_period(4)
+    assert tested is not None and twin.enter_period(4) == tested
+    with pytest.raises(ValueError, match="period must be null or an integer, got 'x'"):
+        det.load_state({**det.to_state(), "period": "x"})

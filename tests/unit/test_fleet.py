@@ -18,6 +18,7 @@ from arxwatch.estimators.baseline import Baseline, BaselineSet, fit_baseline
 from arxwatch.estimators.detect.cusum import CusumConfig
 from arxwatch.estimators.detect.prewhiten import PrewhitenConfig
 from arxwatch.estimators.detect.quality import QualityConfig, SignalQuality
+from arxwatch.estimators.detect.whiteness import WhitenessConfig
 from arxwatch.estimators.native import available
 
 LOOPS = ("first-order+dead-time", "second-order")
@@ -146,8 +147,11 @@ def _run_both(
     [
         MonitorConfig(),
         MonitorConfig(cusum=CusumConfig(h=5.0, after_alarm="restart"), evaluate_every=7),
+        # short whiteness blocks at a loose alpha: many raise and clear, and
+        # the missing rows cut blocks short (tested with their own n or dropped)
+        MonitorConfig(whiteness=WhitenessConfig(window=30, lags=3, alpha=0.3)),
     ],
-    ids=["defaults", "restart-cusum"],
+    ids=["defaults", "restart-cusum", "busy-whiteness"],
 )
 @pytest.mark.parametrize("backend", BACKENDS)
 def test_records_equal_per_asset_monitors(
@@ -158,6 +162,14 @@ def test_records_equal_per_asset_monitors(
     assert total > 10  # the faults raise and clear alerts: the comparison is not vacuous
     kinds = {r["detector"] for v in expected.values() for r in v}
     assert {"innovation_mean", "physical_band"} <= kinds
+    if config.whiteness.window == 30:
+        short = [
+            r
+            for v in expected.values()
+            for r in v
+            if r["detector"] == "innovation_whiteness" and r["evidence"]["samples"] < 30
+        ]
+        assert short  # a block cut short by its period raised or cleared an alert
     for asset in expected:
         assert got[asset] == expected[asset], asset
     for asset in expected:
@@ -339,7 +351,7 @@ def test_state_from_other_settings_is_refused(assets: dict) -> None:
     with pytest.raises(ValueError, match="'pw_sums' has shape"):
         other.load_state(state)
     assert len(other) == 0  # left as it was
-    with pytest.raises(ValueError, match="this release reads 'arxwatch.fleet' version 1"):
+    with pytest.raises(ValueError, match="this release reads 'arxwatch.fleet' version 2"):
         fleet.load_state({"meta": {**state["meta"], "version": 9}, "arrays": state["arrays"]})
     with pytest.raises(ValueError, match="saved monitor checks quality of"):
         FleetMonitor(NAMES, quality_signals=("sat",)).load_state(state)
@@ -401,3 +413,35 @@ def test_compiled_live_estimate_without_a_writable_cache_folder(
         assert not list(tmp_path.glob("**/*.py"))
     finally:
         fleetnative.group_kernels.cache_clear()
+
+
+@pytest.mark.parametrize("backend", BACKENDS)
+def test_whiteness_blocks_of_assets_started_apart_end_at_the_same_sample(backend: str) -> None:
+    # Assets started minutes apart, one with a gap: their blocks are periods
+    # of sample time (MonitorConfig.block_period), so after the first
+    # period boundary every block holds the samples since that boundary.
+    config = MonitorConfig(whiteness=WhitenessConfig(window=120, lags=6, alpha=1e-5))
+    baseline = BaselineSet((_baseline(LOOPS[0], None, 1),))
+    fleet = FleetMonitor(NAMES, config, backend=backend)
+    count = 5
+    for a in range(count):
+        fleet.add_asset(f"site/vav-{a}", baseline)
+    n = 2 * PER_DAY + 45
+    u = daily_operation(n, SAMPLE_PERIOD_S, seed=3)
+    y = REFERENCE_LOOPS[LOOPS[0]].simulate(u, seed=4)
+    starts = [0, 17, 53, 90, 131]
+    for k in range(n):
+        slots = [a for a in range(count) if k >= starts[a] and not (a == 2 and 700 <= k < 740)]
+        fleet.step(
+            slots,
+            [START_S + k * SAMPLE_PERIOD_S] * len(slots),
+            [float(y[k - starts[a]]) for a in slots],
+            [[float(u[k - starts[a]])] for a in slots],
+            [None] * len(slots),
+            [False] * len(slots),
+        )
+    group = fleet._groups[0]
+    since_boundary = n % 120  # 45: START_S is a multiple of 120 sample periods
+    assert group.arrays["wh_count"][:count].tolist() == [since_boundary] * count
+    period = config.block_period(START_S + (n - 1) * SAMPLE_PERIOD_S, SAMPLE_PERIOD_S)
+    assert group.arrays["wh_period"][:count].tolist() == [period] * count
