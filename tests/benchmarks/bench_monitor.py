@@ -128,7 +128,9 @@ def fleet_figures(baseline: Baseline, count: int, steps: int, repeat: int) -> No
     u = np.stack([daily_operation(steps, TS, seed=100 + j) for j in range(series)], axis=1)
     y = np.stack([LOOP.simulate(u[:, j], seed=200 + j) for j in range(series)], axis=1)
     pick = np.arange(count) % series
-    u_all, y_all = u[:, pick], y[:, pick]  # (steps, count)
+    # (steps, count), rows contiguous as the service's rows are (u[:, pick] alone is
+    # column-major: every fleet step would first copy its row)
+    u_all, y_all = np.ascontiguousarray(u[:, pick]), np.ascontiguousarray(y[:, pick])
     order = baseline.order
     # ready-made regressors for the RLS-only figure (what the fleet builds itself)
     phi = np.zeros((steps, count, order.n_params))
