@@ -584,18 +584,17 @@ class _Group:
             phi = self._regressor("base", rc, [u_r[:, i] for i in range(u.shape[1])])
             theta = a["theta0"][:, rc]
             cov = a["cov0"][:, rc]
-            # phi' theta and phi' C phi, each sum in index order from 0.0 as the
-            # compiled kernel and AssetMonitor add; C phi for every row at once
-            n, k = self.order.n_params, y_r.shape[0]
-            phi_a = np.stack(phi)
-            products = cov[self.tri_index] * phi_a  # (j, i, row): C[j, i] phi[i]
-            prediction, inner, spread = np.zeros(k), np.zeros((n, k)), np.zeros(k)
-            for i in range(n):
-                prediction += phi_a[i] * theta[i]
-                inner += products[:, i]
-            inner *= phi_a
+            # phi' theta, and phi' C phi from the upper triangle (Baseline.residual:
+            # phi_j (C_jj phi_j + 2 sum_{a > j} C_ja phi_a)), in the order of
+            # operations of Baseline.residual and the compiled kernel
+            n, k, tri = self.order.n_params, y_r.shape[0], self.tri_index
+            prediction, spread = np.zeros(k), np.zeros(k)
             for j in range(n):
-                spread += inner[j]
+                prediction += phi[j] * theta[j]
+                off = np.zeros(k)
+                for i in range(j + 1, n):
+                    off += cov[tri[j, i]] * phi[i]
+                spread += phi[j] * (cov[tri[j, j]] * phi[j] + (off + off))
             e = y_r - prediction
             z = e / np.sqrt(a["sigma2"][rc] + spread)
             tap["base"] = (rp, prediction, z)

@@ -220,12 +220,12 @@ def _innovate(
             _regressor(phi, base_y, base_u, c, u, i, nb, nk, constant)
             prediction = 0.0
             spread = 0.0
-            for j in range(n):
+            for j in range(n):  # phi' C phi from the upper triangle (Baseline.residual)
                 prediction += phi[j] * theta0[j, c]
-                inner = 0.0
-                for a in range(n):
-                    inner += cov0[tri_index[j, a], c] * phi[a]
-                spread += phi[j] * inner
+                off = 0.0
+                for a in range(j + 1, n):
+                    off += cov0[tri_index[j, a], c] * phi[a]
+                spread += phi[j] * (cov0[tri_index[j, j], c] * phi[j] + (off + off))
             e = yi - prediction
             z = e / math.sqrt(sigma2[c] + spread)
             out_i[1, i] = 1

@@ -613,12 +613,15 @@ class Baseline:
         spread = 0.0
         # Plain loops: about twice as fast as sum() over a generator. The
         # lengths were checked above, so zip need not check them again.
-        for p, t, row in zip(phi, theta, self._cov_rows, strict=False):
+        # phi' C phi from the upper triangle, row j: phi_j (C_jj phi_j + 2
+        # sum_{a > j} C_ja phi_a), in this order of operations, as the
+        # column-wise monitor computes it for many assets at once.
+        for j, (p, t, row) in enumerate(zip(phi, theta, self._cov_rows, strict=False)):
             prediction += p * t
-            inner = 0.0
-            for c, q in zip(row, phi, strict=False):
-                inner += c * q
-            spread += p * inner
+            off = 0.0
+            for a in range(j + 1, len(row)):
+                off += row[a] * phi[a]
+            spread += p * (row[j] * p + (off + off))
         e = y - prediction
         return e, e / math.sqrt(self.sigma2 + spread)
 
