@@ -120,9 +120,6 @@ _LIVE_STATE = ("rls_y", "rls_u", "rls_count", "rls", "samples")
     _F_VARIANCE_THRESHOLD,
 ) = range(len(FLOAT_OUT))
 (
-    _I_CHANGING,
-    _I_READY,
-    _I_JUDGED,
     _I_FIT,
     _I_N_HIGH,
     _I_N_LOW,
@@ -508,9 +505,12 @@ class _Group:
         found = self._enter_period(sel, time_s)
         if compiled:
             # steps 1 and 2 compiled, then step 3 as below
-            innovated, changing, updated = self._step_compiled(ch, time_s, y, u)
+            due = self.evaluation_due(time_s)
+            # read before the rows' evidence is observed, as in _innovate
+            changing = self.tracker.raised[ch, 0] | self.tracker.raised[ch, 1] if due else None
+            innovated, updated = self._step_compiled(ch, time_s, y, u)
             found += innovated
-            if self.evaluation_due(time_s) and updated.any():
+            if changing is not None and updated.any():
                 dp = np.flatnonzero(updated)
                 found += self._evaluate(dp, ch[dp], time_s[dp], changing[dp])
             return found
@@ -611,16 +611,13 @@ class _Group:
 
     def _step_compiled(
         self, ch: Index, time_s: Float, y: Float, u: Float
-    ) -> tuple[
-        list[tuple[int, int, Evidence, BankTransition]], NDArray[np.bool_], NDArray[np.bool_]
-    ]:
+    ) -> tuple[list[tuple[int, int, Evidence, BankTransition]], NDArray[np.bool_]]:
         """Run steps 1 and 2 of :meth:`step` in one compiled call (:mod:`.fleetnative`).
 
         The kernel updates the state arrays; the rare steps of the innovation
         path and the tracker's episodes touched (busy) are taken here, by the
-        numpy path's code. Returns the transitions, per row whether an
-        innovation alert was up before the row (``changing``), and the rows
-        whose live estimate was updated.
+        numpy path's code. Returns the transitions and the rows whose live
+        estimate was updated.
 
         Raises
         ------
@@ -643,7 +640,6 @@ class _Group:
                 self.nb,
                 self.nk,
                 *map(a.__getitem__, _BASE_STATE),
-                self.tri_index,
                 *map(a.__getitem__, _DETECTOR_STATE),
                 tracker.raised,
                 tracker.alarms,
@@ -658,8 +654,7 @@ class _Group:
         except NON_FINITE:
             raise ValueError("a sample for the live estimate is not finite") from None
         updated: NDArray[np.bool_] = live != 0
-        found, changing = self._innovated(ch, time_s, out_f, out_i, totals)
-        return found, changing, updated
+        return self._innovated(ch, time_s, out_f, out_i, totals), updated
 
     def _innovated(
         self,
@@ -668,11 +663,10 @@ class _Group:
         out_f: Float,
         out_i: NDArray[np.int64],
         totals: NDArray[np.int64],
-    ) -> tuple[list[tuple[int, int, Evidence, BankTransition]], NDArray[np.bool_]]:
+    ) -> list[tuple[int, int, Evidence, BankTransition]]:
         """Take what the compiled innovation path left for Python: taps, fits, busy episodes."""
         k, tracker = ch.shape[0], self.tracker
         ready, judged, fit, cusum_busy, variance_busy, block_ended = totals.tolist()
-        changing = out_i[_I_CHANGING] != 0
         every = slice(0, k)  # the kernel leaves nan where a value was not computed
         if ready:
             self.tap["base"] = (every, out_f[_F_PREDICTION], out_f[_F_Z])
@@ -681,7 +675,7 @@ class _Group:
                 self._fit_prewhitener(c)
         found: list[tuple[int, int, Evidence, BankTransition]] = []
         if not judged:
-            return found, changing
+            return found
         c_high, c_low = out_f[_F_C_HIGH], out_f[_F_C_LOW]
         self.tap["cusum"] = (every, c_high, c_low)
         if cusum_busy:
@@ -706,7 +700,7 @@ class _Group:
         if block_ended:
             ended = np.flatnonzero(out_i[_I_BLOCK_ENDED])
             found += self._end_blocks(ended, ch[ended], time_s[ended])
-        return found, changing
+        return found
 
     def _innovations(
         self, rp: Sel, rc: Sel, time_s: Float, z: Float

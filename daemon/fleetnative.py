@@ -88,9 +88,6 @@ FLOAT_OUT = (
 TOTALS = ("ready", "judged", "fit", "cusum_busy", "variance_busy", "block_ended")
 #: Rows of the kernel's integer output, by name.
 INT_OUT = (
-    "changing",  # an innovation alert was up before the row (read before any update)
-    "ready",  # the baseline residual was computed
-    "judged",  # prewhitened: CUSUM, variance and whiteness were updated
     "fit",  # the prewhitening reference is complete: fit the filter now
     "n_high",
     "n_low",
@@ -168,7 +165,6 @@ def _innovate(
     theta0: Any,
     cov0: Any,
     sigma2: Any,
-    tri_index: Any,
     pw_count: Any,
     pw_sums: Any,
     pw_head: Any,
@@ -214,7 +210,6 @@ def _innovate(
         yi = y[i]
         y_past = yi
         out_f[0, i] = out_f[1, i] = out_f[2, i] = out_f[3, i] = np.nan
-        out_i[0, i] = raised[c, 0] or raised[c, 1]
         if base_count[c] >= depth:
             # 1. the baseline model's normalised residual (_Group.step)
             _regressor(phi, base_y, base_u, c, u, i, nb, nk, constant)
@@ -223,12 +218,12 @@ def _innovate(
             for j in range(n):  # phi' C phi from the upper triangle (Baseline.residual)
                 prediction += phi[j] * theta0[j, c]
                 off = 0.0
+                row = j * n - j * (j - 1) // 2 - j  # C[j, a] at row + a of cov0 (upper triangle)
                 for a in range(j + 1, n):
-                    off += cov0[tri_index[j, a], c] * phi[a]
-                spread += phi[j] * (cov0[tri_index[j, j], c] * phi[j] + (off + off))
+                    off += cov0[row + a, c] * phi[a]
+                spread += phi[j] * (cov0[row + j, c] * phi[j] + (off + off))
             e = yi - prediction
             z = e / math.sqrt(sigma2[c] + spread)
-            out_i[1, i] = 1
             totals[0] += 1
             out_f[0, i] = prediction
             out_f[1, i] = z  # before winsorising, as the numpy path taps it
@@ -241,7 +236,7 @@ def _innovate(
                 _add_value(pw_sums, pw_head, pw_past, c, count, z, p)
                 pw_count[c] = count + 1
                 if count + 1 >= reference:
-                    out_i[3, i] = 1
+                    out_i[0, i] = 1
                     totals[2] += 1
             else:
                 predicted = 0.0
@@ -257,7 +252,6 @@ def _innovate(
                     eps = clip
                 if eps < -clip:
                     eps = -clip
-                out_i[2, i] = 1
                 totals[1] += 1
                 # 3. CUSUM (_Group._cusum)
                 hi = c_high[c] + eps - k_ref
@@ -271,9 +265,9 @@ def _innovate(
                 statistic = hi if hi >= lo else lo
                 alarm = statistic >= h
                 out_f[2, i], out_f[3, i], out_f[4, i] = hi, lo, statistic
-                out_i[4, i], out_i[5, i], out_i[6, i] = nh, nl, alarm
+                out_i[1, i], out_i[2, i], out_i[3, i] = nh, nl, alarm
                 if alarm or raised[c, 0] or alarms[c, 0] != 0:
-                    out_i[7, i] = 1
+                    out_i[4, i] = 1
                     totals[3] += 1
                 if restart and alarm:
                     hi, lo, nh, nl = 0.0, 0.0, 0, 0
@@ -287,16 +281,16 @@ def _innovate(
                     threshold = low_threshold
                 alarm = statistic >= threshold
                 out_f[5, i], out_f[6, i], out_f[7, i] = s, statistic, threshold
-                out_i[8, i] = alarm
+                out_i[5, i] = alarm
                 if alarm or raised[c, 1] or alarms[c, 1] != 0:
-                    out_i[9, i] = 1
+                    out_i[6, i] = 1
                     totals[4] += 1
                 # 5. whiteness sums (_Group._whiteness)
                 count = wh_count[c]
                 _add_value(wh_sums, wh_head, wh_past, c, count, eps, lags)
                 wh_count[c] = count + 1
                 if count + 1 >= window:
-                    out_i[10, i] = 1
+                    out_i[7, i] = 1
                     totals[5] += 1
         # 6. the baseline histories (_Group._push)
         _push(base_y, base_u, base_count, c, y_past, u, i, depth)
