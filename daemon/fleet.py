@@ -471,18 +471,21 @@ class _Group:
     def _push(self, prefix: str, ch: Sel, y: Float, u: Float) -> None:
         """Shift y(k) and u(k) into the histories of ``ch`` (RegressorHistory.push)."""
         a = self.arrays
+        gathered = not isinstance(ch, slice)  # a copy to write back, not a view
         hist_y = a[f"{prefix}_y"]
         if hist_y.shape[0]:
             rows = hist_y[:, ch]
             rows[1:] = rows[:-1].copy()
             rows[0] = y
-            hist_y[:, ch] = rows
+            if gathered:
+                hist_y[:, ch] = rows
         hist_u = a[f"{prefix}_u"]
         if hist_u.shape[1]:
             rows_u = hist_u[:, :, ch]
             rows_u[:, 1:] = rows_u[:, :-1].copy()
             rows_u[:, 0] = u.T
-            hist_u[:, :, ch] = rows_u
+            if gathered:
+                hist_u[:, :, ch] = rows_u
         count = a[f"{prefix}_count"]
         count[ch] = np.minimum(count[ch] + 1, self.depth)
 
