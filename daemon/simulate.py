@@ -9,9 +9,9 @@ a zero-order hold:
     y(k)  = x_last(k) + bias(k) + noise(k)
 
 with ``a = exp(-Ts / tau)``. Faults act on the physics (gain, time
-constant, actuator, offset) or on the sensor (bias, noise), each from its
-own start time, abruptly or over a ramp. Everything here is invented test
-and demo data, not a model of any real plant.
+constant, actuator, offset, transport delay ``d``) or on the sensor (bias,
+noise), each from its own start time, abruptly or over a ramp. Everything
+here is invented test and demo data, not a model of any real plant.
 
 :meth:`Loop.simulate` and :func:`daily_operation` work on whole arrays.
 :class:`LoopRun` and :class:`OperationRun` are the same loop and the same
@@ -44,6 +44,7 @@ FaultKind = Literal[
     "sensor_bias",  # measured value drifts from the true one, in output units
     "noise_increase",  # sensor noise multiplied by (1 + magnitude)
     "slow_response",  # time constant multiplied by (1 + magnitude)
+    "longer_delay",  # transport delay longer by magnitude seconds (whole samples)
 ]
 FAULT_KINDS: tuple[FaultKind, ...] = (
     "gain_loss",
@@ -52,6 +53,7 @@ FAULT_KINDS: tuple[FaultKind, ...] = (
     "sensor_bias",
     "noise_increase",
     "slow_response",
+    "longer_delay",
 )
 
 
@@ -93,6 +95,8 @@ class Fault:
             raise ValueError("fault start_s and ramp_s must be >= 0")
         if self.kind == "gain_loss" and not 0.0 <= self.magnitude <= 1.0:
             raise ValueError(f"gain_loss magnitude is a fraction in [0, 1], got {self.magnitude}")
+        if self.kind == "longer_delay" and self.magnitude < 0.0:
+            raise ValueError(f"longer_delay magnitude is seconds >= 0, got {self.magnitude}")
 
     def profile(self, t_s: NDArray[np.float64]) -> NDArray[np.float64]:
         """Development of the fault over time: 0 before, 1 when fully developed."""
@@ -105,6 +109,10 @@ class Fault:
         if self.ramp_s == 0.0:
             return 1.0 if t_s >= self.start_s else 0.0
         return min(max((t_s - self.start_s) / self.ramp_s, 0.0), 1.0)
+
+    def extra_delay(self, level: float, sample_period_s: float) -> int:
+        """Whole samples a ``longer_delay`` fault adds at ``level`` (0..1)."""
+        return round(self.magnitude * level / sample_period_s)
 
 
 _Plant = TypeVar("_Plant", float, NDArray[np.float64])
@@ -198,21 +206,23 @@ class Loop:
         bias = np.zeros(n)
         noise = np.full(n, self.noise_std)
         u_eff = u.copy()
+        delay = np.full(n, self.delay_samples)
         for fault in faults:
             if fault.kind == "stuck_actuator":
                 start = min(int(math.ceil(fault.start_s / ts)), n - 1)
                 u_eff[start:] = u[start]
+            elif fault.kind == "longer_delay":
+                delay = delay + np.array([fault.extra_delay(v, ts) for v in fault.profile(t)])
             else:
                 gain, tau, load, bias, noise = _effect(
                     fault, fault.profile(t), (gain, tau, load, bias, noise)
                 )
         a1 = np.exp(-ts / tau)
         a2 = math.exp(-ts / self.second_time_constant_s) if self.second_time_constant_s else 0.0
-        d = self.delay_samples
         x1 = x2 = load[0] + gain[0] * u_eff[0]
         y = np.empty(n)
         for k in range(n):
-            drive = load[k] + gain[k] * u_eff[max(k - d, 0)]
+            drive = load[k] + gain[k] * u_eff[max(k - int(delay[k]), 0)]
             x1 = a1[k] * x1 + (1.0 - a1[k]) * drive
             x2 = a2 * x2 + (1.0 - a2) * x1 if self.second_time_constant_s else x1
             y[k] = x2
@@ -255,7 +265,10 @@ class LoopRun:
             if loop.second_time_constant_s
             else 0.0
         )
-        self._past: deque[float] = deque(maxlen=loop.delay_samples + 1)
+        longest = loop.delay_samples + sum(
+            f.extra_delay(1.0, loop.sample_period_s) for f in faults if f.kind == "longer_delay"
+        )
+        self._past: deque[float] = deque(maxlen=longest + 1)
         self._x1 = self._x2 = math.nan
         self._stuck: float | None = None
 
@@ -264,10 +277,12 @@ class LoopRun:
         loop = self.loop
         gain, tau, load = loop.gain, loop.time_constant_s, loop.offset
         bias, noise = 0.0, loop.noise_std
-        stuck = False
+        stuck, delay = False, loop.delay_samples
         for fault in self.faults:
             if fault.kind == "stuck_actuator":  # frozen where it was commanded when it stuck
                 stuck = stuck or t_s >= fault.start_s
+            elif fault.kind == "longer_delay":
+                delay += fault.extra_delay(fault.level(t_s), loop.sample_period_s)
             else:
                 gain, tau, load, bias, noise = _effect(
                     fault, fault.level(t_s), (gain, tau, load, bias, noise)
@@ -281,7 +296,7 @@ class LoopRun:
         else:
             self._past.append(u_eff)
         a1 = math.exp(-loop.sample_period_s / tau)
-        drive = load + gain * self._past[0]
+        drive = load + gain * self._past[-1 - delay]
         self._x1 = a1 * self._x1 + (1.0 - a1) * drive
         if loop.second_time_constant_s:
             self._x2 = self._a2 * self._x2 + (1.0 - self._a2) * self._x1

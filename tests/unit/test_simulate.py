@@ -37,6 +37,10 @@ FAULT_SETS = {
         Fault("slow_response", 1200.0, magnitude=1.0),
         Fault("offset", 4000.0, magnitude=-0.5),
     ),
+    "longer delay, abrupt then ramped": (
+        Fault("longer_delay", 3000.0, magnitude=60.0),
+        Fault("longer_delay", 6000.0, magnitude=180.0, ramp_s=1800.0),
+    ),
 }
 
 
@@ -85,6 +89,24 @@ def test_stuck_actuator_freezes_the_command_of_its_first_step() -> None:
     # From t = 120 s the plant sees 20 % whatever the command: it settles there.
     assert outputs[-1] == pytest.approx(20.0, abs=0.5)
     assert outputs[1] < outputs[2]
+
+
+def test_longer_delay_shifts_the_response_by_whole_samples() -> None:
+    # The same step as the closed-form test above, answered one sample later
+    # once a 60 s longer_delay fault is in from the start.
+    loop = Loop(2.0, 300.0, 120.0, TS, offset=1.0, noise_std=0.0)
+    plain, late = LoopRun(loop), LoopRun(loop, (Fault("longer_delay", 0.0, magnitude=60.0),))
+    for run in (plain, late):
+        run.step(-TS, 0.0)
+    ys = [plain.step(k * TS, 10.0) for k in range(10)]
+    later = [late.step(k * TS, 10.0) for k in range(10)]
+    assert later[1:] == ys[:-1]
+    assert later[2] == later[0]  # d + 1 = 3 samples without an answer
+
+
+def test_longer_delay_refuses_a_negative_magnitude() -> None:
+    with pytest.raises(ValueError, match="longer_delay magnitude is seconds >= 0"):
+        Fault("longer_delay", 0.0, magnitude=-60.0)
 
 
 def test_operation_run_equals_daily_operation_on_the_first_day() -> None:
