@@ -155,6 +155,13 @@ def reading(evidence: Evidence, names: SignalNames, sigma: float) -> str:
 
 def _band_reading(evidence: Evidence, names: SignalNames) -> str:
     v, feature, out, unit = evidence.values, evidence.signal, names.output, names.output_unit
+    if evidence.detail == "undefined" and feature.startswith("dead_time_"):
+        source = names.inputs[int(feature.split("_")[2]) - 1]
+        return (
+            f"the dead time of {source} can no longer be read from the model of {out}: "
+            f"{source} no longer moves {out} measurably, or the response became integrating "
+            f"or unstable; check the actuator and its linkage."
+        )
     if evidence.detail == "undefined":
         return (
             f"{feature} can no longer be read from the model of {out} (integrating or "
@@ -191,6 +198,19 @@ def _band_reading(evidence: Evidence, names: SignalNames) -> str:
             f"{out} responds {_pct(change)} {'faster' if lower else 'slower'} than at "
             f"commissioning ({v['current']:.0f} s vs {v['baseline']:.0f} s): {cause} "
             f"is likely."
+        )
+    if feature.startswith("dead_time_"):
+        source = names.inputs[int(feature.split("_")[2]) - 1]
+        cause = (
+            "a relocated sensor, higher flow or a changed control sequence is likely"
+            if lower
+            else "a slower or sticking actuator, lower flow through a longer path or a "
+            "relocated sensor is likely"
+        )
+        return (
+            f"{out} starts to answer {source} {_pct(change)} "
+            f"{'sooner' if lower else 'later'} than at commissioning "
+            f"({v['current']:.0f} s vs {v['baseline']:.0f} s dead time): {cause}; verify on site."
         )
     if feature == "offset":
         return (

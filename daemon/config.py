@@ -959,8 +959,8 @@ class DetectorsConfig:
         CUSUM decision interval, in standard deviations.
     variance_alpha, whiteness_alpha, drift_alpha : float or None
         False-alarm probabilities of the variance, whiteness and parameter tests.
-    gain_tolerance, time_constant_tolerance : float or None
-        Relative bands of the gain and the time constant.
+    gain_tolerance, time_constant_tolerance, dead_time_tolerance : float or None
+        Relative bands of the gain, the time constant and the dead time.
     evaluate_every : int or None
         Sample periods between parameter-based evaluations (at the first
         sample of each such period of sample time).
@@ -982,6 +982,7 @@ class DetectorsConfig:
     drift_alpha: float | None = None
     gain_tolerance: float | None = None
     time_constant_tolerance: float | None = None
+    dead_time_tolerance: float | None = None
     evaluate_every: int | None = None
     reference_samples: int | None = None
     raise_m: int | None = None
@@ -997,6 +998,7 @@ _DETECTOR_NUMBERS = (
     "drift_alpha",
     "gain_tolerance",
     "time_constant_tolerance",
+    "dead_time_tolerance",
     "clear_after_s",
 )
 _POLICY_COUNTS = ("raise_m", "raise_n", "clear_n")
@@ -1157,6 +1159,11 @@ class AssetClassConfig:
                     base.bands.time_constant_tolerance
                     if d.time_constant_tolerance is None
                     else d.time_constant_tolerance
+                ),
+                dead_time_tolerance=(
+                    base.bands.dead_time_tolerance
+                    if d.dead_time_tolerance is None
+                    else d.dead_time_tolerance
                 ),
             ),
             evaluate_every=base.evaluate_every if d.evaluate_every is None else d.evaluate_every,

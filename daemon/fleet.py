@@ -62,7 +62,7 @@ from arxwatch.estimators.detect.prewhiten import fit_reference
 from arxwatch.estimators.detect.whiteness import block_statistics, evidence_of_block
 from arxwatch.estimators.estimator import ArxEstimator, Backend, resolve_backend
 from arxwatch.estimators.native import NON_FINITE
-from arxwatch.estimators.readout import feature_names, read_out
+from arxwatch.estimators.readout import dead_time_matrix, feature_names, read_out
 from arxwatch.estimators.rls import TRACE_CHECK_EVERY, StateLayout, build_kernel
 
 __all__ = ["COMPILED_ROWS", "DETECTORS", "FleetMonitor", "TraceSink"]
@@ -1001,8 +1001,16 @@ class _Group:
         for t in transitions:
             ev = self.drift.evidence(wald, x0, x, t.position)
             found.append((int(dp[t.position]), 3, ev, t))
-        # physical bands (PhysicalBands.update, element-wise)
-        found += self._bands(dp, dc, live, base, np.sqrt(sigma2), time_s)
+        # physical bands (PhysicalBands.update, element-wise); both sides'
+        # dead times in one pass
+        dead = dead_time_matrix(
+            self.order,
+            np.concatenate((theta0, thetas)),
+            self.sample_period_s,
+            np.concatenate((base, live)),
+        )
+        k = dc.shape[0]
+        found += self._bands(dp, dc, live, base, dead[k:], dead[:k], np.sqrt(sigma2), time_s)
         # the live read-out the records show
         rss = a["rls"][layout.rss, dc]
         with np.errstate(divide="ignore", invalid="ignore"):
@@ -1011,12 +1019,23 @@ class _Group:
         return found
 
     def _bands(
-        self, dp: Index, dc: Index, live: Float, base: Float, output_sigma: Float, time_s: Float
+        self,
+        dp: Index,
+        dc: Index,
+        live: Float,
+        base: Float,
+        live_dead: Float,
+        base_dead: Float,
+        output_sigma: Float,
+        time_s: Float,
     ) -> list[tuple[int, int, Evidence, BankTransition]]:
-        """PhysicalBands.set_baseline then update, for every channel of ``dc``."""
+        """PhysicalBands.set_baseline then update, for every channel of ``dc``.
+
+        ``live`` and ``base`` are feature rows, ``live_dead`` and
+        ``base_dead`` the (k, n_inputs) dead times of the same rows.
+        """
         bands, order = self.config.bands, self.order
-        m, ts = order.n_inputs, self.sample_period_s
-        dead = [float(nk) * ts for nk in order.nk]
+        m = order.n_inputs
         # (name, baseline column or constant, live column or constant, relative, tolerance)
         spec: list[tuple[str, Float, Float, bool, Float]] = []
         k = dc.shape[0]
@@ -1026,9 +1045,8 @@ class _Group:
         tol = np.full(k, float(bands.time_constant_tolerance))
         spec.append(("time_constant_s", base[:, m], live[:, m], True, tol))
         for i in range(m):
-            value = np.full(k, dead[i])
             tol = np.full(k, float(bands.dead_time_tolerance))
-            spec.append((f"dead_time_{i + 1}_s", value, value, True, tol))
+            spec.append((f"dead_time_{i + 1}_s", base_dead[:, i], live_dead[:, i], True, tol))
         if order.constant:
             if bands.offset_tolerance is None:
                 tol = bands.offset_sigmas * output_sigma

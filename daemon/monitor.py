@@ -15,7 +15,7 @@ same way. Per sample and per mode that has a baseline:
    current model; at the first sample of every ``evaluate_every`` sample
    periods of sample time (on the hour at the defaults), once it has
    settled, its physical read-out is compared with the baseline by a Wald
-   test on the features and by relative bands (gain, time constant, offset);
+   test on the features and by bands (gain, time constant, dead time, offset);
 3. every evidence goes through the alert lifecycle, and transitions become
    alert records (:mod:`arxwatch.daemon.alert`).
 
@@ -272,7 +272,10 @@ class _ModeMonitor:
         b = self.baseline
         self.estimator.warm_start(b.theta.tolist(), np.asarray(b.covariance) / b.sigma2, b.sigma2)
         self.drift.set_baseline(b.theta, b.covariance)
-        self.bands.set_baseline(b.readout, output_sigma=math.sqrt(b.sigma2))
+        # read from theta as the fleet does (a file from before dead times
+        # were read from the step response stored nk * Ts)
+        readout = read_out(b.order, b.theta, b.sample_period_s)
+        self.bands.set_baseline(readout, output_sigma=math.sqrt(b.sigma2))
 
     def restart(self) -> None:
         """Forget the past samples (after a gap or a mode switch)."""

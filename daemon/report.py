@@ -825,7 +825,11 @@ def _figure(
             v, b = value[:, j], base[:, j]
             if not np.isfinite(v).any() and not np.isfinite(b).any():
                 continue  # e.g. no offset in a model without a constant
-            if feature.startswith("dead_time_") and np.array_equal(v, b, equal_nan=True):
+            # a first-order model with one B coefficient reads nk * Ts whatever
+            # its estimate: no panel for a dead time that cannot move
+            if feature.startswith("dead_time_") and np.allclose(
+                v, b, rtol=1e-9, atol=0.0, equal_nan=True
+            ):
                 label = _feature_label(feature, names)
                 finite = b[np.isfinite(b)]
                 fixed.append(f"{label}: {float(finite[0]):g} s" if finite.shape[0] else label)

@@ -83,7 +83,9 @@ null means "undefined" when ``order.constant`` is true and "no constant term"
 otherwise), ``poles`` (na pairs ``[real, imag]``), ``dominant_pole`` (a pair
 or null), ``stable`` and ``integrating`` (booleans), ``time_constant_s`` (s),
 ``natural_frequency_rad_s`` and ``damped_frequency_rad_s`` (rad/s),
-``damping_ratio`` (numbers or null), ``dead_times_s`` (m numbers, s) and
+``damping_ratio`` (numbers or null), ``dead_times_s`` (m numbers or nulls,
+s; files written before dead times were read from the step response hold
+``nk * Ts``, and the monitor reads its band's baseline from ``theta``) and
 ``notes`` (list of strings). The stored reading is read back as it was
 written, not recomputed, so every replica reports the same numbers.
 
@@ -2070,7 +2072,7 @@ def _encode_readout(r: PhysicalReadout) -> dict[str, Any]:
         "natural_frequency_rad_s": _encode_float(r.natural_frequency_rad_s),
         "damped_frequency_rad_s": _encode_float(r.damped_frequency_rad_s),
         "damping_ratio": _encode_float(r.damping_ratio),
-        "dead_times_s": list(r.dead_times_s),
+        "dead_times_s": [_encode_float(d) for d in r.dead_times_s],
         "notes": list(r.notes),
     }
 
@@ -2111,7 +2113,9 @@ def _decode_readout(
             data["damped_frequency_rad_s"], f"{where}.damped_frequency_rad_s", nullable=True
         ),
         damping_ratio=_number(data["damping_ratio"], f"{where}.damping_ratio", nullable=True),
-        dead_times_s=tuple(_numbers(data["dead_times_s"], m, f"{where}.dead_times_s")),
+        dead_times_s=tuple(
+            _numbers(data["dead_times_s"], m, f"{where}.dead_times_s", nullable=True)
+        ),
         sample_period_s=sample_period_s,
         notes=tuple(_string(s, f"{where}.notes[{k}]") for k, s in enumerate(notes)),
     )

@@ -18,7 +18,8 @@ this module computes
 * the dominant time constant :math:`\tau = -T_s / \ln|p|` of the pole of
   largest modulus, and its natural frequency and damping ratio when that
   pole is complex;
-* the dead time of input i, :math:`nk_i T_s`.
+* the dead time of input i, read from the model's step response to that
+  input by the two-point rule (see :attr:`PhysicalReadout.dead_times_s`).
 
 Values that do not exist for the given theta (the gain of an integrating
 process, the time constant of an unstable or sign-alternating mode) are
@@ -54,6 +55,7 @@ from arxwatch.estimators.errors import DimensionError
 
 __all__ = [
     "PhysicalReadout",
+    "dead_time_matrix",
     "feature_jacobians",
     "features_and_jacobians",
     "feature_matrix",
@@ -78,6 +80,26 @@ _IMAG_RTOL = 1e-5
 
 #: Poles whose moduli agree to this relative tolerance tie for "dominant".
 _TIE_RTOL = 1e-9
+
+#: Fractions of the final value at which Smith's two-point method reads a
+#: step response: a first-order lag with dead time L and time constant T
+#: reaches 1 - e^(-1/3) at L + T/3 and 1 - e^(-1) at L + T, so
+#: T = 1.5 (t2 - t1) and L = t2 - T (C. L. Smith, Digital Computer Process
+#: Control, Intext, 1972; from memory, as given in process-control texts).
+_EARLY = 1.0 - math.exp(-1.0 / 3.0)
+_LATE = 1.0 - math.exp(-1.0)
+
+#: A step response is followed for its longest B lag, plus this many
+#: dominant time constants, plus _HORIZON_EXTRA samples; one not past 63 %
+#: by then has no dead time. A lag passes 63 % after one time constant;
+#: ten leave room for slower shapes. Common practice, no source.
+_HORIZON_TAUS = 10.0
+_HORIZON_EXTRA = 10
+
+#: ... and for at most this many samples, so that a model whose pole creeps
+#: towards 1 cannot hold an evaluation up (ten thousand steps of a handful of
+#: array operations). Common practice, no source.
+_HORIZON_MAX = 10_000.0
 
 #: Default relative step of the central differences: eps**(1/3) balances
 #: truncation error O(h^2) against rounding error O(eps/h)
@@ -127,9 +149,20 @@ class PhysicalReadout:
         zeta = -Re(s) / |s| of a complex dominant pole (negative when
         unstable); ``nan`` when the dominant pole is real.
     dead_times_s : tuple of float, length n_inputs
-        nk_i * Ts: seconds from a step in u_i to the first output sample that
-        responds. A zero-order-hold sampled process with pure delay d * Ts
-        has nk = d + 1, so this includes one sample for the sampling itself.
+        Apparent dead time of input i in seconds: the model's response to a
+        unit step in u_i is followed a sample at a time and read by Smith's
+        two-point rule (the times t1, t2 at which it passes 28.3 % and 63.2 %
+        of its final value K_i give T = 1.5 (t2 - t1) and L = t2 - T; between
+        samples the crossing is interpolated on ln(1 - r), exact for a
+        first-order lag), plus one sample period for the hold: a
+        zero-order-hold lag with pure delay d * Ts has nk = d + 1 and reads
+        exactly nk * Ts. Unlike nk * Ts it depends on theta: when the weight
+        of B_i moves to later lags (a longer transport delay inside the
+        lags nk_i .. nk_i + nb_i - 1 the model has) the reading grows. Never
+        below 0; ``nan`` (with a note) when there is no final value to read
+        against (no gain or time constant, a zero gain) or the response
+        does not pass 63.2 % within ten time constants (at most 10,000
+        samples).
     sample_period_s : float
         The sample period Ts the reading was made with.
     notes : tuple of str
@@ -233,8 +266,8 @@ def read_out(order: ArxOrder, theta: ArrayLike, sample_period_s: float) -> Physi
     >>> order = ArxOrder(na=1, nb=(1,), nk=(1,), constant=False)
     >>> a = math.exp(-30.0 / 300.0)
     >>> r = read_out(order, [-a, 2.0 * (1.0 - a)], sample_period_s=30.0)
-    >>> round(r.gains[0], 9), round(r.time_constant_s, 6), r.dead_times_s, r.stable
-    (2.0, 300.0, (30.0,), True)
+    >>> round(r.gains[0], 9), round(r.time_constant_s, 6), round(r.dead_times_s[0], 6), r.stable
+    (2.0, 300.0, 30.0, True)
 
     An integrator has no static gain:
 
@@ -263,8 +296,10 @@ def feature_names(order: ArxOrder) -> tuple[str, ...]:
     -------
     tuple of str, length n_inputs + 1 + int(order.constant)
         ``gain_1 .. gain_m``, ``time_constant_s`` and, when the model has a
-        constant term, ``offset``. Dead times are not features: they are
-        fixed by ``order.nk`` and do not depend on theta.
+        constant term, ``offset``. Dead times are not features of the Wald
+        test, whose chi-square rests on the delta method: read from the
+        crossing times of a step response, they are only piecewise smooth
+        in theta. The physical bands watch them.
 
     Examples
     --------
@@ -438,6 +473,48 @@ def feature_matrix(
     return np.ascontiguousarray(_features(order, arr, _check_sample_period(sample_period_s)))
 
 
+def dead_time_matrix(
+    order: ArxOrder,
+    thetas: NDArray[np.float64],
+    sample_period_s: float,
+    features: NDArray[np.float64] | None = None,
+) -> NDArray[np.float64]:
+    """Dead times of many parameter vectors at once: the numbers of :func:`read_out`.
+
+    Row r is ``read_out(order, thetas[r], sample_period_s).dead_times_s``,
+    bit for bit (every operation is element-wise over the rows).
+
+    Parameters
+    ----------
+    order : ArxOrder
+        Model structure.
+    thetas : ndarray, shape (k, n_params)
+        Parameter vectors, finite (not checked here: the caller's).
+    sample_period_s : float
+        Sample period Ts in seconds, finite and > 0.
+    features : ndarray, shape (k, n_features), optional
+        ``feature_matrix(order, thetas, sample_period_s)`` when the caller
+        has it already; computed when omitted.
+
+    Returns
+    -------
+    ndarray, shape (k, n_inputs)
+        Seconds; ``nan`` where :func:`read_out` says the dead time is
+        undefined.
+
+    Examples
+    --------
+    >>> order = ArxOrder(na=1, nb=(2,), nk=(1,), constant=False)
+    >>> dead_time_matrix(order, np.array([[-0.9, 0.1, 0.0], [-0.9, 0.0, 0.1]]), 60.0).round(1)
+    array([[ 60.],
+           [120.]])
+    """
+    ts = _check_sample_period(sample_period_s)
+    if features is None:
+        features = _features(order, thetas, ts)
+    return _dead_times(order, thetas, features, ts)
+
+
 def _sequential_sum(columns: NDArray[np.float64]) -> NDArray[np.float64]:
     """Row sums added left to right (a fixed order, so every caller gets the same bits)."""
     total = np.zeros(columns.shape[0])
@@ -529,6 +606,118 @@ def _time_constants(
         tau = -ts / np.log(np.where((modulus > 0.0) & (modulus < 1.0), modulus, 0.5))
     undefined = integrating | (modulus >= 1.0) | negative
     return np.where(modulus == 0.0, 0.0, np.where(undefined, np.nan, tau))
+
+
+def _dead_times(
+    order: ArxOrder, th: NDArray[np.float64], features: NDArray[np.float64], ts: float
+) -> NDArray[np.float64]:
+    """Apparent dead time of each input for each row of theta (the rules of read_out).
+
+    ``features`` are the rows' :func:`_features` (gains and time constant).
+    The step response of A(q) y = B_i(q) u is followed a sample at a time
+    and read by Smith's two-point method; every operation is element-wise,
+    so a row gives the same bits alone or in a batch.
+    """
+    k, na = th.shape[0], order.na
+    a = th[:, :na]
+    tau = features[:, order.n_inputs]
+    out = np.full((k, order.n_inputs), np.nan)
+    with np.errstate(invalid="ignore"):
+        spans = np.ceil(tau / ts * _HORIZON_TAUS)
+    for i in range(order.n_inputs):
+        nk, nb = order.nk[i], order.nb[i]
+        gain = features[:, i]
+        usable = np.flatnonzero(np.isfinite(gain) & (gain != 0.0) & np.isfinite(spans))
+        if not usable.shape[0]:
+            continue
+        crossed = _two_point(
+            a[usable],
+            th[usable, order.input_slice(i)],
+            nk,
+            gain[usable],
+            np.minimum(spans[usable] + (nk + nb - 1 + _HORIZON_EXTRA), _HORIZON_MAX),
+        )
+        early, late = crossed
+        with np.errstate(invalid="ignore"):
+            lag = late - 1.5 * (late - early)
+            out[usable, i] = np.maximum(lag + 1.0, 0.0) * ts
+    return out
+
+
+def _two_point(
+    a: NDArray[np.float64],
+    b: NDArray[np.float64],
+    nk: int,
+    gain: NDArray[np.float64],
+    horizon: NDArray[np.float64],
+) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """Return when (in samples) each row's unit-step response crosses _EARLY and _LATE.
+
+    Interpolated between samples by :func:`_crossing`, the response before
+    the step being 0; ``nan`` for a row that has not crossed _LATE by its
+    ``horizon``. Rows that have crossed drop out of the recursion.
+    """
+    n, na, nb = a.shape[0], a.shape[1], b.shape[1]
+    early, late = np.full(n, np.nan), np.full(n, np.nan)
+    rows = np.arange(n)  # the rows still followed; the arrays below hold only them
+    a_cols = [a[:, j] for j in range(na)]
+    b_cols = [b[:, j] for j in range(nb)]
+    g, h, t_early = gain, horizon, early.copy()
+    drive, before = np.zeros(n), np.zeros(n)
+    past = [np.zeros(n) for _ in range(na)]  # y(s-1), y(s-2), ...
+    s, last, first_end = 0, float(horizon.max()), float(horizon.min())
+    early_pending = True  # some row has not passed _EARLY yet
+    while s <= last:
+        if nk <= s < nk + nb:
+            drive = drive + b_cols[s - nk]
+        y = drive
+        for j in range(na):
+            y = y - a_cols[j] * past[j]
+        r = y / g
+        if early_pending:
+            waiting = np.isnan(t_early) & (r >= _EARLY)
+            if waiting.any():
+                t_early[waiting] = (s - 1) + _crossing(_EARLY, before[waiting], r[waiting])
+                early_pending = bool(np.isnan(t_early).any())
+        done = r >= _LATE
+        ended = bool(done.any())
+        if ended:
+            t = (s - 1) + _crossing(_LATE, before[done], r[done])
+            late[rows[done]] = t
+            early[rows[done]] = t_early[done]
+        past = [y, *past[:-1]]
+        before = r
+        s += 1
+        if ended or s > first_end:
+            going = ~done & (s <= h)
+            if not going.any():
+                break
+            rows = rows[going]
+            g, h, t_early, drive, before = (v[going] for v in (g, h, t_early, drive, before))
+            a_cols = [c[going] for c in a_cols]
+            b_cols = [c[going] for c in b_cols]
+            past = [p[going] for p in past]
+            first_end = float(h.min())
+            early_pending = bool(np.isnan(t_early).any())
+    return early, late
+
+
+def _crossing(
+    frac: float, before: NDArray[np.float64], after: NDArray[np.float64]
+) -> NDArray[np.float64]:
+    """Return where between two samples (0..1) the response crosses ``frac``.
+
+    The response goes from ``before`` at one sample to ``after`` at the next.
+
+    Interpolated on ln(1 - r), which a first-order lag's response makes a
+    straight line in time, so a lag with whole-sample delay reads exactly;
+    linearly where the response has passed 1 (overshoot).
+    """
+    with np.errstate(divide="ignore", invalid="ignore"):
+        start = np.log1p(-before)
+        logged = (math.log1p(-frac) - start) / (np.log1p(-after) - start)
+    linear = (frac - before) / (after - before)
+    return np.where(after <= 1.0, logged, linear)
 
 
 def feature_jacobians(
@@ -777,7 +966,9 @@ def _read_out_unchecked(order: ArxOrder, theta: NDArray[np.float64], ts: float) 
     nan = float("nan")
     # The numbers come from the vectorised read-out, so that a vector read
     # alone and one read among thousands give the same bits.
-    numbers = _features(order, theta[None, :], ts)[0].tolist()
+    features = _features(order, theta[None, :], ts)
+    numbers = features[0].tolist()
+    dead_times = _dead_times(order, theta[None, :], features, ts)[0].tolist()
     gains = tuple(numbers[: order.n_inputs])
     offset: float | None = numbers[-1] if order.constant else None
 
@@ -815,6 +1006,14 @@ def _read_out_unchecked(order: ArxOrder, theta: NDArray[np.float64], ts: float) 
                     f"ratio {zeta:.3f}); time constant is that of the decay envelope, -Ts/ln|z|"
                 )
 
+    for i, dead in enumerate(dead_times):
+        if math.isnan(dead):
+            notes.append(
+                f"dead time of input {i + 1} undefined: its step response has no final value "
+                "to read it against (no static gain or time constant, or a zero gain), or "
+                "does not pass 63 % of it within ten time constants (10,000 samples at most)"
+            )
+
     return PhysicalReadout(
         gains=gains,
         offset=offset,
@@ -826,7 +1025,7 @@ def _read_out_unchecked(order: ArxOrder, theta: NDArray[np.float64], ts: float) 
         natural_frequency_rad_s=omega_n,
         damped_frequency_rad_s=omega_d,
         damping_ratio=zeta,
-        dead_times_s=tuple(float(nk) * ts for nk in order.nk),
+        dead_times_s=tuple(dead_times),
         sample_period_s=ts,
         notes=tuple(notes),
     )

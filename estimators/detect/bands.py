@@ -7,7 +7,10 @@ a technician. Each feature of a
 baseline value:
 
 * static gains, the dominant time constant and dead times by their relative
-  change ``(current - baseline) / |baseline|`` against a relative tolerance;
+  change ``(current - baseline) / |baseline|`` against a relative tolerance
+  (dead times as :attr:`~arxwatch.estimators.readout.PhysicalReadout.dead_times_s`
+  reads them from the step response: they follow a delay change best within
+  the lags the model's B polynomial covers);
 * the offset (steady-state output with all inputs zero, in output units) by
   its absolute change against an absolute tolerance, given directly or as a
   multiple of an output standard deviation supplied with the baseline.

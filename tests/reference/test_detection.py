@@ -65,6 +65,13 @@ CASES = {
         ("physical_band/time_constant_s",),
         word="slower",
     ),
+    # the transport delay doubles (two more samples): the dead time read from
+    # the live model's step response moves past its band
+    "dead-time increase": Case(
+        Fault("longer_delay", FAULT_AT_DAY * DAY, 120.0),
+        ("physical_band/dead_time_1_s",),
+        word="later",
+    ),
 }
 RESULTS: dict[tuple[str, str], str] = {}
 

@@ -10,6 +10,7 @@ source.
 from __future__ import annotations
 
 import math
+import warnings
 
 import numpy as np
 import pytest
@@ -52,6 +53,45 @@ def dc_gain_scipy(order: ArxOrder, theta: NDArray[np.float64]) -> float:
     return value.real
 
 
+def two_point_dead_times(order: ArxOrder, theta: NDArray[np.float64], ts: float) -> list[float]:
+    """Dead time of each input from scipy.signal.dstep's step response, by the two-point rule.
+
+    Source of the rule: C. L. Smith, Digital Computer Process Control, Intext,
+    1972 (from memory): a first-order lag with dead time L and time constant
+    T reaches 28.3 % of its final value at L + T/3 and 63.2 % at L + T, so
+    T = 1.5 (t2 - t1) and L = t2 - T. Between samples the crossing is
+    interpolated on ln(1 - r), a straight line for such a lag, and one sample
+    period is added for the hold, as read_out documents (its convention, so
+    that a zero-order-hold lag with pure delay d Ts reads (d + 1) Ts = nk Ts).
+    Source of the response: scipy.signal.dstep, an outside oracle.
+    """
+    a = np.concatenate(([1.0], theta[: order.na]))
+    out = []
+    for i in range(order.n_inputs):
+        b = np.concatenate((np.zeros(order.nk[i]), theta[order.input_slice(i)]))
+        size = max(a.shape[0], b.shape[0])
+        # equal lengths: B(z^-1) / A(z^-1) = (z^N B(z^-1)) / (z^N A(z^-1)) in powers of z
+        num, den = np.pad(b, (0, size - b.shape[0])), np.pad(a, (0, size - a.shape[0]))
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", signal.BadCoefficients)
+            _, (y,) = signal.dstep(signal.dlti(num, den, dt=ts), n=2000)
+        r = y[:, 0] / (b.sum() / a.sum())
+        times = []
+        for frac in (1.0 - math.exp(-1.0 / 3.0), 1.0 - math.exp(-1.0)):
+            k = int(np.flatnonzero(r >= frac)[0])
+            before, after = (r[k - 1] if k else 0.0), r[k]
+            if after <= 1.0:
+                part = (math.log1p(-frac) - math.log1p(-before)) / (
+                    math.log1p(-after) - math.log1p(-before)
+                )
+            else:
+                part = (frac - before) / (after - before)
+            times.append(k - 1 + part)
+        lag = times[1] - 1.5 * (times[1] - times[0])
+        out.append(max(lag + 1.0, 0.0) * ts)
+    return out
+
+
 @pytest.mark.parametrize(
     ("gain", "tau_s", "ts"),
     [(2.5, 300.0, 30.0), (-0.8, 45.0, 5.0), (12.0, 3600.0, 60.0), (0.3, 20.0, 15.0)],
@@ -73,7 +113,9 @@ def test_first_order_lag_recovers_gain_and_time_constant(
     assert r.gains[0] == pytest.approx(gain, rel=RTOL)
     assert r.time_constant_s == pytest.approx(tau_s, rel=RTOL)
     assert r.stable and not r.integrating
-    assert r.dead_times_s == (ts,)
+    # Source: the two-point rule reads a first-order lag exactly: no delay
+    # but the hold's sample (see two_point_dead_times).
+    assert r.dead_times_s == pytest.approx((ts,), rel=RTOL)
     assert r.offset is None
     # Source: scipy.signal.freqz of B/A at w = 0.
     assert r.gains[0] == pytest.approx(dc_gain_scipy(order, theta), rel=RTOL)
@@ -197,4 +239,32 @@ def test_two_input_gains_against_freqz() -> None:
         b = np.concatenate((np.zeros(order.nk[i]), theta[order.input_slice(i)]))
         _, h = signal.freqz(b, a, worN=[0.0])
         assert r.gains[i] == pytest.approx(complex(h[0]).real, rel=RTOL)
-    assert r.dead_times_s == (60.0, 240.0)
+    assert r.dead_times_s == pytest.approx(two_point_dead_times(order, theta, 60.0), rel=RTOL)
+
+
+def test_multi_input_dead_times_against_the_step_response() -> None:
+    # Values: common practice, no source (slow poles 0.8 and 0.3, three inputs
+    # with different delays and B shapes). Oracle: two_point_dead_times.
+    order = ArxOrder(na=2, nb=(2, 1, 3), nk=(1, 0, 4), constant=True)
+    theta = np.array([-1.1, 0.24, 0.2, 0.1, -0.05, 0.01, 0.02, 0.03, 0.4])
+    r = read_out(order, theta, 30.0)
+    assert r.dead_times_s == pytest.approx(two_point_dead_times(order, theta, 30.0), rel=RTOL)
+
+
+@pytest.mark.parametrize("late", [0.0, 0.25, 0.5, 0.75, 1.0])
+def test_dead_time_follows_the_weight_of_b_to_a_later_lag(late: float) -> None:
+    # A first-order lag whose B holds two lags (nb = 2): the share `late` of
+    # the input's effect arrives one sample later. At the ends the process
+    # is a lag with whole-sample delay, read exactly (Smith's rule on a
+    # first-order lag); in between the reading moves one way with the share.
+    # Oracle: two_point_dead_times (scipy.signal.dstep).
+    gain, tau_s, ts, nk = 2.0, 300.0, 30.0, 2
+    a, b = zoh_first_order(gain, tau_s, ts)
+    order = ArxOrder(na=1, nb=(2,), nk=(nk,), constant=False)
+    theta = np.array([-a, b * (1.0 - late), b * late])
+    r = read_out(order, theta, ts)
+    assert r.dead_times_s == pytest.approx(two_point_dead_times(order, theta, ts), rel=RTOL)
+    if late in (0.0, 1.0):
+        assert r.dead_times_s[0] == pytest.approx((nk + late) * ts, rel=RTOL)
+    else:
+        assert nk * ts < r.dead_times_s[0] < (nk + 1) * ts

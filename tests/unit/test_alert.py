@@ -35,6 +35,28 @@ def test_gain_loss_reads_as_coil_or_valve_problem() -> None:
     assert "coil fouling" in text and "verify on site" in text
 
 
+def test_dead_time_reads_as_later_or_sooner_and_undefined_names_the_actuator() -> None:
+    later = reading(band("dead_time_1_s", 120.0, 200.0), NAMES, 0.03)
+    assert later.startswith(
+        "supply-air temperature starts to answer cooling valve 67 % later than at commissioning"
+    )
+    assert "(200 s vs 120 s dead time)" in later and "verify on site" in later
+    assert "sooner" in reading(band("dead_time_1_s", 120.0, 60.0), NAMES, 0.03)
+    gone = Evidence(
+        "physical_band",
+        "behaviour",
+        float("inf"),
+        0.5,
+        True,
+        "dead_time_1_s",
+        {"baseline": 120.0},
+        "undefined",
+    )
+    text = reading(gone, NAMES, 0.03)
+    assert text.startswith("the dead time of cooling valve can no longer be read")
+    assert "no longer moves supply-air temperature measurably" in text
+
+
 def test_readings_per_detector() -> None:
     cusum = Evidence(
         "innovation_mean",

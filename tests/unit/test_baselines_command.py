@@ -99,10 +99,11 @@ def test_the_table_reports_the_simulated_loop(fitted: tuple[Path, str]) -> None:
         # and 10 s on tau. The sensor noise is white on the output, so the ARX equation
         # error is coloured and least squares is slightly biased (tau comes out 1-3 % short
         # on these seeds). Gain within 2 % (about 7 standard errors), tau within 5 % (30 s,
-        # three standard errors plus that bias), dead time exact.
+        # three standard errors plus that bias). The dead time is read from the fitted
+        # model's step response (two-point rule), which carries the same bias: within 5 %.
         assert float(cells[6]) == pytest.approx(LOOP.gain, rel=0.02)
         assert float(cells[7]) == pytest.approx(LOOP.time_constant_s, rel=0.05)
-        assert float(cells[8]) == LOOP.dead_time_s
+        assert float(cells[8]) == pytest.approx(LOOP.dead_time_s, rel=0.05)
         # innovation sigma: at least the sensor noise, and not much more (coloured by the model)
         assert LOOP.noise_std * 0.9 < float(cells[9]) < LOOP.noise_std * 1.5
         assert cells[10] == "2026-01-01 00:00 +2.0 d"

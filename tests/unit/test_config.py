@@ -370,3 +370,15 @@ def test_alert_lifecycle_is_set_per_class_and_checked_together() -> None:
     data["asset_classes"][0]["detectors"] = {"clear_n": 0}
     with pytest.raises(ConfigError, match=r"detectors\.clear_n"):
         parse(data)
+
+
+def test_band_tolerances_are_set_per_class_and_checked() -> None:
+    data = base()
+    data["asset_classes"][0]["detectors"] = {"dead_time_tolerance": 0.3, "gain_tolerance": 0.2}
+    config = parse_config(yaml.safe_dump(data, sort_keys=False), "site.yaml")
+    bands = config.asset_classes[0].monitor_config().bands
+    assert (bands.dead_time_tolerance, bands.gain_tolerance) == (0.3, 0.2)
+    assert bands.time_constant_tolerance == 0.5  # the default stays
+    data["asset_classes"][0]["detectors"] = {"dead_time_tolerance": 0}
+    with pytest.raises(ConfigError, match=r"dead_time_tolerance must be a finite number > 0"):
+        parse(data)

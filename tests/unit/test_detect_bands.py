@@ -32,7 +32,8 @@ def test_features_and_relative_changes() -> None:
     assert gain.values["change"] == pytest.approx(-0.25)
     assert gain.alarm and gain.detail == "low" and gain.threshold == 0.25
     assert not evs["time_constant_s"].alarm and evs["time_constant_s"].values["change"] == 0.0
-    assert evs["dead_time_1_s"].values["current"] == 120.0
+    # a first-order lag with nk = 2: the two-point reading of its step response is nk * Ts
+    assert evs["dead_time_1_s"].values["current"] == pytest.approx(120.0, rel=1e-12)
     assert gain.detector == "physical_band" and gain.family == "behaviour"
 
 

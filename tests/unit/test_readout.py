@@ -20,6 +20,7 @@ from arxwatch.estimators.arx import ArxOrder
 from arxwatch.estimators.errors import DimensionError
 from arxwatch.estimators.readout import (
     PhysicalReadout,
+    dead_time_matrix,
     feature_jacobians,
     feature_matrix,
     feature_names,
@@ -239,7 +240,12 @@ def test_multi_input_gains_and_dead_times() -> None:
         (sum(b1) / a_at_one, sum(b2) / a_at_one, sum(b3) / a_at_one), rel=1e-12
     )
     assert r.offset == pytest.approx(c / a_at_one)
-    assert r.dead_times_s == (30.0, 0.0, 120.0)
+    # dead times from the step response (checked against scipy in
+    # tests/reference/test_readout_reference.py): ordered as the delays,
+    # each at least its structure's first lag minus the hold's sample
+    d1, d2, d3 = r.dead_times_s
+    assert 0.0 <= d2 < d1 < d3
+    assert d1 >= 0.0 and d3 >= (4 - 1) * 30.0
 
 
 def test_no_output_polynomial_gives_zero_tau() -> None:
@@ -357,6 +363,40 @@ def test_jacobians_are_the_full_central_difference_bit_for_bit(order: ArxOrder) 
     assert features.tobytes() == at_theta.tobytes()
     assert jacobians.tobytes() == expected.tobytes()
     assert jacobians.tobytes() == feature_jacobians(order, thetas, 60.0).tobytes()
+
+
+def test_dead_time_matrix_gives_each_row_the_bits_of_read_out() -> None:
+    # Rows read alone (read_out) and among others, in any order, agree bit for
+    # bit; rows with no final value (integrating, zero gain) are nan and say why.
+    order = ArxOrder(na=2, nb=(2, 1), nk=(2, 1), constant=True)
+    rng = np.random.default_rng(3)
+    thetas = np.column_stack(
+        (
+            rng.uniform(-1.2, -0.6, 40),
+            rng.uniform(0.0, 0.3, 40),
+            rng.normal(0.0, 0.1, (40, 3)),
+            rng.normal(0.0, 1.0, 40),
+        )
+    )
+    thetas[0, :2] = [-1.5, 0.5]  # integrating: A(1) = 0
+    thetas[1, 2:4] = 0.0  # input 1 has no effect
+    alone = np.array([read_out(order, row, 60.0).dead_times_s for row in thetas])
+    together = dead_time_matrix(order, thetas, 60.0)
+    assert together.tobytes() == alone.tobytes()
+    flipped = dead_time_matrix(order, thetas[::-1].copy(), 60.0)[::-1]
+    assert flipped.tobytes() == alone.tobytes()
+    assert np.isnan(alone[0]).all() and np.isnan(alone[1, 0]) and np.isfinite(alone[1, 1])
+    notes = read_out(order, thetas[1], 60.0).notes
+    assert any("dead time of input 1 undefined" in n for n in notes)
+    assert np.isfinite(alone[2:]).mean() > 0.5  # the check above is not vacuous
+
+
+def test_dead_time_of_a_very_slow_model_is_undefined_past_the_horizon_cap() -> None:
+    # pole 0.99999: a time constant of 1e5 samples, past the 10,000-sample cap
+    order = ArxOrder(na=1, nb=(1,), nk=(1,), constant=False)
+    r = read_out(order, [-0.99999, 1e-5], 60.0)
+    assert math.isnan(r.dead_times_s[0]) and math.isfinite(r.time_constant_s)
+    assert any("10,000 samples at most" in n for n in r.notes)
 
 
 def test_jacobian_is_nan_where_feature_undefined() -> None:

@@ -34,6 +34,7 @@ from arxwatch.daemon.report import _figure as render
 from arxwatch.daemon.report import _merged_spans as merged_spans
 from arxwatch.daemon.simulate import REFERENCE_LOOPS, daily_operation
 from arxwatch.daemon.trace import FleetTrace
+from arxwatch.estimators.arx import ArxOrder
 from arxwatch.estimators.baseline import Baseline, BaselineSet, fit_baseline
 from tests.unit.test_pipeline import (
     PERIOD,
@@ -253,14 +254,34 @@ def test_a_two_input_asset_gets_a_gain_plot_per_input() -> None:
     png, captions = render("larkspur/ahu-1", trace, [], (START, START + 1100 * PERIOD))
     assert png_size(png)[0] > 800
     titles = [re.sub(r"<[^>]+>", "", c).split("(")[0].strip() for c in captions]
-    assert titles[3:7] == [
+    assert titles[3:9] == [
         "Gain of cooling valve on supply-air temperature",
         "Gain of heating valve on supply-air temperature",
         "Time constant of supply-air temperature",
+        "Dead time of cooling valve",
+        "Dead time of heating valve",
         "Offset of supply-air temperature",
     ]
-    dead = fit.baseline.order.nk
-    assert captions[-1].endswith(
-        f"dead time of cooling valve: {dead[0] * PERIOD:g} s; "
-        f"dead time of heating valve: {dead[1] * PERIOD:g} s."
-    )
+
+
+def test_a_dead_time_that_cannot_move_is_named_not_plotted() -> None:
+    # A first-order model with one B coefficient: its step response reads
+    # nk * Ts whatever the estimate, so the page states it instead of a flat plot.
+    loop = REFERENCE_LOOPS["first-order+dead-time"]
+    u = daily_operation(2 * 1440, PERIOD, seed=1)
+    order = ArxOrder(na=1, nb=(1,), nk=(2,))
+    fit = fit_baseline(loop.simulate(u, seed=2), u[:, None],
+                       START - 3 * 86400 + np.arange(len(u)) * PERIOD, sample_period_s=PERIOD,
+                       order=order)  # fmt: skip
+    assert fit.baseline is not None
+    fleet = FleetMonitor(SignalNames("supply-air temperature", "degC", ("cooling valve",), ("%",)),
+                         MonitorConfig())  # fmt: skip
+    slot = fleet.add_asset("larkspur/ahu-2", BaselineSet((fit.baseline,)))
+    fleet.trace = trace = FleetTrace()
+    u = daily_operation(600, PERIOD, seed=7)
+    y = loop.simulate(u, seed=8)
+    for k in range(600):
+        fleet.step([slot], [START + k * PERIOD], [float(y[k])], [[float(u[k])]], [None], [False])
+    _, captions = render("larkspur/ahu-2", trace, [], (START, START + 600 * PERIOD))
+    assert not any("Dead time" in c for c in captions)
+    assert captions[-1].endswith("dead time of cooling valve: 120 s.")
