@@ -92,6 +92,9 @@ _CUSUM_KEY = "innovation_mean/innovation"
 _VARIANCE_KEY = "innovation_variance/innovation"
 _WHITENESS_KEY = "innovation_whiteness/innovation"
 _DRIFT_KEY = "feature_drift/features"
+#: Position of _CUSUM_KEY in _Group.keys: innovation_mean is the one detector
+#: of CHANGE_DETECTORS, whose raised alert keeps the live estimate re-learning.
+_CHANGE_KEY = 0
 _QUALITY_KINDS = ("out_of_range", "stuck", "gap", "stale")
 
 #: Largest wave of a group that the compiled back end takes a row at a time:
@@ -510,7 +513,7 @@ class _Group:
             # steps 1 and 2 compiled, then step 3 as below
             due = self.evaluation_due(time_s)
             # read before the rows' evidence is observed, as in _innovate
-            changing = self.tracker.raised[ch, 0] | self.tracker.raised[ch, 1] if due else None
+            changing = self.tracker.raised[ch, _CHANGE_KEY] if due else None
             innovated, updated = self._step_compiled(ch, time_s, y, u)
             found += innovated
             if changing is not None and updated.any():
@@ -576,7 +579,7 @@ class _Group:
         found: list[tuple[int, int, Evidence, BankTransition]] = []
         every: Sel = slice(0, y.shape[0])
         # _ModeMonitor.step reads the tracker before this row's evidence is observed
-        changing = self.tracker.raised[sel, 0] | self.tracker.raised[sel, 1]
+        changing = self.tracker.raised[sel, _CHANGE_KEY]
         # 1. the baseline model's normalised residual, winsorised
         ready = a["base_count"][sel] >= self.depth
         y_past = y.copy()

@@ -137,3 +137,21 @@ def test_a_lasting_fault_keeps_its_drift_alert_raised(run_asset, loop_name: str)
     drift = [r["state"] for _, r in records if r["detector"] == "feature_drift"]
     assert drift and "cleared" not in drift, drift
     assert "None:feature_drift/features" in monitor.active()
+
+
+@pytest.mark.parametrize("loop_name", sorted(LOOPS))
+def test_a_modest_noise_increase_is_named_as_noise_and_nothing_else(
+    run_asset, loop_name: str
+) -> None:
+    # A sensor 30 % noisier: the model has not changed, so the live estimate
+    # does not re-learn, and no band alarms on the noise a re-learning
+    # estimate would carry (before: an offset band alert on each loop).
+    fault = Fault("noise_increase", FAULT_AT_DAY * DAY, 0.3)
+    records, _ = run_asset(3.0, (fault,), 7, loop=loop_name)
+    start_k = int(FAULT_AT_DAY * PER_DAY)
+    raised = {
+        f"{r['detector']}/{r['signal']}"
+        for k, r in records
+        if r["state"] == "raised" and k >= start_k
+    }
+    assert raised == {"innovation_variance/innovation"}
