@@ -155,8 +155,10 @@ def reading(evidence: Evidence, names: SignalNames, sigma: float) -> str:
 
 def _band_reading(evidence: Evidence, names: SignalNames) -> str:
     v, feature, out, unit = evidence.values, evidence.signal, names.output, names.output_unit
-    if evidence.detail == "undefined" and feature.startswith("dead_time_"):
-        source = names.inputs[int(feature.split("_")[2]) - 1]
+    # dead_time_<i>_s: the input whose delay it is
+    dead = feature.startswith("dead_time_")
+    source = names.inputs[int(feature.split("_")[2]) - 1] if dead else ""
+    if evidence.detail == "undefined" and dead:
         return (
             f"the dead time of {source} can no longer be read from the model of {out}: "
             f"{source} no longer moves {out} measurably, or the response became integrating "
@@ -199,8 +201,7 @@ def _band_reading(evidence: Evidence, names: SignalNames) -> str:
             f"commissioning ({v['current']:.0f} s vs {v['baseline']:.0f} s): {cause} "
             f"is likely."
         )
-    if feature.startswith("dead_time_"):
-        source = names.inputs[int(feature.split("_")[2]) - 1]
+    if dead:
         cause = (
             "a relocated sensor, higher flow or a changed control sequence is likely"
             if lower

@@ -630,14 +630,13 @@ def _dead_times(
         usable = np.flatnonzero(np.isfinite(gain) & (gain != 0.0) & np.isfinite(spans))
         if not usable.shape[0]:
             continue
-        crossed = _two_point(
+        early, late = _two_point(
             a[usable],
             th[usable, order.input_slice(i)],
             nk,
             gain[usable],
             np.minimum(spans[usable] + (nk + nb - 1 + _HORIZON_EXTRA), _HORIZON_MAX),
         )
-        early, late = crossed
         with np.errstate(invalid="ignore"):
             lag = late - 1.5 * (late - early)
             out[usable, i] = np.maximum(lag + 1.0, 0.0) * ts
