@@ -117,7 +117,8 @@ def reading(evidence: Evidence, names: SignalNames, sigma: float) -> str:
     v, out, unit = evidence.values, names.output, names.output_unit
     kind, side = evidence.detector, evidence.detail
     if kind == "innovation_mean":
-        shift = v["shift_sigma"]
+        # the CUSUM's shift is in units of its input, which a noisier sensor widened
+        shift = v["shift_sigma"] * v.get("noise_scale", 1.0)
         where = "above" if shift > 0 else "below"
         return (
             f"{out} runs about {abs(shift):.1f} sigma ({abs(shift) * sigma:.3g} {unit}) "

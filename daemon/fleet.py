@@ -107,10 +107,12 @@ COMPILED_ROWS = 1024
 _BASE_STATE = ("base_y", "base_u", "base_count", "theta0", "cov0", "sigma2")
 _DETECTOR_STATE = (
     *("pw_count", "pw_sums", "pw_head", "pw_past", "pw_scale"),
-    *("c_high", "c_low", "n_high", "n_low", "var_s"),
+    *("c_high", "c_low", "n_high", "n_low", "cu_previous", "cu_noise", "var_s"),
     *("wh_count", "wh_sums", "wh_head", "wh_past"),
 )
 _LIVE_STATE = ("rls_y", "rls_u", "rls_count", "rls", "samples")
+#: State arrays added after _STATE_VERSION was fixed: a saved state may lack them.
+_ADDED_STATE = frozenset({"cu_previous", "cu_noise"})
 #: Rows of the compiled innovation kernel's outputs (fleetnative.FLOAT_OUT, INT_OUT).
 (
     _F_PREDICTION,
@@ -118,6 +120,7 @@ _LIVE_STATE = ("rls_y", "rls_u", "rls_count", "rls", "samples")
     _F_C_HIGH,
     _F_C_LOW,
     _F_CUSUM_STATISTIC,
+    _F_CUSUM_NOISE_SCALE,
     _F_VARIANCE_S,
     _F_VARIANCE_STATISTIC,
     _F_VARIANCE_THRESHOLD,
@@ -264,6 +267,7 @@ class _Group:
                 config.variance.lam,
                 1.0 / self.variance_lower if config.variance.lower else math.inf,
                 self.variance_upper,
+                config.cusum.noise_lam,
             ],
             dtype=np.float64,
         )
@@ -326,6 +330,9 @@ class _Group:
             "c_low": ((), np.float64, 0.0),
             "n_high": ((), np.int32, 0),
             "n_low": ((), np.int32, 0),
+            # the CUSUM's last input (nan: none yet) and successive-difference noise level
+            "cu_previous": ((), np.float64, np.nan),
+            "cu_noise": ((), np.float64, 1.0),
             "var_s": ((), np.float64, 1.0),
             "wh_count": ((), np.int32, 0),
             "wh_sums": ((lags + 2,), np.float64, 0.0),
@@ -426,6 +433,8 @@ class _Group:
         self._allocate(capacity)
         for name, (tail, dtype, _) in self._shapes().items():
             saved = arrays.get(name)
+            if saved is None and name in _ADDED_STATE:
+                continue  # saved before this array existed: it keeps its initial value
             if saved is None:
                 raise ValueError(f"saved monitor state lacks {name!r}")
             shape = (*tail, capacity)
@@ -683,6 +692,7 @@ class _Group:
         if not judged:
             return found
         c_high, c_low = out_f[_F_C_HIGH], out_f[_F_C_LOW]
+        noise_scale = out_f[_F_CUSUM_NOISE_SCALE]
         self.tap["cusum"] = (every, c_high, c_low)
         if cusum_busy:
             busy = np.flatnonzero(out_i[_I_CUSUM_BUSY])
@@ -692,7 +702,7 @@ class _Group:
             n_high, n_low = out_i[_I_N_HIGH], out_i[_I_N_LOW]
             for t in tracker.observe(ch[busy], 0, statistic, cusum_h, alarm, time_s[busy]):
                 r = int(busy[t.position])
-                ev = self._cusum_evidence(c_high, c_low, n_high, n_low, r)
+                ev = self._cusum_evidence(c_high, c_low, n_high, n_low, noise_scale, r)
                 found.append((r, 0, ev, t))
         if variance_busy:
             busy = np.flatnonzero(out_i[_I_VARIANCE_BUSY])
@@ -790,6 +800,14 @@ class _Group:
     ) -> list[tuple[int, int, Evidence, BankTransition]]:
         """Cusum.update, element-wise."""
         a, cusum = self.arrays, self.config.cusum
+        lam = float(cusum.noise_lam)
+        previous = a["cu_previous"][rc]
+        d = eps - previous
+        noise = a["cu_noise"][rc]
+        noise = np.where(previous == previous, (1.0 - lam) * noise + lam * (0.5 * (d * d)), noise)
+        a["cu_previous"][rc], a["cu_noise"][rc] = eps, noise
+        scale = np.where(noise > 1.0, np.sqrt(noise), 1.0)
+        eps = eps / scale
         k = float(cusum.k)
         c_high = a["c_high"][rc] + eps - k
         up = c_high > 0.0
@@ -814,7 +832,7 @@ class _Group:
             (
                 int(_indices(rp)[t.position]),
                 0,
-                self._cusum_evidence(c_high, c_low, n_high, n_low, t.position),
+                self._cusum_evidence(c_high, c_low, n_high, n_low, scale, t.position),
                 t,
             )
             for t in transitions
@@ -828,7 +846,13 @@ class _Group:
         return found
 
     def _cusum_evidence(
-        self, c_high: Float, c_low: Float, n_high: NDArray[Any], n_low: NDArray[Any], i: int
+        self,
+        c_high: Float,
+        c_low: Float,
+        n_high: NDArray[Any],
+        n_low: NDArray[Any],
+        scale: Float,
+        i: int,
     ) -> Evidence:
         """Build the Evidence Cusum.update would return for element ``i``."""
         k, h = float(self.config.cusum.k), float(self.config.cusum.h)
@@ -851,6 +875,7 @@ class _Group:
                 "c_low": lo,
                 "samples_since_zero": float(n),
                 "shift_sigma": shift,
+                "noise_scale": float(scale[i]),
             },
             detail=detail,
         )

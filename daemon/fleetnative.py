@@ -80,6 +80,7 @@ FLOAT_OUT = (
     "c_high",
     "c_low",
     "cusum_statistic",
+    "cusum_noise_scale",  # what the CUSUM divided its input by
     "variance_s",
     "variance_statistic",
     "variance_threshold",
@@ -174,6 +175,8 @@ def _innovate(
     c_low: Any,
     n_high: Any,
     n_low: Any,
+    cu_previous: Any,
+    cu_noise: Any,
     var_s: Any,
     wh_count: Any,
     wh_sums: Any,
@@ -194,7 +197,7 @@ def _innovate(
 
     ``structure`` holds (na, constant, depth, reference_samples, window,
     cusum restart, variance lower); ``settings`` (clip, cusum k, cusum h,
-    variance lambda, 1 / lower limit, upper limit). The state arrays are
+    variance lambda, 1 / lower limit, upper limit, cusum noise lambda). The state arrays are
     updated in place, channel on the last axis.
     """
     constant, depth = structure[1], structure[2]
@@ -203,6 +206,8 @@ def _innovate(
     clip, k_ref, h = settings[0], settings[1], settings[2]
     lam, low_threshold, upper = settings[3], settings[4], settings[5]
     keep = 1.0 - lam
+    noise_lam = settings[6]
+    noise_keep = 1.0 - noise_lam
     n, p, lags = theta0.shape[0], pw_past.shape[0], wh_past.shape[0]
     phi = np.empty(n)
     for i in range(ch.shape[0]):
@@ -253,12 +258,21 @@ def _innovate(
                 if eps < -clip:
                     eps = -clip
                 totals[1] += 1
-                # 3. CUSUM (_Group._cusum)
-                hi = c_high[c] + eps - k_ref
+                # 3. CUSUM (_Group._cusum), its input scaled by the noise level
+                previous = cu_previous[c]
+                noise = cu_noise[c]
+                if previous == previous:
+                    d = eps - previous
+                    noise = noise_keep * noise + noise_lam * (0.5 * (d * d))
+                cu_previous[c], cu_noise[c] = eps, noise
+                scale = math.sqrt(noise) if noise > 1.0 else 1.0
+                out_f[5, i] = scale
+                x = eps / scale
+                hi = c_high[c] + x - k_ref
                 nh = n_high[c] + 1 if hi > 0.0 else 0
                 if not hi > 0.0:
                     hi = 0.0
-                lo = c_low[c] - eps - k_ref
+                lo = c_low[c] - x - k_ref
                 nl = n_low[c] + 1 if lo > 0.0 else 0
                 if not lo > 0.0:
                     lo = 0.0
@@ -280,7 +294,7 @@ def _innovate(
                     statistic = 1.0 / s if s > 0.0 else np.inf
                     threshold = low_threshold
                 alarm = statistic >= threshold
-                out_f[5, i], out_f[6, i], out_f[7, i] = s, statistic, threshold
+                out_f[6, i], out_f[7, i], out_f[8, i] = s, statistic, threshold
                 out_i[5, i] = alarm
                 if alarm or raised[c, 1] or alarms[c, 1] != 0:
                     out_i[6, i] = 1

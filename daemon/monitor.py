@@ -81,7 +81,11 @@ class MonitorConfig:
         AR filter fitted on the first residuals after a start, which whitens
         the residual's own correlation (the reference is taken as fault-free).
     cusum, variance, whiteness : configs
-        Innovation detectors on the prewhitened residual. Whiteness blocks
+        Innovation detectors on the prewhitened residual. The CUSUM divides
+        its input by the successive-difference noise level while that is
+        above the calibrated one (``noise_lam`` 0.02, the variance test's
+        memory): a noisier sensor then raises the variance alert alone, not
+        a mean shift with the re-learning that follows. Whiteness blocks
         are periods of ``whiteness.window`` sample periods of sample time
         (:meth:`block_period`; four hours from midnight UTC at the
         defaults), so that a class's assets test theirs at the same sample
@@ -120,7 +124,9 @@ class MonitorConfig:
 
     rls: RlsConfig = field(default_factory=lambda: RlsConfig(forgetting=0.998))
     prewhiten: PrewhitenConfig = field(default_factory=lambda: PrewhitenConfig(ar_order=6))
-    cusum: CusumConfig = field(default_factory=lambda: CusumConfig(h=9.0, after_alarm="hold"))
+    cusum: CusumConfig = field(
+        default_factory=lambda: CusumConfig(h=9.0, after_alarm="hold", noise_lam=0.02)
+    )
     variance: VarianceConfig = field(default_factory=lambda: VarianceConfig(lam=0.02, alpha=1e-6))
     whiteness: WhitenessConfig = field(default_factory=lambda: WhitenessConfig(lags=6, alpha=1e-5))
     drift_alpha: float = 1e-4

@@ -19,6 +19,22 @@ At a signal the size of the shift is estimated as
 the consecutive samples that side has been non-zero: the average excess of
 z over k since the side last left zero, in sigma units.
 
+A noisier sensor is not a mean shift, but on z ~ N(0, s^2) with s > 1 the
+scheme above signals within tens of samples. With ``noise_lam`` > 0 each z is
+first divided by the current noise level when that exceeds the calibrated
+one, :math:`z_k / \sqrt{\max(1, v_k)}`, where
+
+.. math::
+
+    v_k = (1 - \lambda) v_{k-1} + \lambda (z_k - z_{k-1})^2 / 2
+
+is an exponentially weighted mean square successive difference (v_0 = 1).
+For white z of variance s^2 it tends to s^2; a shift or a slow drift of the
+mean, which is what the CUSUM looks for, cancels in the difference (von
+Neumann et al., 1941), so v stays near 1 and the scheme keeps its
+sensitivity to those. The scaling only ever widens the scheme: its
+in-control run length on N(0, 1) data is at least the tabulated one.
+
 References
 ----------
 E. S. Page, "Continuous inspection schemes", *Biometrika* 41 (1954), 100-115.
@@ -26,11 +42,16 @@ E. S. Page, "Continuous inspection schemes", *Biometrika* 41 (1954), 100-115.
 D. C. Montgomery, *Introduction to Statistical Quality Control*, 6th ed.,
 Wiley, 2009, section 9.1 (the tabular CUSUM, estimating the shift, ARL table
 for k = 1/2).
+
+J. von Neumann, R. H. Kent, H. R. Bellinson and B. I. Hart, "The mean square
+successive difference", *Ann. Math. Statist.* 12 (1941), 153-162 (cited from
+memory).
 """
 
 from __future__ import annotations
 
 import math
+from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any, Literal
 
@@ -47,6 +68,8 @@ __all__ = ["Cusum", "CusumConfig"]
 
 _NAME = "innovation_mean"
 _KEYS = ("c_high", "c_low", "n_high", "n_low")
+#: State keys of the noise scaling; a state saved before it had none.
+_NOISE_KEYS = ("previous", "noise")
 
 
 @dataclass(frozen=True)
@@ -66,11 +89,16 @@ class CusumConfig:
         shift signals again every run length. ``"hold"``: the sums carry on,
         so the alarm stays raised while the shift lasts and clears once the
         side drains below h.
+    noise_lam : float
+        Forgetting factor of the successive-difference noise level that
+        divides the input while it exceeds 1 (see the module notes), in
+        [0, 1). Default 0.0: off, the plain tabular CUSUM.
     """
 
     k: float = 0.5
     h: float = 5.0
     after_alarm: Literal["restart", "hold"] = "restart"
+    noise_lam: float = 0.0
 
     def __post_init__(self) -> None:
         owner = type(self).__name__
@@ -82,6 +110,13 @@ class CusumConfig:
             self.after_alarm,
             self.after_alarm in ("restart", "hold"),
             "'restart' or 'hold'",
+        )
+        check_setting(
+            owner,
+            "noise_lam",
+            self.noise_lam,
+            is_real(self.noise_lam) and 0.0 <= self.noise_lam < 1.0,
+            "a finite number in [0, 1)",
         )
 
 
@@ -113,17 +148,32 @@ class Cusum:
     100-115.
     """
 
-    __slots__ = ("config", "_k", "_h", "_restart", "_c_high", "_c_low", "_n_high", "_n_low")
+    __slots__ = (
+        "config",
+        "_k",
+        "_h",
+        "_restart",
+        "_lam",
+        "_c_high",
+        "_c_low",
+        "_n_high",
+        "_n_low",
+        "_previous",
+        "_noise",
+    )
 
     def __init__(self, config: CusumConfig | None = None) -> None:
         self.config = config if config is not None else CusumConfig()
         self._k = float(self.config.k)
         self._h = float(self.config.h)
         self._restart = self.config.after_alarm == "restart"
+        self._lam = float(self.config.noise_lam)
         self._c_high = 0.0
         self._c_low = 0.0
         self._n_high = 0
         self._n_low = 0
+        self._previous = math.nan  # the last input; nan before the first
+        self._noise = 1.0
 
     def update(self, z: float) -> Evidence:
         """Take one normalised innovation and report the larger side.
@@ -139,9 +189,11 @@ class Cusum:
             ``statistic`` is max(C+, C-) at this sample (before any restart),
             ``threshold`` is h, ``detail`` ``"high"`` or ``"low"`` names the
             larger side (``"high"`` on a tie). ``values``: ``c_high``,
-            ``c_low``, ``samples_since_zero`` (N of the reported side) and
-            ``shift_sigma``, the signed shift estimate of that side
-            (0.0 while the side is zero).
+            ``c_low``, ``samples_since_zero`` (N of the reported side),
+            ``shift_sigma``, the signed shift estimate of that side in
+            units of the scaled input (0.0 while the side is zero), and
+            ``noise_scale``, what z was divided by (1.0 unless the noise
+            level exceeds 1; multiply ``shift_sigma`` by it for units of z).
 
         Raises
         ------
@@ -150,6 +202,14 @@ class Cusum:
         """
         if not math.isfinite(z):
             raise ValueError(f"z must be finite, got {z!r}")
+        previous, self._previous = self._previous, z
+        if previous == previous:  # not nan: there is a last input
+            d = z - previous
+            lam = self._lam
+            self._noise = (1.0 - lam) * self._noise + lam * (0.5 * (d * d))
+        noise = self._noise
+        scale = math.sqrt(noise) if noise > 1.0 else 1.0
+        z = z / scale
         k = self._k
         c_high = self._c_high + z - k
         if c_high > 0.0:
@@ -174,7 +234,7 @@ class Cusum:
             shift = -(k + c_low / n)
         alarm = statistic >= self._h
         if alarm and self._restart:
-            self.reset()
+            self._zero_sides()
         return Evidence(
             detector=_NAME,
             family="behaviour",
@@ -187,12 +247,19 @@ class Cusum:
                 "c_low": c_low,
                 "samples_since_zero": float(n),
                 "shift_sigma": shift,
+                "noise_scale": scale,
             },
             detail=detail,
         )
 
     def reset(self) -> None:
-        """Both sides back to zero."""
+        """Forget everything: both sides back to zero, the noise level back to 1."""
+        self._zero_sides()
+        self._previous = math.nan
+        self._noise = 1.0
+
+    def _zero_sides(self) -> None:
+        """Both sides back to zero (a restart after an alarm keeps the noise level)."""
         self._c_high = 0.0
         self._c_low = 0.0
         self._n_high = 0
@@ -210,6 +277,8 @@ class Cusum:
             "c_low": self._c_low,
             "n_high": self._n_high,
             "n_low": self._n_low,
+            "previous": None if math.isnan(self._previous) else self._previous,
+            "noise": self._noise,
         }
 
     def load_state(self, state: dict[str, Any]) -> None:
@@ -222,7 +291,9 @@ class Cusum:
             unknown keys, negative sums or counts, or a side that is non-zero
             with a zero count (or the reverse).
         """
-        data = expect_state(state, _NAME, _KEYS)
+        # a state saved before the noise scaling lacks its keys: it starts afresh
+        noise_keys = _NOISE_KEYS if isinstance(state, Mapping) and "noise" in state else ()
+        data = expect_state(state, _NAME, (*_KEYS, *noise_keys))
         c_high = state_float(data, _NAME, "c_high", minimum=0.0)
         c_low = state_float(data, _NAME, "c_low", minimum=0.0)
         n_high = state_int(data, _NAME, "n_high")
@@ -233,4 +304,10 @@ class Cusum:
                     f"{_NAME} state: c_{side}={c!r} and n_{side}={n!r} disagree "
                     "(a side is non-zero exactly when its count is positive)"
                 )
+        previous, noise = math.nan, 1.0
+        if noise_keys:
+            noise = state_float(data, _NAME, "noise", minimum=0.0)
+            if data["previous"] is not None:
+                previous = state_float(data, _NAME, "previous")
         self._c_high, self._c_low, self._n_high, self._n_low = c_high, c_low, n_high, n_low
+        self._previous, self._noise = previous, noise

@@ -343,6 +343,40 @@ def test_checkpoint_through_npz_continues_identically(assets: dict) -> None:
     assert second.active("block-d/ahu-9") == whole.active("block-d/ahu-9")
 
 
+def test_a_checkpoint_saved_before_the_cusum_noise_level_still_loads(assets: dict) -> None:
+    # A checkpoint from before the CUSUM's noise scaling lacks its two arrays.
+    # It loads, and carries on as the same state with the level started afresh
+    # (no last input, level 1), which is what AssetMonitor.load_state does with
+    # a CUSUM state that lacks the keys.
+    names = ["block-a/ahu-2", "block-d/ahu-9"]
+    fleet = FleetMonitor(NAMES)
+    for a in names:
+        fleet.add_asset(a, assets[a][0])
+    for k in range(int(0.9 * PER_DAY)):
+        fleet.step(
+            [0, 1],
+            [START_S + k * SAMPLE_PERIOD_S] * 2,
+            [float(assets[a][1][k]) for a in names],
+            [[float(assets[a][2][k])] for a in names],
+            [assets[a][3][k] for a in names],
+            [False, False],
+        )
+    state = fleet.to_state()
+    assert np.all(state["arrays"]["g0.cu_noise"] != 1.0)  # the level has moved
+    older = {k: v for k, v in state["arrays"].items() if ".cu_" not in k}
+    afresh = dict(state["arrays"])
+    afresh["g0.cu_previous"] = np.full_like(afresh["g0.cu_previous"], np.nan)
+    afresh["g0.cu_noise"] = np.ones_like(afresh["g0.cu_noise"])
+    loaded = []
+    for arrays in (older, afresh):
+        twin = FleetMonitor(NAMES)
+        twin.load_state({"meta": state["meta"], "arrays": arrays})
+        loaded.append(twin.to_state()["arrays"])
+    assert loaded[0].keys() == loaded[1].keys()
+    for name in loaded[0]:
+        np.testing.assert_array_equal(loaded[0][name], loaded[1][name], err_msg=name)
+
+
 def test_state_from_other_settings_is_refused(assets: dict) -> None:
     fleet = FleetMonitor(NAMES)
     fleet.add_asset("block-a/ahu-1", assets["block-a/ahu-1"][0])
