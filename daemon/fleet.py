@@ -50,7 +50,6 @@ from arxwatch.daemon.monitor import (
     CHANGE_DETECTORS,
     MonitorConfig,
     parameter_covariances,
-    readout_values,
 )
 from arxwatch.estimators.arx import ArxOrder
 from arxwatch.estimators.baseline import Baseline, BaselineSet
@@ -62,7 +61,7 @@ from arxwatch.estimators.detect.prewhiten import fit_reference
 from arxwatch.estimators.detect.whiteness import block_statistics, evidence_of_block
 from arxwatch.estimators.estimator import ArxEstimator, Backend, resolve_backend
 from arxwatch.estimators.native import NON_FINITE
-from arxwatch.estimators.readout import dead_time_matrix, feature_names, read_out
+from arxwatch.estimators.readout import dead_time_matrix, feature_matrix, feature_names
 from arxwatch.estimators.rls import TRACE_CHECK_EVERY, StateLayout, build_kernel
 
 __all__ = ["COMPILED_ROWS", "DETECTORS", "FleetMonitor", "TraceSink"]
@@ -451,13 +450,20 @@ class _Group:
         self.free = [int(c) for c in meta["free"]]
 
     # -- read-outs ----------------------------------------------------------
-    def baseline_readout_values(self, c: int) -> tuple[Any, dict[str, float]]:
-        theta0 = self.arrays["theta0"][:, c]
-        readout = read_out(self.order, theta0, self.sample_period_s)
-        return readout, readout_values(readout, self.order, float(self.arrays["sigma2"][c]))
-
     def baseline_values(self, c: int) -> dict[str, float]:
-        return self.baseline_readout_values(c)[1]
+        """Return the baseline's features and sigma, as ``readout_values`` of its read-out does.
+
+        From :func:`feature_matrix`, the numbers ``read_out`` takes (the same
+        bits), without the rest of a read-out (poles, the step response of
+        each dead time): a record needs only these, and a building gone
+        quiet makes thousands of records at once.
+        """
+        features = feature_matrix(
+            self.order, self.arrays["theta0"][:, c][None, :], self.sample_period_s
+        )
+        values = dict(zip(self.features, features[0].tolist(), strict=True))
+        values["sigma"] = math.sqrt(float(self.arrays["sigma2"][c]))
+        return values
 
     def current_values(self, c: int) -> dict[str, float]:
         names = (*self.features, "sigma")
@@ -1757,9 +1763,13 @@ class FleetMonitor:
         bank = self._quality
         if bank is None:
             return np.zeros(slots.shape, dtype=np.bool_)
+        kinds = len(_QUALITY_KINDS)
+        if slots.shape[0] == 1:  # one check (a live message): its own episodes alone
+            slot, first = int(slots[0]), int(signals[0]) * kinds
+            row = slice(first, first + kinds)
+            return np.array([bank.raised[slot, row].any() or bank.alarms[slot, row].any()])
         if not (bank.raised.any() or bank.alarms.any()):  # the usual case: all quiet
             return np.zeros(slots.shape, dtype=np.bool_)
-        kinds = len(_QUALITY_KINDS)
         busy = bank.raised[slots] | (bank.alarms[slots] != 0)
         per_signal = busy.reshape(slots.shape[0], -1, kinds)
         out: NDArray[np.bool_] = per_signal[np.arange(slots.shape[0]), signals].any(axis=1)

@@ -420,14 +420,8 @@ class IntakeBank:
         )
         self._quality_of_array = np.array(self._quality_of, dtype=np.intp)
         # plausible range and flat-run window per checked signal (rows), for take_quality
-        self._range_table = (
-            np.array(
-                [[q.minimum, q.maximum, q.stuck_window_s] for q in self._quality_configs],
-                dtype=np.float64,
-            )
-            .reshape(-1, 3)
-            .T
-        )
+        self._range_rows = [(q.minimum, q.maximum, q.stuck_window_s) for q in self._quality_configs]
+        self._range_table = np.array(self._range_rows, dtype=np.float64).reshape(-1, 3).T
         # expected period, gap factor and flat-run tolerance per checked signal (rows)
         self._quality_table = (
             np.array(
@@ -1048,11 +1042,15 @@ class IntakeBank:
             ``gap``), with the same fields and values. Untaken evidence is not
             part of :meth:`to_state`: take it before a checkpoint.
         """
-        out: list[tuple[int, Evidence]] = []
-        table = np.frombuffer(self._pending, dtype=np.float64).reshape(-1, _CHECK_FIELDS)
+        pending = self._pending
+        if needed is not None and len(pending) == _CHECK_FIELDS:
+            # one check (a live message): the same test on Python numbers, no arrays
+            self._pending = array("d")
+            return self._take_one(pending.tolist(), needed)
+        table = np.frombuffer(pending, dtype=np.float64).reshape(-1, _CHECK_FIELDS)
         self._pending = array("d")
         if not table.shape[0]:
-            return out
+            return []
         keep = np.ones(table.shape[0], dtype=np.bool_)
         if needed is not None:
             q_all = table[:, 1].astype(np.intp)
@@ -1066,7 +1064,24 @@ class IntakeBank:
             )
             if quiet.any():
                 keep[quiet] = needed(table[quiet, 0].astype(np.intp), q_all[quiet])
-        for row in table[keep].tolist():
+        return self._evidence(table[keep].tolist())
+
+    def _take_one(self, row: list[float], needed: Needed) -> list[tuple[int, Evidence]]:
+        """:meth:`take_quality` of one pending check, its quiet test on Python numbers."""
+        q = int(row[1])
+        minimum, maximum, window_s = self._range_rows[q]
+        gap, value, flat_s, moved = row[5], row[2], row[6], row[8]
+        quiet = (
+            gap == 0.0 and minimum <= value <= maximum and not (moved == 1.0 and flat_s >= window_s)
+        )
+        if quiet and not needed(np.array([int(row[0])]), np.array([q]))[0]:
+            return []
+        return self._evidence([row])
+
+    def _evidence(self, rows: list[list[float]]) -> list[tuple[int, Evidence]]:
+        """Build the three Evidence of each pending check (a row of _CHECK_FIELDS numbers)."""
+        out: list[tuple[int, Evidence]] = []
+        for row in rows:
             slot_f, q_f, value, interval, periods, gap_f, flat_s, spread, moved_f, count, total = (
                 row
             )

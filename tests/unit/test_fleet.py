@@ -272,6 +272,33 @@ def test_quality_records_equal_per_asset_monitor(assets: dict) -> None:
     assert fleet.active(asset) == scalar.active()
 
 
+def test_one_quality_check_is_busy_exactly_when_the_batch_says_so(assets: dict) -> None:
+    # A live message asks about one (slot, signal) and gets its answer from
+    # that slot's episodes alone; a batch of checks first looks at the whole
+    # bank. Both must agree, before and after one signal's alert is raised.
+    quality = QualityConfig(minimum=-10.0, maximum=19.0)
+    fleet = FleetMonitor(NAMES, quality_signals=("sat", "valve"))
+    names = ["block-a/ahu-1", "block-a/ahu-2", "block-d/ahu-9"]
+    slots = [fleet.add_asset(a, assets[a][0]) for a in names]
+    check = SignalQuality("valve", quality)
+    pairs = np.array([(s, q) for s in slots for q in (0, 1)])
+
+    def agree() -> list[bool]:
+        batch = fleet.quality_busy(pairs[:, 0], pairs[:, 1]).tolist()
+        ones = [
+            bool(fleet.quality_busy(pairs[i : i + 1, 0], pairs[i : i + 1, 1])[0])
+            for i in range(len(pairs))
+        ]
+        assert ones == batch
+        return ones
+
+    assert agree() == [False] * 6
+    for k in range(4):  # out of range, again and again: raised on the third
+        t = START_S + k * SAMPLE_PERIOD_S
+        fleet.quality(slots[1], check.update(t, 50.0), t)
+    assert agree() == [False, False, False, True, False, False]
+
+
 def test_errors_name_what_is_wrong(assets: dict) -> None:
     fleet = FleetMonitor(NAMES)
     baselines = assets["block-a/ahu-1"][0]

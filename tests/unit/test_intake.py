@@ -589,6 +589,43 @@ def test_take_quality_skips_quiet_checks_the_caller_does_not_need() -> None:
     assert taken[0][1].alarm
 
 
+def test_taking_one_check_at_a_time_gives_what_one_take_of_all_gives() -> None:
+    # A live message leaves one check, tested on Python numbers; a trend
+    # export's row leaves many, tested on arrays: the evidence must agree.
+    # The samples go quiet, out of range, across a gap and flat for long.
+    def make() -> IntakeBank:
+        return IntakeBank(
+            AlignConfig(sample_period_s=60.0, output="sat", inputs=("valve",)),
+            {
+                "sat": QualityConfig(expected_period_s=60.0, minimum=0.0, maximum=40.0),
+                "valve": QualityConfig(expected_period_s=60.0, stuck_window_s=600.0),
+            },
+        )
+
+    def needed(slots: np.ndarray, qs: np.ndarray) -> np.ndarray:
+        return (slots + qs) % 2 == 1  # some quiet checks are wanted, some not
+
+    samples = []
+    t = 1.7e9
+    for k in range(40):
+        t += 600.0 if k == 12 else 60.0  # one gap
+        sat = 55.0 if k in (5, 6) else 20.0 + 0.1 * k  # out of range twice
+        valve = 30.0 if k >= 20 else float(k)  # flat from k = 20 on
+        samples += [(k % 2, 0, t, sat), (k % 2, 1, t, valve)]
+    one, many = make(), make()
+    for bank in (one, many):
+        bank.add_asset()
+        bank.add_asset()
+    taken_one = []
+    for slot, signal, time_s, value in samples:
+        one.add(slot, signal, time_s, value)
+        taken_one += one.take_quality(needed)
+        many.add(slot, signal, time_s, value)
+    taken_many = many.take_quality(needed)
+    assert taken_one == taken_many
+    assert {ev.detector for _, ev in taken_one if ev.alarm} == {"out_of_range", "gap", "stuck"}
+
+
 def test_crowded_asks_for_an_advance_before_a_cell_would_overflow() -> None:
     # A burst of samples far ahead of the last advance: advancing whenever
     # the bank says crowded keeps every sample (no overflow, no skipped point).
