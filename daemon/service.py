@@ -86,6 +86,11 @@ class ServiceSettings:
         At stop, how long pending alerts may take to reach the broker.
     top_ratios : int
         Assets per detector shown in ``arxwatch_asset_detector_ratio``.
+    gauges_every_s : float
+        Seconds between refreshes of the gauges (queue depth, assets, active
+        alerts, journal and outbox sizes, ratios). They count the journal
+        and scan the fleet, so once per batch would slow a busy worker;
+        the counters move at every batch.
     """
 
     tick_s: float = 0.05
@@ -93,6 +98,7 @@ class ServiceSettings:
     stale_every_s: float = 10.0
     drain_s: float = 3.0
     top_ratios: int = 20
+    gauges_every_s: float = 1.0
 
 
 def _version() -> str:
@@ -322,6 +328,7 @@ class Service:
         self._journal_seq = self._last_journal_seq
         self._last_checkpoint: float | None = None
         self._last_stale = -math.inf
+        self._last_gauges = -math.inf
         self._latest_arrival: float | None = None
         self._connected_once = False
 
@@ -429,8 +436,11 @@ class Service:
             _release_transient_memory()
         self._observe_link()
         self.meter.update(self.pipeline.counts)
-        self.metrics.publish(self._snapshot())
-        self._last_tick = time.monotonic()
+        ticked = time.monotonic()
+        if ticked - self._last_gauges >= settings.gauges_every_s:
+            self.metrics.publish(self._snapshot())
+            self._last_gauges = ticked
+        self._last_tick = ticked
 
     def _take(self) -> list[Incoming]:
         try:
