@@ -19,7 +19,10 @@ broker sees them in the order they were submitted. A message the broker
 refused (PUBACK with a failure code, e.g. 0x87 not authorized) stays in the
 outbox and is tried again after the next reconnect or restart, not at every
 call: the link has logged the reason, and retrying at once would only repeat
-it.
+it. When paho's outgoing queue is full (a burst of alerts, a slow broker),
+the backlog is read again once a tenth of a page (``batch``) has been
+acknowledged, or after ``retry_s``, not at every call: each pass reads a
+page of the outbox, the messages paho holds included.
 
 All methods run on the worker thread, the one that owns the store.
 
@@ -34,7 +37,8 @@ References
 from __future__ import annotations
 
 import logging
-from collections.abc import Sequence
+import time
+from collections.abc import Callable, Sequence
 
 from arxwatch.daemon.ingest import MqttLink
 from arxwatch.daemon.store import OutboxMessage, StateStore
@@ -55,6 +59,11 @@ class AlertPublisher:
         Sends the messages and reports their completion.
     batch : int, optional
         Most pending messages read from the store per re-publishing pass.
+    retry_s : float, optional
+        After paho refused a message of the backlog, the longest wait before
+        the next pass when too few messages were acknowledged meanwhile.
+    clock : callable, optional
+        Monotonic seconds, for ``retry_s``.
 
     Raises
     ------
@@ -62,12 +71,24 @@ class AlertPublisher:
         If ``batch`` is below 1.
     """
 
-    def __init__(self, store: StateStore, link: MqttLink, *, batch: int = 1000) -> None:
+    def __init__(
+        self,
+        store: StateStore,
+        link: MqttLink,
+        *,
+        batch: int = 1000,
+        retry_s: float = 1.0,
+        clock: Callable[[], float] = time.monotonic,
+    ) -> None:
         if isinstance(batch, bool) or batch < 1:
             raise ValueError(f"batch must be an integer >= 1, got {batch!r}")
         self._store = store
         self._link = link
         self._batch = batch
+        self._retry_s = retry_s
+        self._clock = clock
+        self._stalled_at: float | None = None  # when paho last refused a backlog message
+        self._freed = 0  # messages acknowledged since then
         self._id_of: dict[int, str] = {}  # message id (paho's mid) -> outbox id
         self._mid_of: dict[str, int] = {}  # outbox id -> mid, for messages paho holds
         self._connection: int | None = None  # connection whose backlog was (re)sent
@@ -126,9 +147,20 @@ class AlertPublisher:
             self._parked.clear()
             self._backlog = True
             self._resend()
-        elif self._backlog and self._link.status().connected:
+        elif self._backlog and self._link.status().connected and self._due(len(finished)):
             self._resend()
         return self._store.outbox_count()
+
+    def _due(self, finished: int) -> bool:
+        """Whether to read the backlog again after ``finished`` more acknowledgements.
+
+        Always, unless paho refused a message of the last pass; then once a
+        tenth of a page has left its queue, or ``retry_s`` has passed.
+        """
+        if self._stalled_at is None:
+            return True
+        self._freed += finished
+        return self._freed * 10 >= self._batch or self._clock() - self._stalled_at >= self._retry_s
 
     def _resend(self) -> None:
         """Publish, oldest first, the pending messages paho does not hold."""
@@ -142,6 +174,7 @@ class AlertPublisher:
         if waiting:
             logger.info("publishing %d pending outbox messages", len(waiting))
         complete = self._send(waiting)
+        self._stalled_at, self._freed = (None if complete else self._clock()), 0
         # A full page may hide more messages behind it: look again next time.
         self._backlog = not complete or len(pending) == limit
 

@@ -228,6 +228,55 @@ def test_the_backlog_is_read_in_pages(store: StateStore) -> None:
     assert link.ids() == [f"alert-{index:04d}" for index in range(1, 6)]
 
 
+def test_a_full_paho_queue_is_retried_after_progress_or_a_while_not_at_every_pump(
+    store: StateStore,
+) -> None:
+    # paho's queue fills up in the middle of a backlog. Reading the outbox
+    # page again at every pump would cost a query per worker tick; the
+    # publisher waits for a tenth of a page to be acknowledged, or retry_s.
+    store.add_outbox([alert(index) for index in range(1, 41)])
+    link = FakeLink()
+    link.connect()
+    now = [0.0]
+    publisher = AlertPublisher(store, link, batch=20, retry_s=1.0, clock=lambda: now[0])  # type: ignore[arg-type]
+    reads = []
+    read = store.pending_outbox
+    store.pending_outbox = lambda limit=1000: reads.append(limit) or read(limit)  # type: ignore[method-assign]
+    room = [5]  # messages paho takes in all before its queue is full
+    original = link.publish
+
+    def publish(topic: str, payload: bytes, *, qos: int, retain: bool) -> int | None:
+        if len(link.sent) >= room[0]:
+            return None
+        return original(topic, payload, qos=qos, retain=retain)
+
+    link.publish = publish  # type: ignore[method-assign]
+    publisher.pump()
+    assert len(link.sent) == 5 and len(reads) == 1
+    for _ in range(10):
+        publisher.pump()
+    assert len(reads) == 1  # stalled: nothing acknowledged, no time passed
+    room[0] = 10
+    link.complete(1)  # one acknowledged: under a tenth of the page of 20
+    publisher.pump()
+    assert len(reads) == 1
+    link.complete(2)  # two acknowledged: a tenth of the page
+    publisher.pump()
+    assert len(reads) == 2 and len(link.sent) == 10
+    room[0] = 40
+    now[0] = 0.5
+    publisher.pump()
+    assert len(reads) == 2
+    now[0] = 1.6  # retry_s since the last refusal
+    publisher.pump()
+    assert len(reads) == 3
+    assert link.ids() == [f"alert-{index:04d}" for index in range(1, 41)][: len(link.sent)]
+    while len(link.sent) < 40:
+        now[0] += 2.0
+        publisher.pump()
+    assert link.ids() == [f"alert-{index:04d}" for index in range(1, 41)]
+
+
 def test_batch_must_be_positive(store: StateStore) -> None:
     with pytest.raises(ValueError, match="batch must be an integer >= 1, got 0"):
         AlertPublisher(store, FakeLink(), batch=0)  # type: ignore[arg-type]
