@@ -1767,7 +1767,9 @@ class FleetMonitor:
         if slots.shape[0] == 1:  # one check (a live message): its own episodes alone
             slot, first = int(slots[0]), int(signals[0]) * kinds
             row = slice(first, first + kinds)
-            return np.array([bank.raised[slot, row].any() or bank.alarms[slot, row].any()])
+            # a handful of entries: Python's any() on lists beats two ndarray.any() calls
+            busy = any(bank.raised[slot, row].tolist()) or any(bank.alarms[slot, row].tolist())
+            return np.array([busy])
         if not (bank.raised.any() or bank.alarms.any()):  # the usual case: all quiet
             return np.zeros(slots.shape, dtype=np.bool_)
         busy = bank.raised[slots] | (bank.alarms[slots] != 0)
