@@ -327,35 +327,39 @@ def test_errors_name_what_is_wrong(assets: dict) -> None:
     assert fleet.add_asset("block-a/ahu-3", baselines) == slot  # the slot is reused
 
 
+TWO_ASSETS = ["block-a/ahu-2", "block-d/ahu-9"]
+
+
+def two_asset_rows(fleet: FleetMonitor, assets: dict, ks: range) -> list[dict]:
+    """Step TWO_ASSETS (slots 0 and 1) through samples ``ks``; return the records."""
+    out = []
+    for k in ks:
+        out += fleet.step(
+            [0, 1],
+            [START_S + k * SAMPLE_PERIOD_S] * 2,
+            [float(assets[a][1][k]) for a in TWO_ASSETS],
+            [[float(assets[a][2][k])] for a in TWO_ASSETS],
+            [assets[a][3][k] for a in TWO_ASSETS],
+            [False, False],
+        )
+    return out
+
+
 def test_checkpoint_through_npz_continues_identically(assets: dict) -> None:
     # Split the run at a sample, save through numpy's npz (no pickle) and
     # JSON, restore into a new monitor: the records after the split are the
     # uninterrupted run's.
-    names = ["block-a/ahu-2", "block-d/ahu-9"]
+    names = TWO_ASSETS
     n = len(assets[names[0]][1])
     split = int(0.9 * PER_DAY)
-
-    def rows(fleet: FleetMonitor, ks: range) -> list[dict]:
-        out = []
-        for k in ks:
-            out += fleet.step(
-                [0, 1],
-                [START_S + k * SAMPLE_PERIOD_S] * 2,
-                [float(assets[a][1][k]) for a in names],
-                [[float(assets[a][2][k])] for a in names],
-                [assets[a][3][k] for a in names],
-                [False, False],
-            )
-        return out
-
     whole = FleetMonitor(NAMES)
     for a in names:
         whole.add_asset(a, assets[a][0])
-    expected = rows(whole, range(n))
+    expected = two_asset_rows(whole, assets, range(n))
     first = FleetMonitor(NAMES)
     for a in names:
         first.add_asset(a, assets[a][0])
-    before = rows(first, range(split))
+    before = two_asset_rows(first, assets, range(split))
     state = first.to_state()
     buffer = io.BytesIO()
     np.savez(buffer, **state["arrays"])
@@ -364,7 +368,7 @@ def test_checkpoint_through_npz_continues_identically(assets: dict) -> None:
         arrays = {k: saved[k] for k in saved.files}
     second = FleetMonitor(NAMES)
     second.load_state({"meta": json.loads(json.dumps(state["meta"])), "arrays": arrays})
-    after = rows(second, range(split, n))
+    after = two_asset_rows(second, assets, range(split, n))
     assert len(expected) > 4
     assert before + after == expected
     assert second.active("block-d/ahu-9") == whole.active("block-d/ahu-9")
@@ -372,22 +376,13 @@ def test_checkpoint_through_npz_continues_identically(assets: dict) -> None:
 
 def test_a_checkpoint_saved_before_the_cusum_noise_level_still_loads(assets: dict) -> None:
     # A checkpoint from before the CUSUM's noise scaling lacks its two arrays.
-    # It loads, and carries on as the same state with the level started afresh
-    # (no last input, level 1), which is what AssetMonitor.load_state does with
-    # a CUSUM state that lacks the keys.
-    names = ["block-a/ahu-2", "block-d/ahu-9"]
+    # It loads as the same state with the level started afresh (no last
+    # input, level 1), which is what AssetMonitor.load_state does with a
+    # CUSUM state that lacks the keys.
     fleet = FleetMonitor(NAMES)
-    for a in names:
+    for a in TWO_ASSETS:
         fleet.add_asset(a, assets[a][0])
-    for k in range(int(0.9 * PER_DAY)):
-        fleet.step(
-            [0, 1],
-            [START_S + k * SAMPLE_PERIOD_S] * 2,
-            [float(assets[a][1][k]) for a in names],
-            [[float(assets[a][2][k])] for a in names],
-            [assets[a][3][k] for a in names],
-            [False, False],
-        )
+    two_asset_rows(fleet, assets, range(int(0.9 * PER_DAY)))
     state = fleet.to_state()
     assert np.all(state["arrays"]["g0.cu_noise"] != 1.0)  # the level has moved
     older = {k: v for k, v in state["arrays"].items() if ".cu_" not in k}
