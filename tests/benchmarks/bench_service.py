@@ -28,8 +28,10 @@ Every process is started here and stopped by PID at the end:
    third one raises a data-quality alert: publish -> alert on the broker,
    median and 99th percentile;
 6. memory: the daemon's resident memory with the full fleet and with a
-   fifth of it, after the same work; the slope is the cost per asset, the
-   intercept the fixed base.
+   fifth of it, after the same work, 1 s after a start on the saved state;
+   the median of ``--memory-runs`` starts each (one start's figure moves by
+   a few hundred kB); the slope is the cost per asset, the intercept the
+   fixed base.
 """
 
 from __future__ import annotations
@@ -345,6 +347,12 @@ def main() -> None:
     parser.add_argument("--points", type=int, default=20, help="grid points published per box")
     parser.add_argument("--qos", type=int, default=1, choices=(0, 1), help="MQTT QoS")
     parser.add_argument("--alerts", type=int, default=200, help="boxes sent out of range")
+    parser.add_argument(
+        "--memory-runs",
+        type=int,
+        default=3,
+        help="starts on each restored state whose resident memory is measured (median kept)",
+    )
     args = parser.parse_args()
     ctx = mp.get_context("spawn")
     work = Path(tempfile.mkdtemp(prefix="arxwatch-bench-"))
@@ -396,6 +404,8 @@ def main() -> None:
         )
         latency = _latency(ctx, port, args, start_s, full["rate"] / 2.0)
         daemon.stop()
+        daemon = None
+        full_rss = [full["rss_state"], *restored_rss(config, work, args.memory_runs - 1)]
 
         # memory: the same run with a fifth of the boxes; the slope is per asset
         small_assets = max(1, args.assets // 5)
@@ -405,6 +415,7 @@ def main() -> None:
         )
         daemon.stop()
         daemon = None
+        small_rss = [small["rss_state"], *restored_rss(small_config, work, args.memory_runs - 1)]
 
         print(
             f"arxwatch run on loopback: {args.assets:,} VAV boxes x {args.points} grid points "
@@ -430,15 +441,23 @@ def main() -> None:
                 f"  publish -> alert at half load       p50 {p50 * 1e3:6.0f} ms   "
                 f"p99 {p99 * 1e3:6.0f} ms   ({len(latency)} alerts; target p99 < 250 ms)"
             )
-        per_asset = (full["rss_state"] - small["rss_state"]) / (args.assets - small_assets)
-        base_mib = (small["rss_state"] - small_assets * per_asset) / 2**20
+        # one start's figure moves by a few hundred kB (the allocator's state
+        # after the restore): the median of several starts is steadier
+        rss_small, rss_full = float(np.median(small_rss)), float(np.median(full_rss))
+        per_asset = (rss_full - rss_small) / (args.assets - small_assets)
+        slopes = [
+            (f - m) / (args.assets - small_assets) for f, m in zip(full_rss, small_rss, strict=True)
+        ]
+        base_mib = (rss_small - small_assets * per_asset) / 2**20
         print(
-            f"  resident memory, state restored     {small['rss_state'] / 2**20:8.1f} MiB with "
-            f"{small_assets:,} boxes, {full['rss_state'] / 2**20:.1f} MiB with {args.assets:,}"
+            f"  resident memory, state restored     {rss_small / 2**20:8.1f} MiB with "
+            f"{small_assets:,} boxes, {rss_full / 2**20:.1f} MiB with {args.assets:,}"
+            f"   (medians of {len(full_rss)} starts)"
         )
         print(
             f"  memory per asset (slope)            {per_asset:10,.0f} bytes (target < 2,048)"
-            f"   fixed base {base_mib:.0f} MiB"
+            f"   fixed base {base_mib:.0f} MiB; start by start {min(slopes):,.0f} to "
+            f"{max(slopes):,.0f}"
         )
         print(
             f"  after the burst (queued messages)   {full['rss_burst'] / 2**20:8.1f} MiB with "
@@ -450,6 +469,21 @@ def main() -> None:
             daemon.stop()
         broker.terminate()
         broker.wait(10)
+
+
+def restored_rss(config: Path, work: Path, times: int) -> list[float]:
+    """Start the daemon on its saved state ``times`` times; return its resident memory at each."""
+    metrics_port = int(config.read_text().split('listen: "127.0.0.1:')[1].split('"')[0])
+    out = []
+    for _ in range(times):
+        daemon = Daemon(config, metrics_port, work / "daemon.log")
+        daemon.start()
+        try:
+            time.sleep(1.0)  # as daemon_run measures it
+            out.append(float(daemon.rss_bytes()))
+        finally:
+            daemon.stop()
+    return out
 
 
 def _open(port: int) -> bool:
