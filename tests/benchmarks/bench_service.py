@@ -297,6 +297,11 @@ def site(work: Path, name: str, port: int, qos: int, assets: int, base: Any) -> 
     return config
 
 
+def metrics_port_of(config: Path) -> int:
+    """Return the metrics port a config written by :func:`site` listens on."""
+    return int(config.read_text().split('listen: "127.0.0.1:')[1].split('"')[0])
+
+
 def daemon_run(
     ctx: Any,
     work: Path,
@@ -311,7 +316,7 @@ def daemon_run(
     built = time.monotonic()
     warm_state(config, assets, start_s)
     warm_s = time.monotonic() - built
-    metrics_port = int(config.read_text().split('listen: "127.0.0.1:')[1].split('"')[0])
+    metrics_port = metrics_port_of(config)
     daemon = Daemon(config, metrics_port, work / "daemon.log")
     daemon.start()
     time.sleep(1.0)
@@ -473,7 +478,7 @@ def main() -> None:
 
 def restored_rss(config: Path, work: Path, times: int) -> list[float]:
     """Start the daemon on its saved state ``times`` times; return its resident memory at each."""
-    metrics_port = int(config.read_text().split('listen: "127.0.0.1:')[1].split('"')[0])
+    metrics_port = metrics_port_of(config)
     out = []
     for _ in range(times):
         daemon = Daemon(config, metrics_port, work / "daemon.log")
