@@ -120,18 +120,21 @@ def test_two_sided_cusum_arl_matches_montgomery_table(h: float, shift: float, ar
     assert abs(float(run_lengths.mean()) - arl) <= 4.0 * se + 0.005 * arl
 
 
+def renewal_arl(config: CusumConfig, z: NDArray[np.float64]) -> tuple[float, float]:
+    """Mean gap between alarms of the restarting class on one stream, and its SE."""
+    det = Cusum(config)
+    alarms = [t for t, v in enumerate(z.tolist()) if det.update(v).alarm]
+    gaps = np.diff(np.array([-1, *alarms]))
+    return float(gaps.mean()), float(gaps.std(ddof=1)) / math.sqrt(gaps.size)
+
+
 def test_class_arl_under_one_sigma_shift_by_renewal_after_restart() -> None:
     # With after_alarm="restart" both sides return to zero at a signal, so the
     # gaps between alarms on one long stream are independent run lengths.
     # Source: Montgomery (2009), table 9.3, h = 5, 1 sigma: ARL = 10.4 (from memory).
     rng = np.random.default_rng(7)
-    det = Cusum()
-    alarms = [
-        t for t, z in enumerate(rng.standard_normal(60000) + 1.0) if det.update(float(z)).alarm
-    ]
-    gaps = np.diff(np.array([-1, *alarms]))
-    se = float(gaps.std(ddof=1)) / math.sqrt(gaps.size)
-    assert abs(float(gaps.mean()) - 10.4) <= 4.0 * se + 0.05
+    arl, se = renewal_arl(CusumConfig(), rng.standard_normal(60000) + 1.0)
+    assert abs(arl - 10.4) <= 4.0 * se + 0.05
 
 
 def noise_levels(det: Cusum, z: NDArray[np.float64]) -> NDArray[np.float64]:
@@ -172,14 +175,6 @@ def test_noise_level_tends_to_the_variance_of_white_data() -> None:
         batches = levels[: levels.size // 40 * 40].reshape(40, -1).mean(axis=1)
         se = float(batches.std(ddof=1)) / math.sqrt(batches.size)
         assert abs(float(levels.mean()) - 4.0) <= 4.0 * se
-
-
-def renewal_arl(config: CusumConfig, z: NDArray[np.float64]) -> tuple[float, float]:
-    """Mean gap between alarms of the restarting class on one stream, and its SE."""
-    det = Cusum(config)
-    alarms = [t for t, v in enumerate(z.tolist()) if det.update(v).alarm]
-    gaps = np.diff(np.array([-1, *alarms]))
-    return float(gaps.mean()), float(gaps.std(ddof=1)) / math.sqrt(gaps.size)
 
 
 def test_noise_scaling_keeps_the_tabulated_in_control_arl_as_a_floor() -> None:
