@@ -1133,6 +1133,10 @@ class MqttLink:
             if incoming.qos > 0 and len(self._held) < MAX_HELD_BACK and not self._stopping:
                 self._held.append(incoming)
                 self._counts["held_back"] += 1
+                # while this callback waited, the worker may have emptied the
+                # list and the inbox: then nothing would move it until the
+                # next ack or message
+                self._release_held()
                 held, dropped = len(self._held), None
             else:
                 self._counts["overflows"] += 1

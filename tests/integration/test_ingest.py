@@ -668,6 +668,44 @@ def test_overrun_beyond_the_hold_bound_pauses_reading(
     assert (status.overflows, status.connects, status.disconnects) == (0, 1, 0)
 
 
+def test_a_message_held_after_a_paused_wait_still_reaches_the_inbox(
+    broker: Broker, make_link: MakeLink, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # The callback that waited for room in the hold-back list wakes after the
+    # worker has emptied both the list and the inbox (the last message of a
+    # burst). Its message must reach the inbox then: no later message or ack
+    # may come to move it (the overrun test above stalled on this about one
+    # run in twelve). The wait is replaced by one that lets the worker drain
+    # first, so the order is forced.
+    monkeypatch.setattr(ingest, "MAX_HELD_BACK", 1)
+    config = broker_config(broker, "arxwatch-pausewake", protocol="mqtt311")
+    link, inbox = make_link(config, ["x/#"], "x/status", maxsize=1, start=False)
+
+    def message(n: int) -> Incoming:
+        return Incoming("x/v", str(n).encode(), 0.0, mid=n + 1, qos=1, retain=False, dup=False)
+
+    drained = threading.Event()
+
+    def wait_while_the_worker_drains(predicate: Callable[[], bool], timeout: float) -> bool:
+        link._lock.release()  # as Condition.wait does
+        try:
+            drained.wait(5.0)
+        finally:
+            link._lock.acquire()
+        return predicate()
+
+    monkeypatch.setattr(link._room, "wait_for", wait_while_the_worker_drains)
+    link._enqueue(message(0))  # into the inbox
+    link._enqueue(message(1))  # held back: the inbox is full
+    callback = threading.Thread(target=link._enqueue, args=(message(2),))
+    callback.start()  # the list is full too: it waits
+    received = take_and_ack(link, inbox, 2)
+    drained.set()
+    callback.join(5.0)
+    received += take(inbox, 1, timeout_s=2.0)
+    assert [int(m.payload) for m in received] == [0, 1, 2]
+
+
 def test_stop_does_not_wait_for_a_paused_callback(
     broker: Broker,
     make_link: MakeLink,
