@@ -105,13 +105,15 @@ COMPILED_ROWS = 1024
 #: State arrays the compiled kernels take, in their argument order.
 _BASE_STATE = ("base_y", "base_u", "base_count", "theta0", "cov0", "sigma2")
 _DETECTOR_STATE = (
-    *("pw_count", "pw_sums", "pw_head", "pw_past", "pw_scale"),
+    *("pw_count", "sums", "pw_head", "pw_past", "pw_scale"),
     *("c_high", "c_low", "n_high", "n_low", "cu_previous", "cu_noise", "var_s"),
-    *("wh_count", "wh_sums", "wh_head", "wh_past"),
+    *("wh_count", "wh_head", "wh_past"),
 )
 _LIVE_STATE = ("rls_y", "rls_u", "rls_count", "rls", "samples")
 #: State arrays added after _STATE_VERSION was fixed: a saved state may lack them.
 _ADDED_STATE = frozenset({"cu_previous", "cu_noise"})
+#: The two arrays that ``sums`` replaced after _STATE_VERSION was fixed (see _shared_sums).
+_SPLIT_SUMS = ("pw_sums", "wh_sums")
 #: Rows of the compiled innovation kernel's outputs (fleetnative.FLOAT_OUT, INT_OUT).
 (
     _F_PREDICTION,
@@ -208,6 +210,37 @@ def _band_features(order: ArxOrder) -> tuple[str, ...]:
     if order.constant:
         names.append("offset")
     return tuple(names)
+
+
+def _shared_sums(arrays: Mapping[str, NDArray[Any]], reference: int) -> dict[str, NDArray[Any]]:
+    """Return a group's saved arrays with the shared ``sums`` of this release.
+
+    A state saved before the prewhitening reference and the whiteness blocks
+    shared one array holds ``pw_sums`` and ``wh_sums`` instead: each channel
+    keeps the one it was using, the reference's until its filter was fitted
+    (``reference`` samples), the whiteness block's after. Other states are
+    returned as they are.
+
+    Raises
+    ------
+    ValueError
+        If the two older arrays do not fit together.
+    """
+    if "sums" in arrays or not all(name in arrays for name in (*_SPLIT_SUMS, "pw_count")):
+        return dict(arrays)
+    pw, wh = np.asarray(arrays["pw_sums"]), np.asarray(arrays["wh_sums"])
+    fitted = np.asarray(arrays["pw_count"]) >= reference
+    if pw.ndim != 2 or wh.ndim != 2 or not pw.shape[1] == wh.shape[1] == fitted.shape[0]:
+        raise ValueError(
+            f"saved monitor arrays 'pw_sums' {pw.shape}, 'wh_sums' {wh.shape} and "
+            f"'pw_count' {fitted.shape} do not fit together"
+        )
+    sums = np.zeros((max(pw.shape[0], wh.shape[0]), fitted.shape[0]))
+    sums[: pw.shape[0], ~fitted] = pw[:, ~fitted]
+    sums[: wh.shape[0], fitted] = wh[:, fitted]
+    upgraded = {name: v for name, v in arrays.items() if name not in _SPLIT_SUMS}
+    upgraded["sums"] = sums
+    return upgraded
 
 
 def _grown(size: int, capacity: int) -> int:
@@ -319,7 +352,10 @@ class _Group:
             "rls_count": ((), np.int16, 0),
             "rls": ((self.layout.size,), np.float64, 0.0),
             "pw_count": ((), np.int32, 0),
-            "pw_sums": ((p + 2,), np.float64, 0.0),
+            # running sums (detect._sums) of the prewhitening reference while
+            # it is collected, then of the open whiteness block: the blocks
+            # start only after the filter is fitted, so one array serves both
+            "sums": ((max(p, lags) + 2,), np.float64, 0.0),
             # the reference's first p values while it is collected, then the
             # AR coefficients fitted on it (the head is not needed after the fit)
             "pw_head": ((p,), np.float64, 0.0),
@@ -334,7 +370,6 @@ class _Group:
             "cu_noise": ((), np.float64, 1.0),
             "var_s": ((), np.float64, 1.0),
             "wh_count": ((), np.int32, 0),
-            "wh_sums": ((lags + 2,), np.float64, 0.0),
             "wh_head": ((lags,), np.float64, 0.0),
             "wh_past": ((lags,), np.float64, 0.0),
             # the period of sample time of its open block (MonitorConfig.block_period); -1: none
@@ -429,6 +464,7 @@ class _Group:
             If an array is missing or its shape or type does not fit.
         """
         capacity = int(meta["capacity"])
+        arrays = _shared_sums(arrays, self.config.prewhiten.reference_samples)
         self._allocate(capacity)
         for name, (tail, dtype, _) in self._shapes().items():
             saved = arrays.get(name)
@@ -763,27 +799,32 @@ class _Group:
         return found
 
     def _fit_prewhitener(self, c: int) -> None:
-        """Fit channel ``c``'s prewhitening filter on its complete reference."""
+        """Fit channel ``c``'s prewhitening filter on its complete reference.
+
+        The reference's sums are then cleared: the whiteness blocks, which
+        start now, use the same array.
+        """
         a = self.arrays
         phi, scale = fit_reference(
-            a["pw_sums"][:, c].tolist(),
+            a["sums"][: self.p + 2, c].tolist(),
             a["pw_head"][:, c].tolist(),
             a["pw_past"][:, c].tolist(),
             int(a["pw_count"][c]),
         )
         a["pw_head"][:, c] = phi
         a["pw_scale"][c] = scale
+        a["sums"][:, c] = 0.0
 
     def _add_values(self, cc: Sel, x: Float, prefix: str) -> None:
         """:func:`arxwatch.estimators.detect._sums.add_value` for each channel of ``cc``."""
         a = self.arrays
-        sums = a[f"{prefix}_sums"][:, cc]
         head = a[f"{prefix}_head"][:, cc]
         past = a[f"{prefix}_past"][:, cc]
         count = a[f"{prefix}_count"][cc]
+        lags = past.shape[0]
+        sums = a["sums"][: lags + 2, cc]
         sums[0] += x
         sums[1] += x * x
-        lags = past.shape[0]
         if count.min() >= lags:  # the common case: every lag exists
             for lag in range(1, lags + 1):
                 sums[lag + 1] += x * past[lag - 1]
@@ -797,7 +838,7 @@ class _Group:
             past[1:] = past[:-1].copy()
             past[0] = x
         if not isinstance(cc, slice):  # a gathered copy: write it back
-            a[f"{prefix}_sums"][:, cc] = sums
+            a["sums"][: lags + 2, cc] = sums
             a[f"{prefix}_head"][:, cc] = head
             a[f"{prefix}_past"][:, cc] = past
 
@@ -970,10 +1011,11 @@ class _Group:
         tested = count >= config.shortest_block
         if not tested.all():
             ep, ec, et, count = ep[tested], ec[tested], et[tested], count[tested]
-        centred = centred_sums(a["wh_sums"][:, ec], a["wh_head"][:, ec], a["wh_past"][:, ec], count)
+        sums = a["sums"][: self.lags + 2, ec]
+        centred = centred_sums(sums, a["wh_head"][:, ec], a["wh_past"][:, ec], count)
         for name, initial in (
             ("wh_count", 0),
-            ("wh_sums", 0.0),
+            ("sums", 0.0),
             ("wh_head", 0.0),
             ("wh_past", 0.0),
         ):

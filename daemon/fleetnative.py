@@ -167,7 +167,7 @@ def _innovate(
     cov0: Any,
     sigma2: Any,
     pw_count: Any,
-    pw_sums: Any,
+    sums: Any,
     pw_head: Any,
     pw_past: Any,
     pw_scale: Any,
@@ -179,7 +179,6 @@ def _innovate(
     cu_noise: Any,
     var_s: Any,
     wh_count: Any,
-    wh_sums: Any,
     wh_head: Any,
     wh_past: Any,
     raised: Any,
@@ -198,7 +197,9 @@ def _innovate(
     ``structure`` holds (na, constant, depth, reference_samples, window,
     cusum restart, variance lower); ``settings`` (clip, cusum k, cusum h,
     variance lambda, 1 / lower limit, upper limit, cusum noise lambda). The state arrays are
-    updated in place, channel on the last axis.
+    updated in place, channel on the last axis; ``sums`` holds the
+    prewhitening reference's running sums until the filter is fitted (in
+    Python, which then clears them), the whiteness block's after.
     """
     constant, depth = structure[1], structure[2]
     reference, window = structure[3], structure[4]
@@ -238,7 +239,7 @@ def _innovate(
             # 2. prewhitening (_Group._innovations)
             count = pw_count[c]
             if count < reference:
-                _add_value(pw_sums, pw_head, pw_past, c, count, z, p)
+                _add_value(sums, pw_head, pw_past, c, count, z, p)
                 pw_count[c] = count + 1
                 if count + 1 >= reference:
                     out_i[0, i] = 1
@@ -301,7 +302,7 @@ def _innovate(
                     totals[4] += 1
                 # 5. whiteness sums (_Group._whiteness)
                 count = wh_count[c]
-                _add_value(wh_sums, wh_head, wh_past, c, count, eps, lags)
+                _add_value(sums, wh_head, wh_past, c, count, eps, lags)
                 wh_count[c] = count + 1
                 if count + 1 >= window:
                     out_i[7, i] = 1

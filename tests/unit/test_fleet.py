@@ -399,12 +399,44 @@ def test_a_checkpoint_saved_before_the_cusum_noise_level_still_loads(assets: dic
         np.testing.assert_array_equal(loaded[0][name], loaded[1][name], err_msg=name)
 
 
+@pytest.mark.parametrize("samples", [300, int(0.9 * PER_DAY)])
+def test_a_checkpoint_with_separate_reference_and_whiteness_sums_still_loads(
+    assets: dict, samples: int
+) -> None:
+    # Before the prewhitening reference and the whiteness blocks shared one
+    # array, a checkpoint held both. Each channel used one of them: the
+    # reference's until its filter was fitted (480 samples), then the
+    # block's; the other is not read. Saved while the reference is being
+    # collected (300) and after (0.9 day), the older layout loads as the
+    # same state.
+    fleet = FleetMonitor(NAMES)
+    for a in TWO_ASSETS:
+        fleet.add_asset(a, assets[a][0])
+    two_asset_rows(fleet, assets, range(samples))
+    state = fleet.to_state()
+    sums = state["arrays"]["g0.sums"]
+    assert np.any(sums != 0.0)
+    fitted = state["arrays"]["g0.pw_count"] >= MonitorConfig().prewhiten.reference_samples
+    assert fitted.all() == (samples > 480) and fitted.any() == (samples > 480)
+    p, lags = MonitorConfig().prewhiten.ar_order, MonitorConfig().whiteness.lags
+    stale = np.random.default_rng(3).normal(size=(p + 2, sums.shape[1]))  # never read
+    older = {k: v for k, v in state["arrays"].items() if k != "g0.sums"}
+    older["g0.pw_sums"] = np.where(fitted, stale, sums[: p + 2])
+    older["g0.wh_sums"] = np.where(fitted, sums[: lags + 2], 0.0)
+    twin = FleetMonitor(NAMES)
+    twin.load_state({"meta": state["meta"], "arrays": older})
+    loaded = twin.to_state()["arrays"]
+    assert loaded.keys() == state["arrays"].keys()
+    for name in loaded:
+        np.testing.assert_array_equal(loaded[name], state["arrays"][name], err_msg=name)
+
+
 def test_state_from_other_settings_is_refused(assets: dict) -> None:
     fleet = FleetMonitor(NAMES)
     fleet.add_asset("block-a/ahu-1", assets["block-a/ahu-1"][0])
     state = fleet.to_state()
     other = FleetMonitor(NAMES, MonitorConfig(prewhiten=PrewhitenConfig(ar_order=4)))
-    with pytest.raises(ValueError, match="'pw_sums' has shape"):
+    with pytest.raises(ValueError, match="'pw_head' has shape"):
         other.load_state(state)
     assert len(other) == 0  # left as it was
     with pytest.raises(ValueError, match="this release reads 'arxwatch.fleet' version 2"):
