@@ -1065,9 +1065,16 @@ class _Group:
         theta0 = a["theta0"][:, dc].T
         cov0 = a["cov0"][:, dc][self.tri_index].transpose(2, 0, 1)  # channels innermost
         found: list[tuple[int, int, Evidence, BankTransition]] = []
-        # feature Wald test; the read-outs serve the bands and the records too
-        base, x0, c0 = self.drift.read_and_project(theta0, cov0)
-        live, x, cx = self.drift.read_and_project(thetas, covs)
+        # feature Wald test; the read-outs serve the bands and the records
+        # too. Both sides in one pass (a row's values do not depend on its
+        # batch): the read-out's numpy calls, not its rows, take the time.
+        k = dc.shape[0]
+        both = np.concatenate((theta0, thetas))
+        features, projected, projected_cov = self.drift.read_and_project(
+            both, np.concatenate((cov0, covs))
+        )
+        base, live = features[:k], features[k:]
+        x0, x, c0, cx = projected[:k], projected[k:], projected_cov[:k], projected_cov[k:]
         wald = self.drift.distances(x0, c0, x, cx)
         self.tap["evaluate"] = (dp, dc, wald)
         # the reset covariance shrinks the distance: it cannot say "back to normal"
@@ -1079,13 +1086,7 @@ class _Group:
             found.append((int(dp[t.position]), 3, ev, t))
         # physical bands (PhysicalBands.update, element-wise); both sides'
         # dead times in one pass
-        dead = dead_time_matrix(
-            self.order,
-            np.concatenate((theta0, thetas)),
-            self.sample_period_s,
-            np.concatenate((base, live)),
-        )
-        k = dc.shape[0]
+        dead = dead_time_matrix(self.order, both, self.sample_period_s, features)
         found += self._bands(dp, dc, live, base, dead[k:], dead[:k], np.sqrt(sigma2), time_s)
         # the live read-out the records show
         rss = a["rls"][layout.rss, dc]
