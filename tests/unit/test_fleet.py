@@ -399,36 +399,45 @@ def test_a_checkpoint_saved_before_the_cusum_noise_level_still_loads(assets: dic
         np.testing.assert_array_equal(loaded[0][name], loaded[1][name], err_msg=name)
 
 
-@pytest.mark.parametrize("samples", [300, int(0.9 * PER_DAY)])
+@pytest.mark.parametrize(("ar_order", "samples"), [(6, 300), (6, int(0.9 * PER_DAY)), (4, 600)])
 def test_a_checkpoint_with_separate_reference_and_whiteness_sums_still_loads(
-    assets: dict, samples: int
+    assets: dict, ar_order: int, samples: int
 ) -> None:
     # Before the prewhitening reference and the whiteness blocks shared one
     # array, a checkpoint held both. Each channel used one of them: the
     # reference's until its filter was fitted (480 samples), then the
     # block's; the other is not read. Saved while the reference is being
-    # collected (300) and after (0.9 day), the older layout loads as the
-    # same state.
-    fleet = FleetMonitor(NAMES)
+    # collected (300) and after, the older layout loads as the same state;
+    # with a shorter filter (4) the reference's sums are the shorter ones.
+    config = MonitorConfig(prewhiten=PrewhitenConfig(ar_order=ar_order))
+    fleet = FleetMonitor(NAMES, config)
     for a in TWO_ASSETS:
         fleet.add_asset(a, assets[a][0])
     two_asset_rows(fleet, assets, range(samples))
     state = fleet.to_state()
     sums = state["arrays"]["g0.sums"]
     assert np.any(sums != 0.0)
-    fitted = state["arrays"]["g0.pw_count"] >= MonitorConfig().prewhiten.reference_samples
-    assert fitted.all() == (samples > 480) and fitted.any() == (samples > 480)
-    p, lags = MonitorConfig().prewhiten.ar_order, MonitorConfig().whiteness.lags
+    fitted = state["arrays"]["g0.pw_count"] >= config.prewhiten.reference_samples
+    # of the three channels (the two assets' modes), none is fitted at 300,
+    # one at 600 (a mix of both layouts) and all at 0.9 day
+    assert fitted.sum() == {300: 0, 600: 1}.get(samples, 3)
+    p, lags = ar_order, config.whiteness.lags
+    assert sums.shape[0] == max(p, lags) + 2
     stale = np.random.default_rng(3).normal(size=(p + 2, sums.shape[1]))  # never read
     older = {k: v for k, v in state["arrays"].items() if k != "g0.sums"}
     older["g0.pw_sums"] = np.where(fitted, stale, sums[: p + 2])
     older["g0.wh_sums"] = np.where(fitted, sums[: lags + 2], 0.0)
-    twin = FleetMonitor(NAMES)
+    twin = FleetMonitor(NAMES, config)
     twin.load_state({"meta": state["meta"], "arrays": older})
     loaded = twin.to_state()["arrays"]
     assert loaded.keys() == state["arrays"].keys()
     for name in loaded:
         np.testing.assert_array_equal(loaded[name], state["arrays"][name], err_msg=name)
+    # older arrays that do not fit together are refused by name, the monitor left as it was
+    older["g0.wh_sums"] = older["g0.wh_sums"][:, :1]
+    with pytest.raises(ValueError, match="'pw_sums' .* and 'pw_count' .* do not fit together"):
+        twin.load_state({"meta": state["meta"], "arrays": older})
+    assert len(twin) == len(TWO_ASSETS)
 
 
 def test_state_from_other_settings_is_refused(assets: dict) -> None:
