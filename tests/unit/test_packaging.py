@@ -53,3 +53,19 @@ def test_pure_stages_load_no_adapter_library() -> None:
     )
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == ""
+
+
+def test_the_container_copies_every_file_the_build_reads() -> None:
+    # The Containerfile builds from a copy of some files only: the readme,
+    # the licence files (setuptools refuses a license-files pattern that
+    # matches nothing) and the package folders must all be in it.
+    project = tomllib.loads((ROOT / "pyproject.toml").read_text())
+    needed = {"pyproject.toml", project["project"]["readme"], *project["project"]["license-files"]}
+    needed |= set(project["tool"]["setuptools"]["package-dir"].values())
+    copied = set()
+    for line in (ROOT / "deploy" / "Containerfile").read_text().splitlines():
+        words = line.split()
+        if words[:1] == ["COPY"] and words[-1].startswith("/src"):
+            copied.update(words[1:-1])
+    assert needed <= copied, f"deploy/Containerfile does not copy {sorted(needed - copied)}"
+    assert all((ROOT / name).exists() for name in needed)
