@@ -1816,7 +1816,7 @@ class FleetMonitor:
         if not (bank.raised.any() or bank.alarms.any()):  # the usual case: all quiet
             return np.zeros(slots.shape, dtype=np.bool_)
         busy = bank.raised[slots] | (bank.alarms[slots] != 0)
-        per_signal = busy.reshape(slots.shape[0], -1, kinds)
+        per_signal = busy.reshape(slots.shape[0], busy.shape[1] // kinds, kinds)  # none: shape kept
         out: NDArray[np.bool_] = per_signal[np.arange(slots.shape[0]), signals].any(axis=1)
         return out
 

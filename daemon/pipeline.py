@@ -308,14 +308,11 @@ class _Class:
 
     def needed(self, slots: NDArray[np.intp], qs: NDArray[np.intp]) -> NDArray[np.bool_]:
         """Whether each quiet quality check (intake slot, checked signal) has a busy alert."""
-        if slots.shape[0] == 1:  # one check (a live message): no masks
-            fleet_slot = self.fleet_slot[slots]
-            if fleet_slot[0] < 0:
-                return np.zeros(1, dtype=np.bool_)
-            return self.fleet.quality_busy(fleet_slot.astype(np.intp), qs)
         fleet_slots = self.fleet_slot[slots]
-        out = np.zeros(slots.shape, dtype=np.bool_)
         judged = fleet_slots >= 0
+        if judged.all():  # the usual case, a live message's one check included: no masks
+            return self.fleet.quality_busy(fleet_slots.astype(np.intp), qs)
+        out = np.zeros(slots.shape, dtype=np.bool_)
         if judged.any():
             out[judged] = self.fleet.quality_busy(fleet_slots[judged].astype(np.intp), qs[judged])
         return out

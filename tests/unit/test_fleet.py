@@ -290,6 +290,7 @@ def test_one_quality_check_is_busy_exactly_when_the_batch_says_so(assets: dict) 
             for i in range(len(pairs))
         ]
         assert ones == batch
+        assert fleet.quality_busy(pairs[:0, 0], pairs[:0, 1]).shape == (0,)  # none asked
         return ones
 
     assert agree() == [False] * 6
